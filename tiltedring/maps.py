@@ -1,0 +1,438 @@
+"""`VelocityMap`: a line-of-sight velocity map with its sky geometry, read from FITS.
+
+Every entry point accepts "a path, an HDU, an HDUList, or an (array, header-or-WCS) pair":
+:func:`load_image` turns any of these into an array and a header, so reading the velocity,
+error, intensity and dispersion maps shares one code path.
+
+Sky geometry. Position angles are measured on the sky from north through east, where north is
+that of the WCS's celestial frame, never the pixel y axis. The local pixel-to-sky mapping is the
+2x2 Jacobian ``J`` (arcsec per pixel) at the map centre::
+
+    [east ]   [J00 J01] [x - x0]
+    [north] = [J10 J11] [y - y0]
+
+which handles rotated grids and non-square pixels. Across one galaxy the tangent-plane distortion
+of a linear mapping is negligible (< 1e-4 relative over a degree).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+from astropy import units as u
+from astropy.io import fits
+from astropy.wcs import WCS, FITSFixedWarning
+
+from .errors import FitCaution, InputError
+
+__all__ = ["Beam", "VelocityMap", "read_velocity_map", "load_image", "parse_velocity_unit"]
+
+KM_S = u.km / u.s
+
+
+@dataclass(frozen=True)
+class Beam:
+    """Elliptical Gaussian beam: FWHM axes in arcsec, position angle in deg (N through E)."""
+
+    major: float
+    minor: float
+    position_angle: float = 0.0
+
+    def __post_init__(self):
+        if not (np.isfinite(self.major) and np.isfinite(self.minor)) or self.minor <= 0:
+            raise InputError(f"beam axes must be positive numbers of arcsec, got {self.major}, {self.minor}")
+        if self.minor > self.major:
+            object.__setattr__(self, "major", self.minor)
+            object.__setattr__(self, "minor", self.major)
+
+    @property
+    def area(self) -> float:
+        """Beam solid angle in arcsec^2: pi/(4 ln 2) * major * minor (Gaussian)."""
+        return np.pi / (4.0 * np.log(2.0)) * self.major * self.minor
+
+    @property
+    def fwhm(self) -> float:
+        """Geometric-mean FWHM in arcsec."""
+        return float(np.sqrt(self.major * self.minor))
+
+    @classmethod
+    def parse(cls, text: str) -> "Beam":
+        """From ``"12"`` (circular) or ``"12,8,30"`` (major, minor arcsec, position angle deg)."""
+        try:
+            parts = [float(p) for p in str(text).replace(" ", "").split(",")]
+        except ValueError:
+            raise InputError(f"cannot read beam {text!r}: give MAJOR[,MINOR[,PA]] in arcsec, e.g. 12,8,30") from None
+        if len(parts) == 1:
+            parts = [parts[0], parts[0], 0.0]
+        elif len(parts) == 2:
+            parts.append(0.0)
+        if len(parts) != 3:
+            raise InputError(f"cannot read beam {text!r}: give MAJOR[,MINOR[,PA]] in arcsec")
+        return cls(*parts)
+
+    @classmethod
+    def from_header(cls, header) -> "Beam | None":
+        if "BMAJ" not in header or "BMIN" not in header:
+            return None
+        return cls(header["BMAJ"] * 3600.0, header["BMIN"] * 3600.0, float(header.get("BPA", 0.0)))
+
+
+@dataclass
+class VelocityMap:
+    """A moment-1 (or line-centroid) velocity map in km/s with its sky geometry.
+
+    Arrays are numpy order ``[y, x]``, pixels 0-based (astropy ``origin=0``). Blank pixels are
+    NaN. ``sky_jacobian`` maps pixel offsets to (east, north) offsets in arcsec.
+    """
+
+    velocity: np.ndarray
+    sky_jacobian: np.ndarray
+    wcs: WCS | None = None
+    error: np.ndarray | None = None
+    intensity: np.ndarray | None = None
+    beam: Beam | None = None
+    source: str = "array"
+    notes: list = field(default_factory=list)
+
+    @property
+    def shape(self) -> tuple:
+        return self.velocity.shape
+
+    @property
+    def valid(self) -> np.ndarray:
+        """Pixels usable in a fit: finite velocity (and finite positive error if an error map is given)."""
+        ok = np.isfinite(self.velocity)
+        if self.error is not None:
+            ok &= np.isfinite(self.error) & (self.error > 0)
+        return ok
+
+    @property
+    def pixel_area(self) -> float:
+        """Pixel solid angle in arcsec^2 (|det J|)."""
+        return float(abs(np.linalg.det(self.sky_jacobian)))
+
+    @property
+    def pixel_scale(self) -> float:
+        """Geometric-mean pixel size in arcsec."""
+        return float(np.sqrt(self.pixel_area))
+
+    @property
+    def north_angle(self) -> float:
+        """Direction of local north in the pixel frame, deg counter-clockwise from the +y axis."""
+        inv = np.linalg.inv(self.sky_jacobian)
+        dx, dy = inv @ np.array([0.0, 1.0])
+        return float(np.degrees(np.arctan2(-dx, dy)) % 360.0)
+
+    @property
+    def pixels_per_beam(self) -> float:
+        """Number of pixels in one beam area (1 when no beam is known: correlations ignored)."""
+        if self.beam is None:
+            return 1.0
+        return max(1.0, self.beam.area / self.pixel_area)
+
+    def sky_offsets(self, x, y, x0: float, y0: float):
+        """(east, north) offsets in arcsec of pixel positions from (x0, y0)."""
+        dx = np.asarray(x, float) - x0
+        dy = np.asarray(y, float) - y0
+        j = self.sky_jacobian
+        return j[0, 0] * dx + j[0, 1] * dy, j[1, 0] * dx + j[1, 1] * dy
+
+    def pixel_to_sky(self, x: float, y: float):
+        """(ra, dec) in deg of a pixel position, or (nan, nan) without a WCS."""
+        if self.wcs is None:
+            return float("nan"), float("nan")
+        c = self.wcs.pixel_to_world(x, y)
+        return float(c.spherical.lon.deg), float(c.spherical.lat.deg)
+
+    def sky_to_pixel(self, ra: float, dec: float):
+        """Pixel (x, y) of a sky position in deg (needs a WCS)."""
+        if self.wcs is None:
+            raise InputError("a sky position was given but the map has no celestial WCS; give the centre in pixels")
+        from astropy.coordinates import SkyCoord
+
+        frame = self.wcs.pixel_to_world(0, 0).frame.name
+        x, y = self.wcs.world_to_pixel(SkyCoord(ra * u.deg, dec * u.deg, frame=frame))
+        return float(x), float(y)
+
+    def output_header(self, bunit: str = "km/s") -> fits.Header:
+        """A header for maps derived from this one: the input's celestial WCS, BUNIT, beam."""
+        hdr = self.wcs.to_header() if self.wcs is not None else fits.Header()
+        hdr["BUNIT"] = bunit
+        if self.beam is not None:
+            hdr["BMAJ"] = self.beam.major / 3600.0
+            hdr["BMIN"] = self.beam.minor / 3600.0
+            hdr["BPA"] = self.beam.position_angle
+        return hdr
+
+    def with_velocity(self, velocity: np.ndarray) -> "VelocityMap":
+        """A copy with another velocity array on the same grid."""
+        return replace(self, velocity=np.asarray(velocity, float))
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def load_image(source, role: str = "velocity map", hdu=None):
+    """Turn a path, HDU, HDUList or ``(array, header-or-WCS)`` into ``(data, header, name)``.
+
+    The first HDU with image data of two or more axes is used unless ``hdu`` names another.
+    Length-1 extra axes (common in moment maps) are squeezed; a real cube is refused.
+    """
+    name = str(source) if isinstance(source, (str, Path)) else type(source).__name__
+    if isinstance(source, tuple):
+        data, meta = source
+        header = meta.to_header() if isinstance(meta, WCS) else fits.Header(meta or {})
+        data = np.asarray(data)
+        return _squeeze(data, header, role, "array"), header, "array"
+    if isinstance(source, (str, Path)):
+        path = Path(source)
+        if not path.exists():
+            raise InputError(f"{role} {path} does not exist")
+        try:
+            with open(path, "rb") as fh:
+                start = fh.read(30)
+        except OSError as exc:
+            raise InputError(f"cannot read {role} {path}: {exc}") from None
+        if not start.startswith(b"SIMPLE  ="):
+            raise InputError(f"{role} {path} is not a FITS file (it does not start with a FITS header); give a FITS image")
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", FITSFixedWarning)
+                with fits.open(path, memmap=False) as hdul:
+                    data, header = _pick_hdu(hdul, role, name, hdu)
+        except InputError:
+            raise
+        except Exception as exc:  # astropy raises many kinds for damaged files
+            raise InputError(f"{role} {path} is a damaged or truncated FITS file ({exc}); re-export it") from None
+        return _squeeze(data, header, role, name), header, name
+    if isinstance(source, fits.HDUList):
+        data, header = _pick_hdu(source, role, name, hdu)
+        return _squeeze(data, header, role, name), header, name
+    if isinstance(source, (fits.PrimaryHDU, fits.ImageHDU, fits.CompImageHDU)):
+        if source.data is None:
+            raise InputError(f"{role}: the HDU has no image data")
+        return _squeeze(np.array(source.data), source.header.copy(), role, name), source.header.copy(), name
+    raise InputError(f"{role}: cannot read a {type(source).__name__}; give a FITS path, an HDU, or (array, header)")
+
+
+def _pick_hdu(hdul, role, name, hdu):
+    if hdu is not None:
+        try:
+            chosen = hdul[hdu]
+        except (KeyError, IndexError):
+            raise InputError(f"{role} {name} has no HDU {hdu!r}") from None
+        if chosen.data is None or chosen.data.ndim < 2:
+            raise InputError(f"{role} {name}: HDU {hdu!r} holds no image")
+        return _blank_to_nan(chosen), chosen.header.copy()
+    for h in hdul:
+        if getattr(h, "is_image", False) and h.data is not None and h.data.ndim >= 2:
+            return _blank_to_nan(h), h.header.copy()
+    raise InputError(f"{role} {name} holds no image HDU with two or more axes; give a FITS image (moment-1 map)")
+
+
+def _blank_to_nan(h) -> np.ndarray:
+    data = np.array(h.data)
+    if data.dtype.kind in "iu":
+        blank = h.header.get("BLANK")
+        raw = data
+        data = data.astype(float)
+        if blank is not None:
+            data[raw == blank] = np.nan
+    return data.astype(float, copy=False)
+
+
+def _squeeze(data, header, role, name) -> np.ndarray:
+    data = np.asarray(data, dtype=float)
+    if data.ndim < 2:
+        raise InputError(f"{role} {name} has {data.ndim} axis; a 2-D map is needed")
+    extra = data.shape[:-2]
+    if any(n != 1 for n in extra):
+        raise InputError(
+            f"{role} {name} looks like a spectral cube (shape {data.shape}); this tool fits 2-D "
+            "velocity maps: make a moment-1 (intensity-weighted mean velocity) map first"
+        )
+    return data.reshape(data.shape[-2:])
+
+
+def parse_velocity_unit(text) -> float:
+    """Factor that turns values in unit ``text`` into km/s (any spelling astropy parses)."""
+    if isinstance(text, u.UnitBase):
+        unit = text
+    else:
+        unit = None
+        for attempt in (str(text).strip(), str(text).strip().lower()):
+            for fmt in ("fits", None):
+                try:
+                    unit = u.Unit(attempt, format=fmt) if fmt else u.Unit(attempt)
+                    break
+                except ValueError:
+                    continue
+            if unit is not None:
+                break
+        if unit is None:
+            raise InputError(f"velocity unit {text!r} is not a unit astropy can read; give e.g. km/s or m/s")
+    try:
+        return float((1.0 * unit).to(KM_S).value)
+    except u.UnitConversionError:
+        raise InputError(f"unit {text!r} is not a velocity; the map must hold line-of-sight velocities (km/s or m/s)") from None
+
+
+def _celestial_wcs(header, data_shape):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FITSFixedWarning)
+        try:
+            wcs = WCS(header)
+        except Exception:
+            return None
+    if not wcs.has_celestial or sorted((wcs.wcs.lng, wcs.wcs.lat)) != [0, 1]:
+        return None
+    cel = wcs.celestial
+    cel.array_shape = data_shape
+    return cel
+
+
+def sky_jacobian_from_wcs(wcs: WCS, x0: float, y0: float) -> np.ndarray:
+    """Local (east, north) arcsec per pixel at (x0, y0), from the full WCS transform."""
+    pts = wcs.pixel_to_world([x0, x0 + 1.0, x0], [y0, y0, y0 + 1.0])
+    c0 = pts[0]
+    dlon, dlat = c0.spherical_offsets_to(pts[1:])
+    return np.array([dlon.to_value(u.arcsec), dlat.to_value(u.arcsec)])
+
+
+def _grid(data, header, name, role, pixel_scale):
+    """Celestial WCS (or None) and the sky Jacobian for an image."""
+    wcs = _celestial_wcs(header, data.shape)
+    if wcs is not None:
+        ny, nx = data.shape
+        return wcs, sky_jacobian_from_wcs(wcs, (nx - 1) / 2.0, (ny - 1) / 2.0)
+    if pixel_scale is None:
+        raise InputError(
+            f"{role} {name} has no celestial WCS, so position angles and radii cannot be put on the "
+            "sky; add RA/Dec WCS keywords or give the pixel scale (--pixel-scale ARCSEC, north up, east left)"
+        )
+    ps = float(pixel_scale)
+    if not ps > 0:
+        raise InputError(f"pixel scale must be a positive number of arcsec, got {pixel_scale}")
+    return None, np.array([[-ps, 0.0], [0.0, ps]])
+
+
+def _velocity_factor(header, velocity_unit, name, role="velocity map") -> float:
+    if velocity_unit is not None:
+        return parse_velocity_unit(velocity_unit)
+    bunit = str(header.get("BUNIT", "")).strip()
+    if not bunit:
+        raise InputError(
+            f"{role} {name} has no BUNIT keyword, so its velocity unit is unknown; "
+            "state it (--velocity-unit km/s or m/s)"
+        )
+    try:
+        return parse_velocity_unit(bunit)
+    except InputError as exc:
+        raise InputError(f"{role} {name}: BUNIT {bunit!r} — {exc}; or state the unit with --velocity-unit") from None
+
+
+def _match_grid(data, header, target: "VelocityMap", role, name, notes) -> np.ndarray:
+    """Put an auxiliary map on the velocity map's grid (reproject when the grids differ)."""
+    own = _celestial_wcs(header, data.shape)
+    same_shape = data.shape == target.shape
+    if own is None or target.wcs is None:
+        if not same_shape:
+            raise InputError(
+                f"{role} {name} has shape {data.shape} but the velocity map has {target.shape}, "
+                "and without celestial WCS in both the two cannot be aligned; regrid it first"
+            )
+        return data
+    if same_shape and np.allclose(own.wcs.crpix, target.wcs.wcs.crpix) and np.allclose(
+        own.pixel_scale_matrix, target.wcs.pixel_scale_matrix
+    ) and np.allclose(own.wcs.crval, target.wcs.wcs.crval):
+        return data
+    from reproject import reproject_interp
+
+    out, _ = reproject_interp((data, own), target.wcs, shape_out=target.shape)
+    msg = f"{role} {name} is on another grid; reprojected onto the velocity map's grid (bilinear)"
+    notes.append(msg)
+    warnings.warn(msg, FitCaution, stacklevel=3)
+    return out
+
+
+def _finite_check(data, role, name, notes) -> np.ndarray:
+    inf = np.isinf(data)
+    if inf.any():
+        msg = f"{role} {name} has {int(inf.sum())} infinite pixel(s); they are treated as blank"
+        notes.append(msg)
+        warnings.warn(msg, FitCaution, stacklevel=3)
+        data = np.where(inf, np.nan, data)
+    return data
+
+
+def read_velocity_map(
+    source,
+    *,
+    error=None,
+    intensity=None,
+    beam: "Beam | str | None" = None,
+    pixel_scale: float | None = None,
+    velocity_unit=None,
+    error_unit=None,
+    hdu=None,
+) -> VelocityMap:
+    """Read a velocity map (and optional error and intensity maps) into a :class:`VelocityMap`.
+
+    Parameters
+    ----------
+    source, error, intensity
+        A FITS path, an HDU/HDUList, or ``(array, header-or-WCS)``. Error and intensity maps on
+        another grid are reprojected onto the velocity grid (and a note says so).
+    beam
+        :class:`Beam` or ``"MAJ[,MIN[,PA]]"`` in arcsec; default from BMAJ/BMIN/BPA.
+    pixel_scale
+        Arcsec per pixel, only used when the map has no celestial WCS (north up, east left).
+    velocity_unit, error_unit
+        Override or supply BUNIT (``"km/s"``, ``"m/s"``...). Values are stored in km/s.
+
+    Inputs are never modified: arrays are copied.
+    """
+    notes: list = []
+    data, header, name = load_image(source, "velocity map", hdu=hdu)
+    data = _finite_check(data * _velocity_factor(header, velocity_unit, name), "velocity map", name, notes)
+    if not np.isfinite(data).any():
+        raise InputError(f"velocity map {name} is blank everywhere (all NaN/BLANK); check the file or its masking")
+    wcs, jac = _grid(data, header, name, "velocity map", pixel_scale)
+    if isinstance(beam, str):
+        beam = Beam.parse(beam)
+    beam = beam if beam is not None else Beam.from_header(header)
+    vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes)
+
+    if error is not None:
+        edata, eheader, ename = load_image(error, "error map")
+        unit = error_unit if error_unit is not None else (velocity_unit if not eheader.get("BUNIT") else None)
+        edata = edata * _velocity_factor(eheader, unit, ename, "error map")
+        edata = _finite_check(_match_grid(edata, eheader, vmap, "error map", ename, notes), "error map", ename, notes)
+        bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
+        if bad.any():
+            raise InputError(
+                f"error map {ename} has {int(bad.sum())} zero or negative value(s) where the velocity map is "
+                "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
+            )
+        vmap.error = edata
+    if intensity is not None:
+        idata, iheader, iname = load_image(intensity, "intensity map")
+        idata = _finite_check(_match_grid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
+        vmap.intensity = idata
+    if not vmap.valid.any():
+        raise InputError(f"velocity map {name} has no pixel with both a finite velocity and a positive error")
+    return vmap
+
+
+def write_map(path, data: np.ndarray, vmap: VelocityMap, bunit: str = "km/s", extra: dict | None = None) -> None:
+    """Write a map on ``vmap``'s grid as FITS, atomically (temporary name, then rename)."""
+    from ._io import atomic_path
+
+    hdr = vmap.output_header(bunit)
+    for key, value in (extra or {}).items():
+        hdr[key] = value
+    with atomic_path(path) as tmp:
+        fits.PrimaryHDU(np.asarray(data, dtype=np.float32), header=hdr).writeto(tmp)
