@@ -1,0 +1,34 @@
+"""tiltedring: tilted-ring kinematic modelling of disc-galaxy velocity maps.
+
+Read a moment-1 map, fit it ring by ring, get the ring table, model and residual maps::
+
+    import tiltedring as tr
+    vmap = tr.read_velocity_map("galaxy_velocity.fits", intensity="galaxy_intensity.fits")
+    result = tr.fit_velocity_map(vmap, ring_width="0.5beam")
+    result.rings            # astropy QTable, one row per ring
+    result.write("galaxy_fit")
+
+Heavy parts are imported on first use so that ``import tiltedring`` stays quick.
+"""
+
+from importlib import import_module
+
+__version__ = "0.1.0"
+
+_EXPORTS = {
+    "VelocityMap": "maps", "Beam": "maps", "read_velocity_map": "maps",
+    "RingLayout": "rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
+    "FitResult": "result", "InputError": "errors", "FitCaution": "errors",
+}
+
+__all__ = sorted(_EXPORTS) + ["__version__"]
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        return getattr(import_module(f".{_EXPORTS[name]}", __name__), name)
+    raise AttributeError(f"module 'tiltedring' has no attribute {name!r}")
+
+
+def __dir__():
+    return __all__

@@ -1,0 +1,28 @@
+"""The fixed vocabulary of ring flags (the ``flags`` column of the ring table).
+
+A flag never removes a ring: the ring stays in the table and the flag says why its numbers need
+care. ``flags`` holds the flag names of a ring joined by ``,`` (empty when none).
+"""
+
+FLAGS = {
+    "few_pixels": "fewer pixels than a few independent beams' worth: the ring's values rest on little data",
+    "poor_coverage": "pixels cover less than half of the usable azimuth: geometry and speed are poorly tied down",
+    "fit_failed": "the least-squares fit did not converge or had too few pixels; fitted values are blank",
+    "low_inclination": "inclination below the low-inclination limit: v_rotation and inclination are degenerate, "
+                       "only v_rotation sin i is well measured; v_rotation errors are widened",
+    "inside_beam": "ring centre within one beam of the kinematic centre: beam smearing biases v_rotation low",
+    "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
+}
+
+
+def join(names) -> str:
+    """Flags in vocabulary order, comma-joined."""
+    chosen = set(names)
+    unknown = chosen - FLAGS.keys()
+    if unknown:
+        raise ValueError(f"unknown flag(s) {sorted(unknown)}")
+    return ",".join(name for name in FLAGS if name in chosen)
+
+
+def split(text: str) -> list:
+    return [t for t in str(text).split(",") if t]

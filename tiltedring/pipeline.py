@@ -1,0 +1,450 @@
+"""The staged fit from a first guess to the final ring table (after Begeman 1989).
+
+1. ``first_guess``: a whole-disc parametric fit (:mod:`.first_guess`).
+2. stage ``free``: every ring fits centre, systemic velocity, position angle, inclination and
+   v_rotation (and v_radial when asked).
+3. stage ``centred``: centre and systemic velocity fixed to a robust (error-weighted median)
+   average of stage ``free``; position angle, inclination and v_rotation refitted.
+4. stage ``final``: position angle and inclination regularised — a constant when the ring values
+   are consistent with one (chi-square test, p > 0.001), otherwise the lowest-BIC polynomial in
+   radius of degree 1–3 — then v_rotation (and v_radial) refitted with the geometry fixed, on
+   both sides together and on each side alone.
+
+Uncertainty of v_rotation in the final table, in quadrature:
+``v_rotation_err_formal`` (least squares, scaled by reduced chi-square and pixels per beam),
+``v_rotation_err_sides`` (half the approaching-receding difference; de Blok et al. 2008, common
+practice) and ``v_rotation_err_inclination`` (v cot(i) sigma_i, the inclination error carried
+into v_rotation).
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from . import flags as ringflags
+from .engine import RingFitOptions, fit_ring
+from .errors import FitCaution, InputError
+from .first_guess import first_guess, guess_rotation
+from .geometry import disc_coordinates
+from astropy import units as u
+
+from .kinematics import PARAMETERS, UNITS, model_field
+from .maps import VelocityMap
+from .rings import RingLayout, parse_width
+
+__all__ = ["FitOptions", "fit_velocity_map"]
+
+_INDEX = {name: k for k, name in enumerate(PARAMETERS)}
+STAGES = ("free", "centred", "final")
+
+
+@dataclass
+class FitOptions:
+    """Everything that steers a fit. Lengths accept numbers (arcsec) or strings like ``4pix``.
+
+    ring_width: ring width (default one beam FWHM, or two pixels without a beam).
+    spacing: ``uniform`` or ``logarithmic`` (first ring ``ring_width`` wide, growing by ``growth``).
+    ring_edges: explicit ring edges in arcsec (overrides width and spacing).
+    first_radius, max_radius: the radial range (default 0 to the edge of the valid data).
+    weighting, exclusion_wedge, side, clip: see :class:`.engine.RingFitOptions`.
+    fixed: parameter names held fixed in every stage (at ``initial`` or the first guess).
+    initial: starting values by parameter name (``x_center``/``y_center`` in pixels, or
+    ``ra_center``/``dec_center`` in deg; ``v_rotation`` sets the first-guess flat speed).
+    fit_radial: also fit v_radial per ring.
+    low_inclination: below this inclination (deg) results carry the low-inclination flag.
+    """
+
+    ring_width: object = None
+    spacing: str = "uniform"
+    growth: float = 1.2
+    ring_edges: tuple | None = None
+    first_radius: object = 0.0
+    max_radius: object = None
+    weighting: str = "cos"
+    exclusion_wedge: float = 15.0
+    side: str = "both"
+    clip: float | None = None
+    fixed: tuple = ()
+    initial: dict = field(default_factory=dict)
+    fit_radial: bool = False
+    seed: int = 0
+    low_inclination: float = 30.0
+    min_beams_per_ring: float = 4.0
+    min_coverage: float = 0.5
+
+    def __post_init__(self):
+        self.fixed = tuple(self.fixed)
+        unknown = set(self.fixed) - set(PARAMETERS)
+        if unknown:
+            raise InputError(f"cannot fix unknown parameter(s) {sorted(unknown)}; choose from {', '.join(PARAMETERS)}")
+        known = set(PARAMETERS) | {"ra_center", "dec_center"}
+        bad = set(self.initial) - known
+        if bad:
+            raise InputError(f"unknown initial value(s) {sorted(bad)}; choose from {', '.join(sorted(known))}")
+        if self.spacing not in ("uniform", "logarithmic"):
+            raise InputError(f"ring spacing {self.spacing!r} unknown; choose uniform or logarithmic")
+        self.ring_options()  # validates weighting, wedge, side, clip
+
+    def ring_options(self, side: str | None = None) -> RingFitOptions:
+        return RingFitOptions(weighting=self.weighting, exclusion_wedge=self.exclusion_wedge,
+                              side=side or self.side, clip=self.clip)
+
+    @classmethod
+    def from_mapping(cls, values: dict) -> "FitOptions":
+        """From a dict such as a TOML run file's ``[fit]`` table (dashes or underscores)."""
+        clean = {str(k).replace("-", "_"): v for k, v in values.items()}
+        names = {f for f in cls.__dataclass_fields__}
+        unknown = set(clean) - names
+        if unknown:
+            raise InputError(f"unknown fit option(s) {sorted(unknown)}; known: {', '.join(sorted(names))}")
+        if clean.get("ring_edges") is not None:
+            clean["ring_edges"] = tuple(clean["ring_edges"])
+        return cls(**clean)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def weighted_median(values, errors):
+    """Median with weights 1/err^2 (NaNs ignored); plain median when errors are missing."""
+    values = np.asarray(values, float)
+    errors = np.asarray(errors, float)
+    ok = np.isfinite(values)
+    if not ok.any():
+        return np.nan
+    w = np.where(np.isfinite(errors) & (errors > 0), 1.0 / np.maximum(errors, 1e-12) ** 2, np.nan)
+    if not np.isfinite(w[ok]).all():
+        return float(np.median(values[ok]))
+    order = np.argsort(values[ok])
+    v, ww = values[ok][order], w[ok][order]
+    cum = np.cumsum(ww)
+    return float(v[np.searchsorted(cum, 0.5 * cum[-1])])
+
+
+def _centre_angle(values, reference):
+    """Angles (deg) re-expressed within 180 deg of ``reference`` so they can be averaged."""
+    return reference + np.mod(np.asarray(values, float) - reference + 180.0, 360.0) - 180.0
+
+
+def regularise(radius, values, errors, use):
+    """Constant or smooth polynomial profile of a geometry parameter (module docstring).
+
+    Returns (profile at every radius, profile error at every radius, description dict).
+    """
+    r, v, e = np.asarray(radius, float), np.asarray(values, float), np.asarray(errors, float)
+    ok = use & np.isfinite(v) & np.isfinite(e) & (e > 0)
+    if ok.sum() < 2:
+        val = weighted_median(v[ok], e[ok]) if ok.any() else np.nanmedian(v)
+        return np.full(r.shape, val), np.full(r.shape, np.nan), {"kind": "constant", "p_value": None}
+    w = 1.0 / e[ok] ** 2
+    mean = float(np.sum(w * v[ok]) / w.sum())
+    chi2 = float(np.sum(w * (v[ok] - mean) ** 2))
+    dof = int(ok.sum() - 1)
+    p_value = float(stats.chi2.sf(chi2, dof))
+    mean_err = float(np.sqrt(1.0 / w.sum() * max(chi2 / max(dof, 1), 1.0)))
+    if p_value > 1e-3 or ok.sum() < 5:
+        return np.full(r.shape, mean), np.full(r.shape, mean_err), {"kind": "constant", "p_value": p_value}
+    best = None
+    scale = max(r[ok].max(), 1e-9)
+    for degree in range(1, min(3, int(ok.sum()) - 2) + 1):
+        coef, cov = np.polyfit(r[ok] / scale, v[ok], degree, w=np.sqrt(w), cov="unscaled")
+        c2 = float(np.sum(w * (v[ok] - np.polyval(coef, r[ok] / scale)) ** 2))
+        bic = c2 + (degree + 1) * np.log(ok.sum())
+        if best is None or bic < best[0]:
+            best = (bic, degree, coef, cov, c2)
+    _, degree, coef, cov, c2 = best
+    scale_cov = max(c2 / max(ok.sum() - degree - 1, 1), 1.0)
+    basis = np.vander(r / scale, degree + 1)
+    err = np.sqrt(np.einsum("ij,jk,ik->i", basis, cov * scale_cov, basis))
+    return np.polyval(coef, r / scale), err, {"kind": f"polynomial degree {degree}", "p_value": p_value}
+
+
+# --------------------------------------------------------------------------- set-up
+
+
+def _resolve_initial(vmap: VelocityMap, options: FitOptions) -> dict:
+    initial = dict(options.initial)
+    if "ra_center" in initial or "dec_center" in initial:
+        if not {"ra_center", "dec_center"} <= set(initial):
+            raise InputError("give both ra_center and dec_center, or neither")
+        initial["x_center"], initial["y_center"] = vmap.sky_to_pixel(initial.pop("ra_center"), initial.pop("dec_center"))
+    ny, nx = vmap.shape
+    for key, size in (("x_center", nx), ("y_center", ny)):
+        if key in initial and not -0.5 <= initial[key] <= size - 0.5:
+            raise InputError(
+                f"the centre guess {key} = {initial[key]:.2f} pixels lies outside the map (0 to {size - 1}); "
+                "give a centre inside the map (pixels are 0-based) or leave it out to let the tool find it"
+            )
+    inc = initial.get("inclination")
+    if inc is not None and not 0 < inc < 90:
+        raise InputError(f"inclination {inc} deg is outside (0, 90): give a value between face-on and edge-on")
+    if "inclination" in options.fixed and inc is not None and (inc < 5 or inc > 85):
+        raise InputError(
+            f"inclination fixed at {inc} deg: near face-on the rotation cannot be measured, and near edge-on a "
+            "thin-ring model of a velocity map does not apply; fix it between 5 and 85 deg or leave it free"
+        )
+    for key in options.fixed:
+        if key == "v_radial":
+            continue
+        if key not in initial and key != "v_rotation":
+            warnings.warn(f"{key} is fixed but no value was given: it is held at the first-guess value", FitCaution,
+                          stacklevel=3)
+    return initial
+
+
+def _layout(vmap: VelocityMap, options: FitOptions, guess: dict, x, y) -> RingLayout:
+    beam = vmap.beam.fwhm if vmap.beam is not None else None
+    if options.ring_edges is not None:
+        return RingLayout.explicit(options.ring_edges)
+    width = parse_width(options.ring_width, vmap.pixel_scale, beam) if options.ring_width is not None else (
+        beam if beam is not None else 2.0 * vmap.pixel_scale)
+    first = parse_width(options.first_radius, vmap.pixel_scale, beam) if options.first_radius else 0.0
+    if options.max_radius is not None:
+        r_max = parse_width(options.max_radius, vmap.pixel_scale, beam)
+    else:
+        radius, cos_t, _ = disc_coordinates(x, y, guess["x_center"], guess["y_center"], vmap.sky_jacobian,
+                                            guess["position_angle"], guess["inclination"])
+        near_major = np.abs(cos_t) > np.cos(np.radians(45.0))
+        pool = radius[near_major] if near_major.sum() > 10 else radius
+        r_max = float(np.percentile(pool, 99.0))
+    if beam is not None and r_max < 2 * beam:
+        raise InputError(
+            f"the galaxy's valid data reach only {r_max:.1f} arcsec, less than two beams ({2 * beam:.1f} arcsec): "
+            "too small to fit rings; use a higher-resolution map"
+        )
+    if options.spacing == "logarithmic":
+        return RingLayout.logarithmic(width, r_max, first, options.growth)
+    return RingLayout.uniform(width, r_max, first)
+
+
+def _run_stage(vmap, pixels, layout, starts, free, ring_options):
+    x, y, v, sigma = pixels
+    return [fit_ring(x, y, v, sigma, starts[k], free, vmap.sky_jacobian, layout.inner[k], layout.outer[k],
+                     ring_options, vmap.pixels_per_beam) for k in range(len(layout))]
+
+
+def _ring_flags(sol, options, vmap, min_pixels, radius) -> set:
+    out = set()
+    if sol.n_pixels < min_pixels:
+        out.add("few_pixels")
+    if sol.coverage < options.min_coverage:
+        out.add("poor_coverage")
+    if not sol.converged or not np.all(np.isfinite(sol.params)):
+        out.add("fit_failed")
+    if sol.params[_INDEX["inclination"]] < options.low_inclination:
+        out.add("low_inclination")
+    if vmap.beam is not None and radius < vmap.beam.fwhm:
+        out.add("inside_beam")
+    return out
+
+
+def _usable(solutions, ring_flags):
+    return np.array([s.converged and not ({"fit_failed", "few_pixels", "poor_coverage"} & f)
+                     for s, f in zip(solutions, ring_flags)])
+
+
+# --------------------------------------------------------------------------- the fit
+
+
+def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **option_values):
+    """Fit a tilted-ring model to ``vmap``; returns a :class:`.result.FitResult`.
+
+    Options come as a :class:`FitOptions` or as keyword arguments of the same names.
+    """
+    from .result import FitResult, stage_table
+
+    if options is None:
+        options = FitOptions(**option_values)
+    elif option_values:
+        raise TypeError("give either a FitOptions or keyword options, not both")
+    cautions = list(vmap.notes)
+    initial = _resolve_initial(vmap, options)
+
+    ok = vmap.valid
+    yy, xx = np.nonzero(ok)
+    x, y = xx.astype(float), yy.astype(float)
+    v = vmap.velocity[ok]
+    sigma = vmap.error[ok] if vmap.error is not None else np.ones_like(v)
+    pixels = (x, y, v, sigma)
+    if vmap.error is None:
+        cautions.append("no error map: every pixel weighted equally; errors come from the scatter of the residuals")
+    if vmap.beam is None:
+        cautions.append("no beam known: pixels treated as independent, so errors may be too small; give --beam")
+
+    guess = first_guess(vmap, initial, options.fixed, seed=options.seed)
+    layout = _layout(vmap, options, guess, x, y)
+    min_pixels = int(np.ceil(options.min_beams_per_ring * vmap.pixels_per_beam))
+
+    fixed = set(options.fixed)
+    base_free = np.array([name not in fixed for name in PARAMETERS])
+    if not options.fit_radial:
+        base_free[_INDEX["v_radial"]] = False
+
+    def starts_from(geometry: dict, vrot):
+        s = np.empty((len(layout), 7))
+        for name, k in _INDEX.items():
+            s[:, k] = geometry.get(name, 0.0)
+        s[:, _INDEX["v_rotation"]] = vrot
+        return s
+
+    guess_geom = {k: initial.get(k, guess[k]) for k in ("x_center", "y_center", "v_systemic", "position_angle",
+                                                       "inclination")}
+    guess_geom["v_radial"] = initial.get("v_radial", 0.0)
+    vrot0 = guess_rotation(guess, layout.radii)
+    if "v_rotation" in initial:
+        vrot0 = np.full(len(layout), float(initial["v_rotation"])) if "v_rotation" in fixed else vrot0
+    stages = {}
+
+    # stage "free"
+    opts = options.ring_options()
+    sols = _run_stage(vmap, pixels, layout, starts_from(guess_geom, vrot0), base_free, opts)
+    flags_a = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols, layout.radii)]
+    stages["free"] = (sols, flags_a)
+    use = _usable(sols, flags_a)
+    if not use.any():
+        use = np.array([s.converged for s in sols])
+    par = np.array([s.params for s in sols])
+    err = np.array([s.errors for s in sols])
+
+    centre = dict(guess_geom)
+    for name in ("x_center", "y_center", "v_systemic"):
+        k = _INDEX[name]
+        if name not in fixed and use.any():
+            centre[name] = weighted_median(par[use, k], err[use, k])
+    # position angle average must respect the 0/360 wrap
+    ref = guess_geom["position_angle"]
+    par[:, _INDEX["position_angle"]] = _centre_angle(par[:, _INDEX["position_angle"]], ref)
+
+    # stage "centred"
+    free_b = base_free.copy()
+    free_b[[_INDEX["x_center"], _INDEX["y_center"], _INDEX["v_systemic"]]] = False
+    starts_b = starts_from(centre, np.where(use, par[:, _INDEX["v_rotation"]], vrot0))
+    for name in ("position_angle", "inclination"):
+        k = _INDEX[name]
+        if name not in fixed and use.any():
+            typical = weighted_median(par[use, k], err[use, k])
+            starts_b[:, k] = np.where(use & (np.abs(par[:, k] - typical) < 30), par[:, k], typical)
+    sols_b = _run_stage(vmap, pixels, layout, starts_b, free_b, opts)
+    flags_b = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_b, layout.radii)]
+    stages["centred"] = (sols_b, flags_b)
+    use_b = _usable(sols_b, flags_b)
+    par_b = np.array([s.params for s in sols_b])
+    err_b = np.array([s.errors for s in sols_b])
+    par_b[:, _INDEX["position_angle"]] = _centre_angle(par_b[:, _INDEX["position_angle"]], ref)
+
+    # stage "final": regularised geometry, then v_rotation (and v_radial) alone
+    geometry = {}
+    for name in ("position_angle", "inclination"):
+        k = _INDEX[name]
+        if name in fixed:
+            geometry[name] = (np.full(len(layout), guess_geom[name]), np.full(len(layout), np.nan), {"kind": "fixed"})
+        else:
+            geometry[name] = regularise(layout.radii, par_b[:, k], err_b[:, k], use_b)
+    free_c = np.zeros(7, bool)
+    free_c[_INDEX["v_rotation"]] = "v_rotation" not in fixed
+    free_c[_INDEX["v_radial"]] = base_free[_INDEX["v_radial"]]
+    starts_c = starts_from(centre, np.where(use_b, par_b[:, _INDEX["v_rotation"]], vrot0))
+    starts_c[:, _INDEX["position_angle"]] = geometry["position_angle"][0]
+    starts_c[:, _INDEX["inclination"]] = geometry["inclination"][0]
+    if options.fit_radial:
+        starts_c[:, _INDEX["v_radial"]] = np.where(use_b, par_b[:, _INDEX["v_radial"]], 0.0)
+    sols_c = _run_stage(vmap, pixels, layout, starts_c, free_c, opts)
+    side_sols = {}
+    if options.side == "both" and free_c.any():
+        for side in ("approaching", "receding"):
+            side_sols[side] = _run_stage(vmap, pixels, layout, starts_c, free_c, options.ring_options(side))
+    flags_c = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_c, layout.radii)]
+    stages["final"] = (sols_c, flags_c)
+
+    centre_err = {}
+    for name in ("x_center", "y_center", "v_systemic"):
+        k = _INDEX[name]
+        good = use & np.isfinite(err[:, k])
+        centre_err[name] = float(1.2533 / np.sqrt(np.sum(1.0 / err[good, k] ** 2))) if good.any() else np.nan
+
+    tables = {name: stage_table(vmap, layout, st_sols, st_flags) for name, (st_sols, st_flags) in stages.items()}
+    final = tables["final"]
+    for name in ("position_angle", "inclination"):
+        values = np.mod(geometry[name][0], 360.0) if name == "position_angle" else geometry[name][0]
+        final[name] = values * u.deg
+        final[f"{name}_err"] = geometry[name][1] * u.deg
+    for name in ("x_center", "y_center", "v_systemic"):
+        final[f"{name}_err"] = np.full(len(final), centre_err[name]) * u.Unit(UNITS[name])
+    _finish_velocity_errors(final, side_sols, options)
+    from .result import add_sky_centre
+
+    add_sky_centre(final, vmap)
+
+    finite = np.isfinite(np.asarray(final["v_rotation"]))
+    rings = {name: np.asarray(final[name].value)[finite] for name in PARAMETERS if name in final.colnames}
+    rings["radius"] = final["radius"].to_value(u.arcsec)[finite]
+    if "v_radial" not in rings:
+        rings["v_radial"] = np.zeros(finite.sum())
+    if finite.sum() == 0:
+        raise InputError("no ring could be fitted: the map has too few valid pixels along the rings; "
+                         "check the masking, or give wider rings (--ring-width)")
+    model = model_field(vmap.shape, vmap.sky_jacobian, rings, r_outer=layout.edges[-1])
+    residual = vmap.velocity - model
+    cautions += _cautions(final, options, vmap)
+    for c in cautions:
+        if c not in vmap.notes:
+            warnings.warn(c, FitCaution, stacklevel=2)
+    return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
+                     model=model, residual=residual, cautions=cautions,
+                     geometry_profiles={k: g[2] for k, g in geometry.items()}, centre=centre)
+
+
+def _finish_velocity_errors(final, side_sols, options):
+    """Add the side curves and the error components of v_rotation to the final table."""
+    kms = u.km / u.s
+    n = len(final)
+    v = final["v_rotation"].to_value(kms)
+    formal = final["v_rotation_err"].to_value(kms)
+    sides = np.zeros(n)
+    if side_sols:
+        v_app = np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in side_sols["approaching"]])
+        v_rec = np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in side_sols["receding"]])
+        final["v_rotation_approaching"] = v_app * kms
+        final["v_rotation_receding"] = v_rec * kms
+        sides = np.where(np.isfinite(v_app) & np.isfinite(v_rec), 0.5 * np.abs(v_app - v_rec), np.nan)
+        combined = np.hypot(formal, sides)
+        asym = np.isfinite(sides) & (2 * sides > np.maximum(3 * combined, 10.0))
+        final["flags"] = [ringflags.join(ringflags.split(f) + (["asymmetric"] if a else []))
+                          for f, a in zip(final["flags"], asym)]
+    inc = final["inclination"].to_value(u.rad)
+    inc_err = np.nan_to_num(final["inclination_err"].to_value(u.rad))
+    from_inc = np.abs(v) * inc_err / np.tan(inc)
+    final["v_rotation_err_formal"] = formal * kms
+    final["v_rotation_err_sides"] = sides * kms
+    final["v_rotation_err_inclination"] = from_inc * kms
+    total = np.sqrt(formal**2 + np.nan_to_num(sides) ** 2 + from_inc**2)
+    low = np.degrees(inc) < options.low_inclination
+    final["v_rotation_err"] = np.where(low, np.maximum(total, 0.5 * np.abs(v)), total) * kms
+    final["v_rotation_sin_i"] = v * np.sin(inc) * kms
+    final["v_rotation_sin_i_err"] = np.hypot(formal, np.nan_to_num(sides)) * np.sin(inc) * kms
+
+
+def _cautions(final, options, vmap) -> list:
+    out = []
+    inc = float(np.nanmedian(final["inclination"].to_value(u.deg)))
+    if inc < options.low_inclination:
+        out.append(f"low inclination ({inc:.0f} deg < {options.low_inclination:.0f}): v_rotation and inclination are "
+                   "degenerate, only v_rotation sin i (column v_rotation_sin_i) is well measured; v_rotation errors "
+                   "widened to at least half of v_rotation")
+    flagged = [f for f in final["flags"] if f]
+    if flagged:
+        counts = {}
+        for f in flagged:
+            for name in ringflags.split(f):
+                counts[name] = counts.get(name, 0) + 1
+        out.append("flagged rings: " + ", ".join(f"{n} x {name}" for name, n in counts.items()))
+    if vmap.beam is not None:
+        out.append("beam smearing is not corrected: v_rotation within about two beams of the centre is biased low")
+    return out

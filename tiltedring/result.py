@@ -1,0 +1,218 @@
+"""`FitResult`: the tables, maps and run record of a fit, and how they are written.
+
+Files written by :meth:`FitResult.write` into one folder (atomically: a temporary folder renamed
+into place on success):
+
+- ``rings.ecsv``: the final ring table (astropy ECSV, units in the header)
+- ``stage_free.ecsv``, ``stage_centred.ecsv``: the earlier stages' tables
+- ``model.fits``, ``residual.fits``: full-size maps on the input grid (input WCS, BUNIT km/s)
+- ``fit.json``: the run record (inputs with checksums, options, versions, first guess, stage
+  summaries, global statistics, cautions, what each error column means)
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from astropy import units as u
+from astropy.table import QTable
+
+from . import flags as ringflags
+from .kinematics import PARAMETERS, UNITS
+
+__all__ = ["FitResult", "stage_table", "ERROR_COLUMNS"]
+
+ERROR_COLUMNS = {
+    "v_rotation_err": "total uncertainty of v_rotation: formal, sides and inclination terms in quadrature "
+                      "(widened to half of v_rotation at low inclination)",
+    "v_rotation_err_formal": "least-squares error scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)",
+    "v_rotation_err_sides": "half the difference between approaching-side and receding-side fits",
+    "v_rotation_err_inclination": "v_rotation cot(i) times the inclination error",
+    "<parameter>_err of geometry": "formal errors scaled as above; in the final table, errors of the regularised "
+                                   "profile or of the robust average over rings",
+}
+
+
+def stage_table(vmap, layout, solutions, ring_flags) -> QTable:
+    """A ring table (one row per ring) from one stage's solutions."""
+    t = QTable()
+    t["radius"] = layout.radii * u.arcsec
+    t["radius_inner"] = layout.inner * u.arcsec
+    t["radius_outer"] = layout.outer * u.arcsec
+    par = np.array([s.params for s in solutions])
+    err = np.array([s.errors for s in solutions])
+    failed = np.array(["fit_failed" in f for f in ring_flags])
+    for k, name in enumerate(PARAMETERS):
+        if name == "v_radial" and not any(s.free[k] for s in solutions):
+            continue
+        values = par[:, k].copy()
+        if name in ("v_rotation", "v_radial"):
+            values[failed] = np.nan
+        t[name] = values * u.Unit(UNITS[name])
+        t[f"{name}_err"] = err[:, k] * u.Unit(UNITS[name])
+    t["n_pixels"] = np.array([s.n_pixels for s in solutions])
+    t["coverage"] = np.array([s.coverage for s in solutions])
+    t["chi2_reduced"] = np.array([s.chi2_reduced for s in solutions])
+    t["rms_residual"] = np.array([s.rms for s in solutions]) * u.km / u.s
+    t["flags"] = [ringflags.join(f) for f in ring_flags]
+    return t
+
+
+def add_sky_centre(table: QTable, vmap) -> None:
+    """Add ``ra_center``/``dec_center`` (deg) beside the pixel centre of each ring."""
+    ra = np.full(len(table), np.nan)
+    dec = np.full(len(table), np.nan)
+    if vmap.wcs is not None:
+        c = vmap.wcs.pixel_to_world(np.asarray(table["x_center"].value), np.asarray(table["y_center"].value))
+        ra, dec = c.spherical.lon.deg, c.spherical.lat.deg
+    index = table.colnames.index("y_center_err") + 1
+    table.add_column(ra * u.deg, name="ra_center", index=index)
+    table.add_column(dec * u.deg, name="dec_center", index=index + 1)
+
+
+def file_checksum(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+@dataclass
+class FitResult:
+    """Everything a fit produced. ``rings`` is the final table; ``stages`` holds every stage's."""
+
+    vmap: object
+    options: object
+    layout: object
+    first_guess: dict
+    stages: dict
+    rings: QTable
+    model: np.ndarray
+    residual: np.ndarray
+    cautions: list = field(default_factory=list)
+    geometry_profiles: dict = field(default_factory=dict)
+    centre: dict = field(default_factory=dict)
+    inputs: dict = field(default_factory=dict)
+
+    # ------------------------------------------------------------------ summaries
+    def statistics(self) -> dict:
+        """Global statistics of the residual field."""
+        res = self.residual[np.isfinite(self.residual)]
+        return {
+            "n_valid_pixels": int(np.isfinite(self.vmap.velocity).sum()),
+            "n_modelled_pixels": int(res.size),
+            "residual_rms": float(np.sqrt(np.mean(res**2))) if res.size else None,
+            "residual_median_abs": float(np.median(np.abs(res))) if res.size else None,
+            "pixels_per_beam": self.vmap.pixels_per_beam,
+            "pixel_scale_arcsec": self.vmap.pixel_scale,
+            "north_angle_deg": self.vmap.north_angle,
+        }
+
+    def geometry(self) -> dict:
+        """Disc-wide geometry: centre and systemic velocity, median position angle and inclination."""
+        t = self.rings
+        out = {}
+        for name in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination"):
+            col = np.asarray(t[name].value if hasattr(t[name], "value") else t[name], float)
+            out[name] = float(np.nanmedian(col))
+        out["position_angle_profile"] = self.geometry_profiles.get("position_angle", {}).get("kind")
+        out["inclination_profile"] = self.geometry_profiles.get("inclination", {}).get("kind")
+        return out
+
+    def record(self) -> dict:
+        """The run record written as ``fit.json``."""
+        from . import __version__
+        import astropy
+        import numba
+        import scipy
+
+        stage_summaries = {}
+        for name, table in self.stages.items():
+            ok = np.isfinite(np.asarray(table["v_rotation"].value))
+            stage_summaries[name] = {
+                "n_rings": len(table),
+                "n_fitted": int(ok.sum()),
+                "median_chi2_reduced": float(np.nanmedian(table["chi2_reduced"])) if ok.any() else None,
+                "median_position_angle": float(np.nanmedian(table["position_angle"].value)),
+                "median_inclination": float(np.nanmedian(table["inclination"].value)),
+            }
+        return {
+            "tool": "tiltedring",
+            "version": __version__,
+            "versions": {"numpy": np.__version__, "scipy": scipy.__version__, "astropy": astropy.__version__,
+                         "numba": numba.__version__},
+            "inputs": self.inputs,
+            "options": self.options.to_dict(),
+            "conventions": {
+                "position_angle": "of the receding half of the major axis, deg from north through east",
+                "inclination": "deg, 0 face-on, 90 edge-on",
+                "pixels": "0-based (numpy order, astropy origin=0)",
+                "v_radial": "positive when the minor-axis half at position_angle + 90 recedes; inflow or outflow "
+                            "needs the near side",
+            },
+            "ring_edges_arcsec": list(self.layout.edges),
+            "first_guess": self.first_guess,
+            "geometry": self.geometry(),
+            "geometry_profiles": self.geometry_profiles,
+            "stages": stage_summaries,
+            "statistics": self.statistics(),
+            "error_columns": ERROR_COLUMNS,
+            "flag_vocabulary": ringflags.FLAGS,
+            "cautions": self.cautions,
+        }
+
+    def summary(self) -> str:
+        """A few lines of plain text: geometry, curve extent and cautions."""
+        g = self.geometry()
+        t = self.rings
+        v = np.asarray(t["v_rotation"].value)
+        e = np.asarray(t["v_rotation_err"].value)
+        lines = [
+            f"centre x, y = {g['x_center']:.2f}, {g['y_center']:.2f} pix (RA, Dec = {g['ra_center']:.5f}, "
+            f"{g['dec_center']:.5f} deg)",
+            f"v_systemic = {g['v_systemic']:.1f} km/s; position angle = {g['position_angle']:.1f} deg "
+            f"({g['position_angle_profile']}); inclination = {g['inclination']:.1f} deg ({g['inclination_profile']})",
+            f"{len(t)} rings from {t['radius'][0].value:.1f} to {t['radius'][-1].value:.1f} arcsec; "
+            f"outermost v_rotation = {v[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} "
+            f"+/- {e[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} km/s",
+            f"residual rms = {self.statistics()['residual_rms']:.2f} km/s",
+        ]
+        lines += [f"caution: {c}" for c in self.cautions]
+        return "\n".join(lines)
+
+    def _repr_html_(self) -> str:
+        import html
+
+        rows = "".join(f"<li>{html.escape(line)}</li>" for line in self.summary().splitlines())
+        return f"<div><b>tiltedring fit</b> of {html.escape(str(self.vmap.source))}<ul>{rows}</ul></div>"
+
+    # ------------------------------------------------------------------ writing
+    def write(self, folder, overwrite: bool = False) -> Path:
+        """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``."""
+        from ._io import atomic_folder, write_json
+        from .maps import write_map
+
+        folder = Path(folder)
+        with atomic_folder(folder, overwrite=overwrite) as tmp:
+            _write_table(self.rings, tmp / "rings.ecsv")
+            for name, table in self.stages.items():
+                if name != "final":
+                    _write_table(table, tmp / f"stage_{name}.ecsv")
+            write_map(tmp / "model.fits", self.model, self.vmap, extra={"ORIGIN": "tiltedring model field"})
+            write_map(tmp / "residual.fits", self.residual, self.vmap, extra={"ORIGIN": "tiltedring data - model"})
+            write_json(tmp / "fit.json", self.record())
+        return folder
+
+
+def _write_table(table: QTable, path) -> None:
+    from ._io import atomic_path
+
+    out = table.copy()
+    out.meta["comment"] = ["written by tiltedring; conventions in fit.json",
+                           "position_angle: receding major axis, deg north through east; inclination 0 = face-on"]
+    with atomic_path(path) as tmp:
+        out.write(tmp, format="ascii.ecsv")
