@@ -5,8 +5,8 @@ A pixel at (x, y) has sky offsets (east, north) = J (x - x_c, y - y_c) in arcsec
 With phi the position angle of the receding major axis (north through east) and i the
 inclination (0 face-on)::
 
-    x_m =  east sin(phi) + north cos(phi)        along the receding major axis
-    y_m = -east cos(phi) + north sin(phi)        along the axis at position angle phi + 90
+    x_m = east sin(phi) + north cos(phi)         along the receding major axis
+    y_m = east cos(phi) - north sin(phi)         along the axis at position angle phi + 90
     x_d = x_m,   y_d = y_m / cos(i)              in the disc plane
     R = sqrt(x_d^2 + y_d^2),  cos(theta) = x_d / R,  sin(theta) = y_d / R
 
@@ -44,7 +44,7 @@ def _disc_coordinates(x, y, xc, yc, jac, pa, inc):
         east = jac[0, 0] * dx + jac[0, 1] * dy
         north = jac[1, 0] * dx + jac[1, 1] * dy
         xd = east * sp + north * cp
-        yd = (-east * cp + north * sp) / ci
+        yd = (east * cp - north * sp) / ci
         r = np.sqrt(xd * xd + yd * yd)
         radius[k] = r
         if r > 0.0:
@@ -70,8 +70,8 @@ def sky_from_disc(radius, azimuth, x_center, y_center, sky_jacobian, position_an
     xm = radius * np.cos(th)
     ym = radius * np.sin(th) * np.cos(np.radians(inclination))
     sp, cp = np.sin(np.radians(position_angle)), np.cos(np.radians(position_angle))
-    east = xm * sp - ym * cp
-    north = xm * cp + ym * sp
+    east = xm * sp + ym * cp
+    north = xm * cp - ym * sp
     dx, dy = np.linalg.solve(np.asarray(sky_jacobian, float), np.vstack([np.ravel(east), np.ravel(north)]))
     shape = np.shape(east)
     return x_center + dx.reshape(shape), y_center + dy.reshape(shape)
@@ -93,7 +93,7 @@ def _assign(x, y, jac, radii, xc, yc, pa, inc, r_outer):
             east = jac[0, 0] * dx + jac[0, 1] * dy
             north = jac[1, 0] * dx + jac[1, 1] * dy
             xd = east * sp + north * cp
-            yd = (-east * cp + north * sp) / ci
+            yd = (east * cp - north * sp) / ci
             f[j] = np.sqrt(xd * xd + yd * yd) - radii[j]
         if f[0] < 0.0:
             position[k] = 0.0

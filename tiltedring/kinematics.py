@@ -39,16 +39,16 @@ def _ring_model(x, y, p, jac):
     ti = si / ci
     # d(x_m, y_m)/d(x_c) and /d(y_c): the centre moves the pixel's sky offset by -J[:, col]
     dxm_dxc = -(jac[0, 0] * sp + jac[1, 0] * cp)
-    dym_dxc = -(-jac[0, 0] * cp + jac[1, 0] * sp)
+    dym_dxc = -(jac[0, 0] * cp - jac[1, 0] * sp)
     dxm_dyc = -(jac[0, 1] * sp + jac[1, 1] * cp)
-    dym_dyc = -(-jac[0, 1] * cp + jac[1, 1] * sp)
+    dym_dyc = -(jac[0, 1] * cp - jac[1, 1] * sp)
     for k in range(n):
         dx = x[k] - xc
         dy = y[k] - yc
         east = jac[0, 0] * dx + jac[0, 1] * dy
         north = jac[1, 0] * dx + jac[1, 1] * dy
         xd = east * sp + north * cp
-        yd = (-east * cp + north * sp) / ci
+        yd = (east * cp - north * sp) / ci
         r = np.sqrt(xd * xd + yd * yd)
         if r <= 0.0:
             model[k] = vsys
@@ -68,8 +68,8 @@ def _ring_model(x, y, p, jac):
         dxd, dyd = dxm_dyc, dym_dyc / ci
         deriv[k, 1] = dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd)
         deriv[k, 2] = 1.0
-        # position angle: d x_m/d phi = -y_m, d y_m/d phi = x_m
-        dxd, dyd = -yd * ci, xd / ci
+        # position angle: d x_m/d phi = y_m, d y_m/d phi = -x_m
+        dxd, dyd = yd * ci, -xd / ci
         deriv[k, 3] = DEG * (dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd))
         # inclination: d y_d/d i = y_d tan i
         dyd = yd * ti
@@ -97,7 +97,7 @@ def _line_of_sight(x, y, jac, xc, yc, vsys, pa, inc, vrot, vrad):
         east = jac[0, 0] * dx + jac[0, 1] * dy
         north = jac[1, 0] * dx + jac[1, 1] * dy
         xd = east * sp + north * cp
-        yd = (-east * cp + north * sp) / ci
+        yd = (east * cp - north * sp) / ci
         r = np.sqrt(xd * xd + yd * yd)
         if r > 0.0:
             out[k] = vsys[k] + si * (vrot[k] * xd / r + vrad[k] * yd / r)

@@ -214,7 +214,7 @@ def load_image(source, role: str = "velocity map", hdu=None):
     if isinstance(source, (fits.PrimaryHDU, fits.ImageHDU, fits.CompImageHDU)):
         if source.data is None:
             raise InputError(f"{role}: the HDU has no image data")
-        return _squeeze(np.array(source.data), source.header.copy(), role, name), source.header.copy(), name
+        return _squeeze(_blank_to_nan(source), source.header, role, name), source.header.copy(), name
     raise InputError(f"{role}: cannot read a {type(source).__name__}; give a FITS path, an HDU, or (array, header)")
 
 

@@ -245,6 +245,59 @@ def _ring_flags(sol, options, vmap, min_pixels, radius) -> set:
     return out
 
 
+def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=()):
+    """Centre and systemic velocity from one fit to all pixels at once, other ring values held.
+
+    Minimises sum |cos theta| (v - model)^2 / sigma^2 over (x_center, y_center, v_systemic) with
+    the full model field of ``rings`` (:func:`.kinematics.line_of_sight` after
+    :func:`.geometry.assign_to_rings`), so every ring constrains the centre coherently instead of
+    each ring alone. Returns (values, errors) dicts; errors scaled by sqrt(reduced chi-square x
+    pixels per beam).
+    """
+    from scipy.optimize import least_squares
+
+    from .geometry import assign_to_rings
+    from .kinematics import line_of_sight
+
+    x, y, v, sigma = pixels
+    names = [n for n in ("x_center", "y_center", "v_systemic") if n not in fixed]
+    if not names:
+        return dict(start), {}
+    order = np.argsort(rings["radius"])
+    table = {k: np.asarray(val, float)[order] for k, val in rings.items()}
+    table["position_angle"] = np.degrees(np.unwrap(np.radians(table["position_angle"])))
+    index = np.arange(len(order), dtype=float)
+
+    def residual(q):
+        cen = dict(start)
+        cen.update(zip(names, q))
+        n = len(order)
+        pos, _ = assign_to_rings(x, y, vmap.sky_jacobian, table["radius"], np.full(n, cen["x_center"]),
+                                 np.full(n, cen["y_center"]), table["position_angle"], table["inclination"], r_outer)
+        out = np.zeros(len(x))
+        inside = pos >= 0
+        per = {k: np.interp(pos[inside], index, table[k]) for k in ("position_angle", "inclination", "v_rotation")}
+        model = line_of_sight(x[inside], y[inside], vmap.sky_jacobian, x_center=cen["x_center"],
+                              y_center=cen["y_center"], v_systemic=cen["v_systemic"], **per)
+        _, cos_t, _ = disc_coordinates(x[inside], y[inside], cen["x_center"], cen["y_center"], vmap.sky_jacobian,
+                                       float(np.median(per["position_angle"])), float(np.median(per["inclination"])))
+        out[inside] = np.sqrt(np.abs(cos_t)) * (v[inside] - model) / sigma[inside]
+        return out
+
+    q0 = np.array([start[n] for n in names])
+    sol = least_squares(residual, q0, x_scale=np.array([0.5 if n != "v_systemic" else 2.0 for n in names]),
+                        diff_step=1e-4, max_nfev=60)
+    values = dict(start)
+    values.update(zip(names, sol.x))
+    dof = max(np.count_nonzero(sol.fun) - len(names), 1)
+    try:
+        cov = np.linalg.inv(sol.jac.T @ sol.jac) * (2 * sol.cost / dof) * vmap.pixels_per_beam
+        errors = dict(zip(names, np.sqrt(np.clip(np.diag(cov), 0, None))))
+    except np.linalg.LinAlgError:
+        errors = {n: np.nan for n in names}
+    return values, errors
+
+
 def _usable(solutions, ring_flags):
     return np.array([s.converged and not ({"fit_failed", "few_pixels", "poor_coverage"} & f)
                      for s, f in zip(solutions, ring_flags)])
@@ -321,6 +374,13 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     # position angle average must respect the 0/360 wrap
     ref = guess_geom["position_angle"]
     par[:, _INDEX["position_angle"]] = _centre_angle(par[:, _INDEX["position_angle"]], ref)
+    held = {"radius": layout.radii[use]}
+    for name in ("position_angle", "inclination", "v_rotation"):
+        k = _INDEX[name]
+        typical = weighted_median(par[use, k], err[use, k])
+        held[name] = par[use, k] if name == "v_rotation" else np.full(use.sum(), typical)
+    centre, centre_err = refine_centre(vmap, pixels, held, layout.edges[-1], centre, fixed) if use.sum() >= 2 else (
+        centre, {})
 
     # stage "centred"
     free_b = base_free.copy()
@@ -363,11 +423,12 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     flags_c = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_c, layout.radii)]
     stages["final"] = (sols_c, flags_c)
 
-    centre_err = {}
+    # the larger of the global fit's error and the ring-to-ring scatter of stage "free" (1.25 sigma/sqrt(n):
+    # error of a median), since beam-smearing residuals make the global fit's formal error optimistic
     for name in ("x_center", "y_center", "v_systemic"):
         k = _INDEX[name]
-        good = use & np.isfinite(err[:, k])
-        centre_err[name] = float(1.2533 / np.sqrt(np.sum(1.0 / err[good, k] ** 2))) if good.any() else np.nan
+        spread = 1.2533 * np.std(par[use, k]) / np.sqrt(use.sum()) if use.sum() > 2 else np.nan
+        centre_err[name] = float(np.nanmax([centre_err.get(name, np.nan), spread])) if name not in fixed else np.nan
 
     tables = {name: stage_table(vmap, layout, st_sols, st_flags) for name, (st_sols, st_flags) in stages.items()}
     final = tables["final"]

@@ -211,7 +211,11 @@ class FitResult:
 def _write_table(table: QTable, path) -> None:
     from ._io import atomic_path
 
-    out = table.copy()
+    from astropy.table import Column, Table
+
+    # plain columns with units: a cleaner ECSV header than serialised quantities
+    out = Table([Column(getattr(table[n], "value", table[n]), name=n, unit=getattr(table[n], "unit", None))
+                 for n in table.colnames])
     out.meta["comment"] = ["written by tiltedring; conventions in fit.json",
                            "position_angle: receding major axis, deg north through east; inclination 0 = face-on"]
     with atomic_path(path) as tmp:

@@ -53,7 +53,7 @@ class RingLayout:
         e = np.asarray(self.edges, float)
         if e.ndim != 1 or len(e) < 2 or not np.all(np.isfinite(e)) or np.any(np.diff(e) <= 0) or e[0] < 0:
             raise InputError(f"ring edges must be at least two increasing non-negative radii, got {list(e)}")
-        object.__setattr__(self, "edges", tuple(float(v) for v in e))
+        object.__setattr__(self, "edges", tuple(round(float(v), 6) for v in e))
 
     @classmethod
     def uniform(cls, width: float, max_radius: float, first_radius: float = 0.0) -> "RingLayout":

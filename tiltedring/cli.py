@@ -1,0 +1,220 @@
+"""The ``tiltedring`` command: a thin layer over the same API a notebook calls.
+
+Exit codes: 0 success, 2 unusable input or options (the message says what to fix),
+1 an unexpected failure.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import warnings
+from pathlib import Path
+
+EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
+
+FIT_EXAMPLES = """examples:
+  tiltedring fit demo_fields/ashgrove_velocity.fits --out ashgrove_fit
+  tiltedring fit map.fits --intensity-map mom0.fits --error-map emap.fits --ring-width 0.5beam --out fit1
+  tiltedring fit map.fits --ring-width 4pix --spacing logarithmic --max-radius 3arcmin --out fit2
+  tiltedring fit map.fits --inclination 62 --fix inclination --side receding --out fit3
+  tiltedring fit map.fits --config run.toml --out fit4
+
+A TOML run file holds the same options (underscores or dashes) in a [fit] table, starting
+values in [fit.initial], and input maps in [inputs]:
+
+  [inputs]
+  intensity_map = "mom0.fits"
+  [fit]
+  ring_width = "0.5beam"
+  weighting = "cos2"
+  fixed = ["v_systemic"]
+  [fit.initial]
+  v_systemic = 1450.0
+
+Options given on the command line win over the run file.
+"""
+
+_INITIAL = ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination",
+            "v_rotation")
+_INPUT_KEYS = ("error_map", "intensity_map", "beam", "pixel_scale", "velocity_unit")
+
+
+def _common() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-q", "--quiet", action="store_true", help="print errors only")
+    common.add_argument("-v", "--verbose", action="store_true", help="print the ring table too")
+    return common
+
+
+def _fit_parser(sub):
+    p = sub.add_parser("fit", parents=[_common()], help="fit a tilted-ring model to a velocity map",
+                       description="Fit a tilted-ring model to a 2-D velocity (moment-1) map and write the ring "
+                                   "table, model and residual maps and a run record into --out.",
+                       epilog=FIT_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("map", help="velocity map (FITS, BUNIT in km/s or m/s)")
+    p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--config", help="TOML run file with [inputs], [fit] and [fit.initial] tables")
+    g = p.add_argument_group("inputs")
+    g.add_argument("--error-map", help="map of velocity errors (same units rule as the map)")
+    g.add_argument("--intensity-map", help="intensity (moment-0) map; reprojected if on another grid")
+    g.add_argument("--beam", help="beam MAJ[,MIN[,PA]] in arcsec and deg (default: BMAJ/BMIN/BPA)")
+    g.add_argument("--pixel-scale", type=float, help="arcsec per pixel, for maps without celestial WCS")
+    g.add_argument("--velocity-unit", help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
+    g = p.add_argument_group("rings")
+    g.add_argument("--ring-width", help="ring width: 9arcsec, 4pix, 0.5beam or a bare number in arcsec "
+                                        "(default one beam, or two pixels without a beam)")
+    g.add_argument("--spacing", choices=("uniform", "logarithmic"), help="ring spacing (default uniform)")
+    g.add_argument("--growth", type=float, help="width ratio of successive logarithmic rings (default 1.2)")
+    g.add_argument("--ring-edges", help="explicit ring edges in arcsec, comma-separated")
+    g.add_argument("--first-radius", help="inner edge of the first ring (default 0)")
+    g.add_argument("--max-radius", help="outer edge of the last ring (default: edge of the valid data)")
+    g = p.add_argument_group("fitting")
+    g.add_argument("--weighting", choices=("uniform", "cos", "cos2"), help="angular weight (default cos)")
+    g.add_argument("--wedge", type=float, dest="exclusion_wedge",
+                   help="half-opening in deg of the excluded wedge about the minor axis (default 15)")
+    g.add_argument("--side", choices=("both", "approaching", "receding"), help="which half of the disc to fit")
+    g.add_argument("--clip", type=float, help="clip pixels beyond this many robust sigma and refit")
+    g.add_argument("--fix", action="append", default=None, metavar="NAME[,NAME]",
+                   help="hold parameters fixed: x_center y_center v_systemic position_angle inclination "
+                        "v_rotation v_radial")
+    g.add_argument("--fit-radial", action="store_true", default=None, help="also fit v_radial per ring")
+    g.add_argument("--low-inclination", type=float, help="flag and widen errors below this inclination (default 30)")
+    g.add_argument("--seed", type=int, help="seed of every random step (default 0)")
+    g = p.add_argument_group("starting values (used instead of the first guess)")
+    g.add_argument("--x-center", type=float, help="pixels, 0-based")
+    g.add_argument("--y-center", type=float, help="pixels, 0-based")
+    g.add_argument("--ra-center", type=float, help="deg")
+    g.add_argument("--dec-center", type=float, help="deg")
+    g.add_argument("--v-systemic", type=float, help="km/s")
+    g.add_argument("--position-angle", type=float, help="deg, receding side, north through east")
+    g.add_argument("--inclination", type=float, help="deg, 0 face-on")
+    g.add_argument("--v-rotation", type=float, help="km/s, flat rotation speed")
+    p.set_defaults(run=run_fit)
+    return p
+
+
+def build_parser() -> argparse.ArgumentParser:
+    from . import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="tiltedring",
+        description="Tilted-ring kinematic modelling of disc-galaxy velocity maps.",
+        epilog="Run 'tiltedring fit --help' for the fit's options and examples.",
+    )
+    parser.add_argument("--version", action="version", version=f"tiltedring {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    _fit_parser(sub)
+    return parser
+
+
+def _read_config(path) -> dict:
+    if path is None:
+        return {}
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    from .errors import InputError
+
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"run file {path} does not exist") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"run file {path} is not valid TOML: {exc}") from None
+
+
+def _gather(args) -> tuple:
+    """Merge the run file and the command line into (inputs, fit option values)."""
+    from .errors import InputError
+
+    config = _read_config(args.config)
+    unknown = set(config) - {"inputs", "fit"}
+    if unknown:
+        raise InputError(f"run file {args.config}: unknown table(s) {sorted(unknown)}; use [inputs] and [fit]")
+    base = Path(args.config).parent if args.config else Path(".")
+    inputs = {k.replace("-", "_"): v for k, v in config.get("inputs", {}).items()}
+    bad = set(inputs) - set(_INPUT_KEYS)
+    if bad:
+        raise InputError(f"run file: unknown input(s) {sorted(bad)}; known: {', '.join(_INPUT_KEYS)}")
+    for key in ("error_map", "intensity_map"):
+        if key in inputs:
+            inputs[key] = str(base / inputs[key])
+    for key in _INPUT_KEYS:
+        if getattr(args, key) is not None:
+            inputs[key] = getattr(args, key)
+    fit = {k.replace("-", "_"): v for k, v in config.get("fit", {}).items()}
+    fit["initial"] = dict(fit.get("initial", {}))
+    for key in ("ring_width", "spacing", "growth", "first_radius", "max_radius", "weighting", "exclusion_wedge",
+                "side", "clip", "fit_radial", "low_inclination", "seed"):
+        if getattr(args, key) is not None:
+            fit[key] = getattr(args, key)
+    if args.ring_edges is not None:
+        try:
+            fit["ring_edges"] = [float(e) for e in args.ring_edges.split(",")]
+        except ValueError:
+            raise InputError(f"--ring-edges {args.ring_edges!r}: give comma-separated numbers in arcsec") from None
+    if args.fix:
+        fit["fixed"] = [n.strip() for item in args.fix for n in item.split(",") if n.strip()]
+    for key in _INITIAL:
+        if getattr(args, key) is not None:
+            fit["initial"][key] = getattr(args, key)
+    return inputs, fit
+
+
+def run_fit(args) -> int:
+    from .errors import FitCaution
+    from .maps import read_velocity_map
+    from .pipeline import FitOptions, fit_velocity_map
+    from .result import file_checksum
+
+    inputs, fit_values = _gather(args)
+    options = FitOptions.from_mapping(fit_values)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FitCaution)
+        vmap = read_velocity_map(args.map, error=inputs.get("error_map"), intensity=inputs.get("intensity_map"),
+                                 beam=inputs.get("beam"), pixel_scale=inputs.get("pixel_scale"),
+                                 velocity_unit=inputs.get("velocity_unit"))
+        result = fit_velocity_map(vmap, options)
+    result.inputs = {"velocity_map": {"path": str(Path(args.map).resolve()), "sha256": file_checksum(args.map)}}
+    for key in ("error_map", "intensity_map"):
+        if inputs.get(key):
+            result.inputs[key] = {"path": str(Path(inputs[key]).resolve()), "sha256": file_checksum(inputs[key])}
+    for key in ("beam", "pixel_scale", "velocity_unit"):
+        if inputs.get(key) is not None:
+            result.inputs[key] = inputs[key]
+    result.write(args.out, overwrite=args.overwrite)
+    if not args.quiet:
+        print(result.summary())
+        if args.verbose:
+            print(result.rings)
+        other = [str(w.message) for w in caught if str(w.message) not in result.cautions]
+        for text in other:
+            print(f"caution: {text}")
+        print(f"wrote {args.out}/rings.ecsv, model.fits, residual.fits, fit.json")
+    return EXIT_OK
+
+
+def main(argv=None) -> int:
+    from .errors import InputError
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    try:
+        return args.run(args)
+    except InputError as exc:
+        print(f"tiltedring: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("tiltedring: interrupted; no output was left half-written", file=sys.stderr)
+        return EXIT_FAILURE
+
+
+if __name__ == "__main__":
+    sys.exit(main())
