@@ -30,6 +30,16 @@ def wrap_angle(angle):
     return np.mod(angle, 360.0)
 
 
+@njit(cache=True, inline="always")
+def project(x, y, xc, yc, jac, sp, cp, ci):
+    """Disc-plane (x_d, y_d) of one pixel, given sin/cos of the position angle and cos(i)."""
+    dx = x - xc
+    dy = y - yc
+    east = jac[0, 0] * dx + jac[0, 1] * dy
+    north = jac[1, 0] * dx + jac[1, 1] * dy
+    return east * sp + north * cp, (east * cp - north * sp) / ci
+
+
 @njit(cache=True)
 def _disc_coordinates(x, y, xc, yc, jac, pa, inc):
     n = x.shape[0]
@@ -39,12 +49,7 @@ def _disc_coordinates(x, y, xc, yc, jac, pa, inc):
     sp, cp = np.sin(pa * DEG), np.cos(pa * DEG)
     ci = np.cos(inc * DEG)
     for k in range(n):
-        dx = x[k] - xc
-        dy = y[k] - yc
-        east = jac[0, 0] * dx + jac[0, 1] * dy
-        north = jac[1, 0] * dx + jac[1, 1] * dy
-        xd = east * sp + north * cp
-        yd = (east * cp - north * sp) / ci
+        xd, yd = project(x[k], y[k], xc, yc, jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         radius[k] = r
         if r > 0.0:
@@ -87,13 +92,7 @@ def _assign(x, y, jac, radii, xc, yc, pa, inc, r_outer):
     for k in range(n):
         for j in range(m):
             sp, cp = np.sin(pa[j] * DEG), np.cos(pa[j] * DEG)
-            ci = np.cos(inc[j] * DEG)
-            dx = x[k] - xc[j]
-            dy = y[k] - yc[j]
-            east = jac[0, 0] * dx + jac[0, 1] * dy
-            north = jac[1, 0] * dx + jac[1, 1] * dy
-            xd = east * sp + north * cp
-            yd = (east * cp - north * sp) / ci
+            xd, yd = project(x[k], y[k], xc[j], yc[j], jac, sp, cp, np.cos(inc[j] * DEG))
             f[j] = np.sqrt(xd * xd + yd * yd) - radii[j]
         if f[0] < 0.0:
             position[k] = 0.0

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .geometry import DEG, assign_to_rings
+from .geometry import DEG, assign_to_rings, project
 
 __all__ = ["PARAMETERS", "ring_model", "line_of_sight", "model_field"]
 
@@ -43,12 +43,7 @@ def _ring_model(x, y, p, jac):
     dxm_dyc = -(jac[0, 1] * sp + jac[1, 1] * cp)
     dym_dyc = -(jac[0, 1] * cp - jac[1, 1] * sp)
     for k in range(n):
-        dx = x[k] - xc
-        dy = y[k] - yc
-        east = jac[0, 0] * dx + jac[0, 1] * dy
-        north = jac[1, 0] * dx + jac[1, 1] * dy
-        xd = east * sp + north * cp
-        yd = (east * cp - north * sp) / ci
+        xd, yd = project(x[k], y[k], xc, yc, jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         if r <= 0.0:
             model[k] = vsys
@@ -92,12 +87,7 @@ def _line_of_sight(x, y, jac, xc, yc, vsys, pa, inc, vrot, vrad):
     for k in range(n):
         sp, cp = np.sin(pa[k] * DEG), np.cos(pa[k] * DEG)
         si, ci = np.sin(inc[k] * DEG), np.cos(inc[k] * DEG)
-        dx = x[k] - xc[k]
-        dy = y[k] - yc[k]
-        east = jac[0, 0] * dx + jac[0, 1] * dy
-        north = jac[1, 0] * dx + jac[1, 1] * dy
-        xd = east * sp + north * cp
-        yd = (east * cp - north * sp) / ci
+        xd, yd = project(x[k], y[k], xc[k], yc[k], jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         if r > 0.0:
             out[k] = vsys[k] + si * (vrot[k] * xd / r + vrad[k] * yd / r)
