@@ -22,11 +22,14 @@ from scipy.spatial.transform import Rotation
 
 
 def particle_sky(radius, azimuth, v_circ, position_angle, inclination, v_rad=0.0):
-    """(east, north) arcsec and line-of-sight velocity of disc particles (azimuth in rad)."""
+    """(east, north) arcsec and line-of-sight velocity of disc particles (azimuth in rad).
+
+    ``position_angle`` and ``inclination`` (deg) may be arrays, one per particle (a warped disc)."""
     pos = np.stack([radius * np.cos(azimuth), radius * np.sin(azimuth), np.zeros_like(radius)], axis=1)
     vel = np.stack([-v_circ * np.sin(azimuth) + v_rad * np.cos(azimuth),
                     v_circ * np.cos(azimuth) + v_rad * np.sin(azimuth), np.zeros_like(radius)], axis=1)
-    rot = Rotation.from_euler("xz", [inclination, position_angle], degrees=True)
+    angles = np.column_stack(np.broadcast_arrays(np.asarray(inclination, float), np.asarray(position_angle, float)))
+    rot = Rotation.from_euler("xz", angles if angles.shape[0] > 1 else angles[0], degrees=True)
     sky_pos, sky_vel = rot.apply(pos), rot.apply(vel)
     north, east = sky_pos[:, 0], sky_pos[:, 1]
     return east, north, sky_vel[:, 2]
@@ -45,15 +48,36 @@ def grid_wcs(ra, dec, shape, pixel_scale, rotation=0.0):
 
 def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0, beam_pixels=4.0, noise=4.0,
                v_flat=200.0, r_turn=12.0, v_systemic=3000.0, centre_offset=(3.3, -2.7), rotation=0.0,
-               unit="km/s", seed=0, n_particles=3_000_000, disc_radius=None, ra=210.5, dec=-33.25):
-    """Return (HDUList of the velocity map, truth dict). Rotation curve v_flat tanh(R / r_turn)."""
+               unit="km/s", seed=0, n_particles=3_000_000, disc_radius=None, ra=210.5, dec=-33.25,
+               warp=None, bar=None, v_radial=0.0):
+    """Return (HDUList of the velocity map, truth dict). Rotation curve v_flat tanh(R / r_turn).
+
+    warp: (onset radius arcsec, twist deg, tilt deg) reached linearly at the disc edge.
+    bar: (bar radius arcsec, bar angle deg in the disc plane from the receding axis, v_2t, v_2r km/s):
+    the bisymmetric flow of Spekkens & Sellwood 2007, tangential v_t - v_2t cos 2(t - angle) and radial
+    -v_2r sin 2(t - angle), inside the bar radius (tapered over 5 per cent of it).
+    v_radial: a uniform radial velocity (positive outward)."""
     rng = np.random.default_rng(seed)
     ny, nx = shape
     disc_radius = disc_radius or 0.45 * min(shape) * pixel_scale
     radius = disc_radius * np.sqrt(rng.uniform(0, 1, n_particles))
     azimuth = rng.uniform(0, 2 * np.pi, n_particles)
     v_c = v_flat * np.tanh(radius / r_turn)
-    east, north, v_los = particle_sky(radius, azimuth, v_c, position_angle, inclination)
+    v_r = np.full(n_particles, float(v_radial))
+    pa_r = np.full(n_particles, float(position_angle))
+    inc_r = np.full(n_particles, float(inclination))
+    if warp is not None:
+        onset, twist, tilt = warp
+        frac = np.clip((radius - onset) / (disc_radius - onset), 0, None)
+        pa_r += twist * frac
+        inc_r += tilt * frac
+    if bar is not None:
+        r_bar, angle, v2t, v2r = bar
+        inside = 1.0 / (1.0 + np.exp((radius - r_bar) / (0.05 * r_bar)))
+        tb = 2 * (azimuth - np.radians(angle))
+        v_c = v_c - v2t * inside * np.cos(tb)
+        v_r = v_r - v2r * inside * np.sin(tb)
+    east, north, v_los = particle_sky(radius, azimuth, v_c, pa_r, inc_r, v_rad=v_r)
     wcs = grid_wcs(ra, dec, shape, pixel_scale, rotation)
     centre_pix = np.array([nx / 2.0 - 0.5 + centre_offset[0], ny / 2.0 - 0.5 + centre_offset[1]])
     centre = wcs.pixel_to_world(*centre_pix)
@@ -79,5 +103,10 @@ def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0
     truth = {"x_center": centre_pix[0], "y_center": centre_pix[1], "v_systemic": v_systemic,
              "position_angle": position_angle % 360.0, "inclination": inclination,
              "v_rotation": lambda r: v_flat * np.tanh(np.asarray(r) / r_turn), "beam": beam_pixels * pixel_scale,
-             "ra": float(centre.ra.deg), "dec": float(centre.dec.deg)}
+             "ra": float(centre.ra.deg), "dec": float(centre.dec.deg), "disc_radius": disc_radius}
+    if warp is not None:
+        onset, twist, tilt = warp
+        frac = lambda r: np.clip((np.asarray(r) - onset) / (disc_radius - onset), 0, None)  # noqa: E731
+        truth["position_angle_at"] = lambda r: (position_angle + twist * frac(r)) % 360.0
+        truth["inclination_at"] = lambda r: inclination + tilt * frac(r)
     return hdul, truth

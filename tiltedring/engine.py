@@ -47,7 +47,7 @@ class RingFitOptions:
     side: str = "both"
     clip: float | None = None
     max_iterations: int = 40
-    geometry_updates: int = 3
+    geometry_updates: int = 10
 
     def __post_init__(self):
         from .errors import InputError
@@ -161,6 +161,22 @@ def _normalise(p):
     return p
 
 
+def _fit_selected(x, y, v, idx, w_sqrt, p, free, jac, options, n_free):
+    """LM on the selected pixels, with optional iterative clipping; returns (p, r, A, converged, idx)."""
+    for _round in range(4 if options.clip else 1):
+        p_new, r, a, converged = _levenberg_marquardt(x[idx], y[idx], v[idx], w_sqrt, p.copy(), free, jac,
+                                                      options.max_iterations)
+        if not options.clip:
+            break
+        raw = r / np.where(w_sqrt > 0, w_sqrt, 1.0)
+        mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
+        good = np.abs(raw) <= options.clip * max(mad, 1e-9)
+        if good.all() or good.sum() < 2 * n_free:
+            break
+        idx, w_sqrt = idx[good], w_sqrt[good]
+    return p_new, r, a, converged, idx
+
+
 def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=RingFitOptions(),
              pixels_per_beam: float = 1.0, min_pixels: int = 0) -> RingSolution:
     """Fit one ring spanning disc radii ``[inner, outer)`` arcsec.
@@ -175,38 +191,42 @@ def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=Ri
     n_free = int(free.sum())
     jac = np.ascontiguousarray(sky_jacobian, float)
     power = WEIGHTINGS[options.weighting]
-    geometry_free = bool(free[[0, 1, 3, 4]].any())
-    keep_prev = None
-    clip_mask = None
+    geometry = np.zeros(7, bool)
+    geometry[[0, 1, 3, 4]] = True
+    geometry_free = bool((free & geometry).any())
     result = None
     for _ in range(options.geometry_updates if geometry_free else 1):
         keep, cos_t, sin_t = _select(x, y, p, jac, inner, outer, options)
-        if clip_mask is not None:
-            keep &= clip_mask
         n = int(keep.sum())
         if n < max(min_pixels, 2 * n_free, 3):
             return RingSolution(p, np.full(7, np.nan), n, _coverage(cos_t[keep], sin_t[keep], options),
                                 np.nan, np.nan, False, free)
         idx = np.flatnonzero(keep)
         w_sqrt = np.abs(cos_t[idx]) ** (power / 2.0) / sigma[idx]
-        for _round in range(4 if options.clip else 1):
-            p_new, r, a, converged = _levenberg_marquardt(x[idx], y[idx], v[idx], w_sqrt, p.copy(), free, jac,
-                                                          options.max_iterations)
-            if not options.clip:
-                break
-            raw = r / np.where(w_sqrt > 0, w_sqrt, 1.0)
-            mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
-            good = np.abs(raw) <= options.clip * max(mad, 1e-9)
-            if good.all() or good.sum() < 2 * n_free:
-                break
-            idx, w_sqrt = idx[good], w_sqrt[good]
-            clip_mask = np.zeros(len(x), bool)
-            clip_mask[idx] = True
-        p = p_new
+        p_new, r, a, converged, idx = _fit_selected(x, y, v, idx, w_sqrt, p, free, jac, options, n_free)
         result = (idx, r, a, converged, cos_t, sin_t)
-        if keep_prev is not None and np.array_equal(keep_prev, keep):
+        step = p_new - p
+        if not geometry_free or np.max(np.abs(step[geometry])) < 0.02:
+            p = p_new
             break
-        keep_prev = keep
+        # Damped fixed-point update of the geometry: the pixel selection depends on the geometry, and an
+        # undamped update can flip between two selections (seen in warped discs); velocities take the full step.
+        p = p_new - 0.5 * np.where(geometry, step, 0.0)
+    else:
+        # not settled: hold the damped geometry and refit the velocities on its own pixel selection
+        keep, cos_t, sin_t = _select(x, y, p, jac, inner, outer, options)
+        idx = np.flatnonzero(keep)
+        if len(idx) < max(min_pixels, 2 * n_free, 3):
+            return RingSolution(p, np.full(7, np.nan), len(idx), _coverage(cos_t[keep], sin_t[keep], options),
+                                np.nan, np.nan, False, free)
+        w_sqrt = np.abs(cos_t[idx]) ** (power / 2.0) / sigma[idx]
+        velocities = free & ~geometry
+        if velocities.any():
+            p, _, _, _, idx_v = _fit_selected(x, y, v, idx, w_sqrt, p, velocities, jac, options, int(velocities.sum()))
+            keep_v = np.isin(idx, idx_v)
+            idx, w_sqrt = idx[keep_v], w_sqrt[keep_v]
+        _, r, a, _ = _levenberg_marquardt(x[idx], y[idx], v[idx], w_sqrt, p, free, jac, 0)  # Jacobian for errors
+        result = (idx, r, a, True, cos_t, sin_t)
     idx, r, a, converged, cos_t, sin_t = result
     n = len(idx)
     dof = max(n - n_free, 1)
