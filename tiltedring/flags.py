@@ -12,6 +12,10 @@ FLAGS = {
                        "only v_rotation sin i is well measured; v_rotation errors are widened",
     "inside_beam": "ring centre within one beam of the kinematic centre: beam smearing biases v_rotation low",
     "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
+    "warp": "beyond the warp onset: position angle and inclination follow the warp profile",
+    "radial_flow": "a circular + radial flow model fits the ring much better (BIC) with a significant v_radial",
+    "bisymmetric_flow": "a bisymmetric (m=2, bar-like) flow fits the ring much better (BIC) with a significant amplitude",
+    "strong_harmonics": "significant non-circular harmonics (orders 1-3) in the ring's velocities",
 }
 
 

@@ -5,10 +5,12 @@
    v_rotation (and v_radial when asked).
 3. stage ``centred``: centre and systemic velocity fixed to a robust (error-weighted median)
    average of stage ``free``; position angle, inclination and v_rotation refitted.
-4. stage ``final``: position angle and inclination regularised — a constant when the ring values
-   are consistent with one (chi-square test, p > 0.001), otherwise the lowest-BIC polynomial in
-   radius of degree 1–3 — then v_rotation (and v_radial) refitted with the geometry fixed, on
-   both sides together and on each side alone.
+4. stage ``final``: position angle and inclination regularised — constant for a flat disc, or
+   constant inside an onset radius and smooth beyond it when a warp is detected (:mod:`.warp`) —
+   then v_rotation (and v_radial) refitted with the geometry fixed, on both sides together and
+   on each side alone.
+5. diagnostics at the final geometry (:mod:`.diagnostics`): harmonic decomposition, radial and
+   bisymmetric flow models with BIC selection, approaching/receding asymmetry; flags set.
 
 Uncertainty of v_rotation in the final table, in quadrature:
 ``v_rotation_err_formal`` (least squares, scaled by reduced chi-square and pixels per beam),
@@ -23,7 +25,6 @@ import warnings
 from dataclasses import asdict, dataclass, field
 
 import numpy as np
-from scipy import stats
 
 from . import flags as ringflags
 from .engine import RingFitOptions, fit_ring
@@ -35,6 +36,7 @@ from astropy import units as u
 from .kinematics import PARAMETERS, UNITS, model_field
 from .maps import VelocityMap
 from .rings import RingLayout, parse_width
+from .warp import geometry_profile
 
 __all__ = ["FitOptions", "fit_velocity_map"]
 
@@ -75,6 +77,8 @@ class FitOptions:
     low_inclination: float = 30.0
     min_beams_per_ring: float = 4.0
     min_coverage: float = 0.5
+    diagnostics: bool = True
+    bar_range: tuple | None = None
 
     def __post_init__(self):
         self.fixed = tuple(self.fixed)
@@ -131,39 +135,6 @@ def weighted_median(values, errors):
 def _centre_angle(values, reference):
     """Angles (deg) re-expressed within 180 deg of ``reference`` so they can be averaged."""
     return reference + np.mod(np.asarray(values, float) - reference + 180.0, 360.0) - 180.0
-
-
-def regularise(radius, values, errors, use):
-    """Constant or smooth polynomial profile of a geometry parameter (module docstring).
-
-    Returns (profile at every radius, profile error at every radius, description dict).
-    """
-    r, v, e = np.asarray(radius, float), np.asarray(values, float), np.asarray(errors, float)
-    ok = use & np.isfinite(v) & np.isfinite(e) & (e > 0)
-    if ok.sum() < 2:
-        val = weighted_median(v[ok], e[ok]) if ok.any() else np.nanmedian(v)
-        return np.full(r.shape, val), np.full(r.shape, np.nan), {"kind": "constant", "p_value": None}
-    w = 1.0 / e[ok] ** 2
-    mean = float(np.sum(w * v[ok]) / w.sum())
-    chi2 = float(np.sum(w * (v[ok] - mean) ** 2))
-    dof = int(ok.sum() - 1)
-    p_value = float(stats.chi2.sf(chi2, dof))
-    mean_err = float(np.sqrt(1.0 / w.sum() * max(chi2 / max(dof, 1), 1.0)))
-    if p_value > 1e-3 or ok.sum() < 5:
-        return np.full(r.shape, mean), np.full(r.shape, mean_err), {"kind": "constant", "p_value": p_value}
-    best = None
-    scale = max(r[ok].max(), 1e-9)
-    for degree in range(1, min(3, int(ok.sum()) - 2) + 1):
-        coef, cov = np.polyfit(r[ok] / scale, v[ok], degree, w=np.sqrt(w), cov="unscaled")
-        c2 = float(np.sum(w * (v[ok] - np.polyval(coef, r[ok] / scale)) ** 2))
-        bic = c2 + (degree + 1) * np.log(ok.sum())
-        if best is None or bic < best[0]:
-            best = (bic, degree, coef, cov, c2)
-    _, degree, coef, cov, c2 = best
-    scale_cov = max(c2 / max(ok.sum() - degree - 1, 1), 1.0)
-    basis = np.vander(r / scale, degree + 1)
-    err = np.sqrt(np.einsum("ij,jk,ik->i", basis, cov * scale_cov, basis))
-    return np.polyval(coef, r / scale), err, {"kind": f"polynomial degree {degree}", "p_value": p_value}
 
 
 # --------------------------------------------------------------------------- set-up
@@ -400,13 +371,16 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     par_b[:, _INDEX["position_angle"]] = _centre_angle(par_b[:, _INDEX["position_angle"]], ref)
 
     # stage "final": regularised geometry, then v_rotation (and v_radial) alone
-    geometry = {}
+    kp, ki = _INDEX["position_angle"], _INDEX["inclination"]
+    profile = geometry_profile(layout.radii, par_b[:, kp], err_b[:, kp], par_b[:, ki], err_b[:, ki], use_b,
+                               vmap.beam.fwhm if vmap.beam is not None else None)
+    geometry = {"position_angle": (profile.position_angle, profile.position_angle_err),
+                "inclination": (profile.inclination, profile.inclination_err)}
     for name in ("position_angle", "inclination"):
-        k = _INDEX[name]
         if name in fixed:
-            geometry[name] = (np.full(len(layout), guess_geom[name]), np.full(len(layout), np.nan), {"kind": "fixed"})
-        else:
-            geometry[name] = regularise(layout.radii, par_b[:, k], err_b[:, k], use_b)
+            geometry[name] = (np.full(len(layout), guess_geom[name]), np.full(len(layout), np.nan))
+    warp_summary = profile.summary if not ({"position_angle", "inclination"} & fixed) else {
+        "detected": False, "onset_radius": None, "note": "geometry fixed by the user: no warp test"}
     free_c = np.zeros(7, bool)
     free_c[_INDEX["v_rotation"]] = "v_rotation" not in fixed
     free_c[_INDEX["v_radial"]] = base_free[_INDEX["v_radial"]]
@@ -442,6 +416,14 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     from .result import add_sky_centre
 
     add_sky_centre(final, vmap)
+    summaries = {"warp": warp_summary}
+    if warp_summary.get("detected"):
+        onset = warp_summary["onset_radius"]
+        final["flags"] = [ringflags.join(ringflags.split(f) + (["warp"] if r >= onset else []))
+                          for f, r in zip(final["flags"], layout.radii)]
+    if options.diagnostics:
+        summaries.update(_diagnose(final, vmap, pixels, layout, options, use_b))
+    final = final[[c for c in final.colnames if c != "flags"] + ["flags"]]
 
     finite = np.isfinite(np.asarray(final["v_rotation"]))
     rings = {name: np.asarray(final[name].value)[finite] for name in PARAMETERS if name in final.colnames}
@@ -453,13 +435,36 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
                          "check the masking, or give wider rings (--ring-width)")
     model = model_field(vmap.shape, vmap.sky_jacobian, rings, r_outer=layout.edges[-1])
     residual = vmap.velocity - model
-    cautions += _cautions(final, options, vmap)
+    cautions += _cautions(final, options, vmap, summaries)
     for c in cautions:
         if c not in vmap.notes:
             warnings.warn(c, FitCaution, stacklevel=2)
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
-                     model=model, residual=residual, cautions=cautions,
-                     geometry_profiles={k: g[2] for k, g in geometry.items()}, centre=centre)
+                     model=model, residual=residual, cautions=cautions, diagnostics=summaries, centre=centre)
+
+
+def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
+    """Harmonics, flow models and asymmetry at the final geometry; adds columns and flags to ``final``."""
+    from .diagnostics import asymmetry_summary, diagnose
+
+    rings = {name: np.asarray(final[name].value, float) for name in ("x_center", "y_center", "position_angle",
+                                                                     "inclination")}
+    columns, ring_flags, summary = diagnose(pixels, vmap.sky_jacobian, rings, layout.inner, layout.outer,
+                                            vmap.pixels_per_beam, bar_range=options.bar_range)
+    kms = u.km / u.s
+    for name, values in columns.items():
+        if name == "flow_model":
+            final[name] = [str(v) for v in values]
+        elif name.startswith(("harmonic_c", "harmonic_s", "noncircular_amplitude", "noncircular_in_plane", "v_")):
+            final[name] = np.asarray(values, float) * kms
+        else:
+            final[name] = np.asarray(values, float)
+    final["flags"] = [ringflags.join(ringflags.split(f) + sorted(extra)) for f, extra in zip(final["flags"], ring_flags)]
+    if "v_rotation_approaching" in final.colnames:
+        final["v_rotation_difference"] = final["v_rotation_receding"] - final["v_rotation_approaching"]
+        summary["asymmetry"] = asymmetry_summary(final["v_rotation_approaching"].value,
+                                                 final["v_rotation_receding"].value, usable)
+    return summary
 
 
 def _finish_velocity_errors(final, side_sols, options):
@@ -492,8 +497,17 @@ def _finish_velocity_errors(final, side_sols, options):
     final["v_rotation_sin_i_err"] = np.hypot(formal, np.nan_to_num(sides)) * np.sin(inc) * kms
 
 
-def _cautions(final, options, vmap) -> list:
+def _cautions(final, options, vmap, summaries) -> list:
     out = []
+    warp = summaries.get("warp", {})
+    if warp.get("detected"):
+        out.append(f"warp detected beyond {warp['onset_radius']:.1f} arcsec (twist {warp['twist']:+.1f} deg, tilt "
+                   f"{warp['tilt']:+.1f} deg): geometry varies with radius there")
+    nc = summaries.get("non_circular", {})
+    if nc.get("detected"):
+        out.append(f"non-circular motions ({', '.join(nc['kinds'])}) in {len(nc['radii'])} ring(s), up to "
+                   f"{nc['max_amplitude']:.0f} km/s in the disc plane: v_rotation there is not the circular speed; "
+                   "see flow_model and v_t_<model> columns")
     inc = float(np.nanmedian(final["inclination"].to_value(u.deg)))
     if inc < options.low_inclination:
         out.append(f"low inclination ({inc:.0f} deg < {options.low_inclination:.0f}): v_rotation and inclination are "

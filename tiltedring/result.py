@@ -94,7 +94,7 @@ class FitResult:
     model: np.ndarray
     residual: np.ndarray
     cautions: list = field(default_factory=list)
-    geometry_profiles: dict = field(default_factory=dict)
+    diagnostics: dict = field(default_factory=dict)
     centre: dict = field(default_factory=dict)
     inputs: dict = field(default_factory=dict)
 
@@ -119,8 +119,7 @@ class FitResult:
         for name in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination"):
             col = np.asarray(t[name].value if hasattr(t[name], "value") else t[name], float)
             out[name] = float(np.nanmedian(col))
-        out["position_angle_profile"] = self.geometry_profiles.get("position_angle", {}).get("kind")
-        out["inclination_profile"] = self.geometry_profiles.get("inclination", {}).get("kind")
+        out["profile"] = self.diagnostics.get("warp", {}).get("profile", "constant")
         return out
 
     def record(self) -> dict:
@@ -157,7 +156,7 @@ class FitResult:
             "ring_edges_arcsec": list(self.layout.edges),
             "first_guess": self.first_guess,
             "geometry": self.geometry(),
-            "geometry_profiles": self.geometry_profiles,
+            **self.diagnostics,
             "stages": stage_summaries,
             "statistics": self.statistics(),
             "error_columns": ERROR_COLUMNS,
@@ -174,8 +173,8 @@ class FitResult:
         lines = [
             f"centre x, y = {g['x_center']:.2f}, {g['y_center']:.2f} pix (RA, Dec = {g['ra_center']:.5f}, "
             f"{g['dec_center']:.5f} deg)",
-            f"v_systemic = {g['v_systemic']:.1f} km/s; position angle = {g['position_angle']:.1f} deg "
-            f"({g['position_angle_profile']}); inclination = {g['inclination']:.1f} deg ({g['inclination_profile']})",
+            f"v_systemic = {g['v_systemic']:.1f} km/s; position angle = {g['position_angle']:.1f} deg; "
+            f"inclination = {g['inclination']:.1f} deg (median over rings; geometry {g['profile']})",
             f"{len(t)} rings from {t['radius'][0].value:.1f} to {t['radius'][-1].value:.1f} arcsec; "
             f"outermost v_rotation = {v[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} "
             f"+/- {e[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} km/s",
