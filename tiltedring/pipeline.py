@@ -22,7 +22,7 @@ into v_rotation).
 from __future__ import annotations
 
 import warnings
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 
@@ -281,13 +281,74 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     """Fit a tilted-ring model to ``vmap``; returns a :class:`.result.FitResult`.
 
     Options come as a :class:`FitOptions` or as keyword arguments of the same names.
-    """
-    from .result import FitResult, stage_table
 
+    Radial flows and the position angle are nearly degenerate (a constant v_radial looks like a
+    turned major axis, apart from a weak third-harmonic signature), so a radial flow cannot be
+    judged at a geometry fitted without it. Unless ``fit_radial`` is set (or v_radial fixed, or
+    diagnostics off), the whole fit is therefore run twice — circular, and circular + radial —
+    and the radial one is adopted only when it lowers the disc-wide BIC by more than 10 (with
+    the pixel-correlation correction) and its v_radial is significant (:func:`compare_radial`).
+    """
     if options is None:
         options = FitOptions(**option_values)
     elif option_values:
         raise TypeError("give either a FitOptions or keyword options, not both")
+    result = _fit_once(vmap, options)
+    if options.diagnostics and not options.fit_radial and "v_radial" not in options.fixed:
+        radial = _fit_once(vmap, replace(options, fit_radial=True))
+        verdict = compare_radial(result.rings, radial.rings, vmap.pixels_per_beam)
+        if verdict["adopted"]:
+            result = radial
+            result.cautions.insert(0, f"radial flows: the circular + radial model fits much better (disc-wide "
+                                      f"delta BIC {verdict['delta_bic']:.0f}); v_radial fitted in every ring")
+        result.diagnostics["radial_test"] = verdict
+    for c in result.cautions:
+        if c not in vmap.notes:
+            warnings.warn(c, FitCaution, stacklevel=2)
+    return result
+
+
+def compare_radial(circular, radial, pixels_per_beam: float, min_delta_bic: float = 10.0,
+                   min_amplitude: float = 5.0) -> dict:
+    """Disc-wide BIC of the final-stage fits with and without v_radial (pixel-correlation corrected).
+
+    chi^2 of each run = sum over rings of chi2_reduced (n_pixels - k); s^2 = the radial run's
+    chi^2 per degree of freedom; BIC = chi^2 / (s^2 p) + k_total ln(n / p), p pixels per beam.
+    Because a per-ring v_radial is penalised ring by ring while its signature beyond a turned major
+    axis is weak, a coherent flow also counts: at least 70 per cent of the rings (and four or more)
+    with v_radial of one sign beyond twice its error. Adopted when (delta BIC > ``min_delta_bic`` or
+    coherent) and the median |v_radial| exceeds both ``min_amplitude`` km/s and three times its
+    median error.
+    """
+    ok = np.isfinite(np.asarray(circular["chi2_reduced"], float)) & np.isfinite(np.asarray(radial["chi2_reduced"], float))
+    if ok.sum() < 2:
+        return {"adopted": False, "delta_bic": None}
+    n_c = np.asarray(circular["n_pixels"])[ok]
+    n_r = np.asarray(radial["n_pixels"])[ok]
+    chi_c = float(np.sum(np.asarray(circular["chi2_reduced"])[ok] * (n_c - 1)))
+    chi_r = float(np.sum(np.asarray(radial["chi2_reduced"])[ok] * (n_r - 2)))
+    s2 = chi_r / max(np.sum(n_r - 2), 1)
+    n_eff = max(np.sum(n_r) / pixels_per_beam, 2.0)
+    rings = int(ok.sum())
+    delta = (chi_c - chi_r) / (s2 * pixels_per_beam) - rings * np.log(n_eff)
+    vr = radial["v_radial"].value[ok]
+    er = radial["v_radial_err"].value[ok]
+    amplitude, error = float(np.nanmedian(np.abs(vr))), float(np.nanmedian(er))
+    sign = np.sign(np.nanmedian(vr))
+    measured = np.isfinite(vr) & np.isfinite(er)
+    coherent = bool(measured.sum() >= 4 and np.mean((np.sign(vr[measured]) == sign)
+                                                    & (np.abs(vr[measured]) > 2 * er[measured])) >= 0.7)
+    adopted = bool((delta > min_delta_bic or coherent) and amplitude > max(min_amplitude, 3 * error))
+    return {"adopted": adopted, "delta_bic": float(delta), "coherent": coherent, "median_abs_v_radial": amplitude,
+            "median_v_radial_err": error,
+            "criterion": f"(delta BIC > {min_delta_bic} or >= 70% of rings with one sign beyond 2 sigma) and "
+                         f"median |v_radial| > max({min_amplitude} km/s, 3 x its error)"}
+
+
+def _fit_once(vmap: VelocityMap, options: FitOptions):
+    """One full staged fit (module docstring) with the given options."""
+    from .result import FitResult, stage_table
+
     cautions = list(vmap.notes)
     initial = _resolve_initial(vmap, options)
 
@@ -372,8 +433,23 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
 
     # stage "final": regularised geometry, then v_rotation (and v_radial) alone
     kp, ki = _INDEX["position_angle"], _INDEX["inclination"]
-    profile = geometry_profile(layout.radii, par_b[:, kp], err_b[:, kp], par_b[:, ki], err_b[:, ki], use_b,
+    use_geometry = use_b.copy()
+    excluded = []
+    if options.diagnostics:
+        # Rings whose velocities are not circular even at their own best geometry (bars, streaming) would
+        # drag the disc's geometry and fake a warp: they take no part in the geometry decision.
+        from .diagnostics import diagnose
+
+        own = {"x_center": par_b[:, _INDEX["x_center"]], "y_center": par_b[:, _INDEX["y_center"]],
+               "position_angle": par_b[:, kp], "inclination": par_b[:, ki]}
+        _, pre_flags, _ = diagnose(pixels, vmap.sky_jacobian, own, layout.inner, layout.outer, vmap.pixels_per_beam)
+        non_circular = np.array([bool(f) for f in pre_flags])
+        if (use_b & ~non_circular).sum() >= 3:
+            use_geometry &= ~non_circular
+            excluded = [float(r) for r in layout.radii[use_b & non_circular]]
+    profile = geometry_profile(layout.radii, par_b[:, kp], err_b[:, kp], par_b[:, ki], err_b[:, ki], use_geometry,
                                vmap.beam.fwhm if vmap.beam is not None else None)
+    profile.summary["rings_excluded_as_non_circular"] = excluded
     geometry = {"position_angle": (profile.position_angle, profile.position_angle_err),
                 "inclination": (profile.inclination, profile.inclination_err)}
     for name in ("position_angle", "inclination"):
@@ -417,6 +493,8 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
 
     add_sky_centre(final, vmap)
     summaries = {"warp": warp_summary}
+    final["warp_tilt"] = profile.tilt * u.deg
+    final["warp_line_of_nodes"] = profile.line_of_nodes * u.deg
     if warp_summary.get("detected"):
         onset = warp_summary["onset_radius"]
         final["flags"] = [ringflags.join(ringflags.split(f) + (["warp"] if r >= onset else []))
@@ -436,9 +514,6 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     model = model_field(vmap.shape, vmap.sky_jacobian, rings, r_outer=layout.edges[-1])
     residual = vmap.velocity - model
     cautions += _cautions(final, options, vmap, summaries)
-    for c in cautions:
-        if c not in vmap.notes:
-            warnings.warn(c, FitCaution, stacklevel=2)
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
                      model=model, residual=residual, cautions=cautions, diagnostics=summaries, centre=centre)
 

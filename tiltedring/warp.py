@@ -10,7 +10,9 @@ compared by BIC = chi^2 / s^2 + k ln(n) (Schwarz 1978) with s^2 the reduced chi-
 best warp model when it exceeds 1 (so optimistic ring errors cannot fake a warp); k counts g_0, a,
 (b) for both angles plus the onset. A warp is reported when the BIC favours it by more than
 ``min_delta_bic`` *and* the model's twist or tilt at the outermost ring exceeds ``min_change``
-degrees. Rings inside ``2 beams`` are left out of the test: beam smearing biases their geometry.
+degrees. A warp bends the outer disc away from a flat inner one, so at least ``min_inner_rings``
+tested rings must lie inside the onset. Rings inside ``2 beams`` are left out of the test (beam
+smearing biases their geometry), and so are rings the caller marks as non-circular.
 
 Tilt and line of nodes (Briggs 1990, ApJ 352, 15): each ring's plane is compared with the inner
 (reference) disc; the tilt is the angle between their normals and the line of nodes the azimuth,
@@ -33,6 +35,7 @@ class WarpTest:
     min_delta_bic: float = 10.0
     min_change: float = 2.0
     inner_beams: float = 2.0
+    min_inner_rings: int = 3
 
 
 @dataclass
@@ -44,10 +47,12 @@ class GeometryProfile:
     inclination: np.ndarray
     inclination_err: np.ndarray
     summary: dict = field(default_factory=dict)
+    tilt: np.ndarray | None = None
+    line_of_nodes: np.ndarray | None = None
 
 
-def _design(r, onset, degree):
-    d = np.clip(r - onset, 0.0, None)
+def _design(r, onset, degree, outward=True):
+    d = np.clip(r - onset if outward else onset - r, 0.0, None)
     return np.column_stack([np.ones_like(r)] + [d**p for p in range(1, degree + 1)])
 
 
@@ -64,67 +69,94 @@ def _centre_on(values, reference):
 
 
 def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test: WarpTest = WarpTest()):
-    """Decide flat or warped and return the :class:`GeometryProfile` (module docstring)."""
+    """Decide flat or warped and return the :class:`GeometryProfile` (module docstring).
+
+    A parameter whose errors are all missing (held fixed by the user) stays at its value and takes
+    no part in the test.
+    """
     r = np.asarray(radius, float)
-    ok = use & np.isfinite(pa) & np.isfinite(inc) & (pa_err > 0) & (inc_err > 0)
-    ok &= np.isfinite(pa_err) & np.isfinite(inc_err)
+    values = {"pa": np.asarray(pa, float), "inc": np.asarray(inc, float)}
+    errors = {"pa": np.asarray(pa_err, float), "inc": np.asarray(inc_err, float)}
+    free = [name for name in ("pa", "inc") if (use & np.isfinite(errors[name]) & (errors[name] > 0)).any()]
+    ok = use.copy()
+    for name in free:
+        ok &= np.isfinite(values[name]) & np.isfinite(errors[name]) & (errors[name] > 0)
     if not ok.any():
-        ok = np.isfinite(pa) & np.isfinite(inc)
-    ref = float(np.median(pa[ok]))
-    pa = _centre_on(np.asarray(pa, float), ref)
+        ok = np.isfinite(values["pa"]) & np.isfinite(values["inc"])
+    values["pa"] = _centre_on(values["pa"], float(np.median(values["pa"][ok])))
     tested = ok & (r >= test.inner_beams * beam_fwhm) if beam_fwhm else ok.copy()
     if tested.sum() < 4:
         tested = ok
     n = int(tested.sum())
-    rt, pt, it = r[tested], pa[tested], inc[tested]
-    pe, ie = pa_err[tested], inc_err[tested]
-
-    flat = {name: _wls(np.ones((n, 1)), v, e) for name, v, e in (("pa", pt, pe), ("inc", it, ie))}
-    chi2_flat = flat["pa"][2] + flat["inc"][2]
-    best = None
-    if n >= 6:
-        for onset in np.concatenate([[rt.min() - 1e-6], rt[:-3]]):
-            for degree in (1, 2):
-                if n - 2 * (degree + 1) - 1 < 2:
-                    continue
-                a = _design(rt, onset, degree)
-                fits = {name: _wls(a, v, e) for name, v, e in (("pa", pt, pe), ("inc", it, ie))}
-                chi2 = fits["pa"][2] + fits["inc"][2]
-                k = 2 * (degree + 1) + 1
-                if best is None or chi2 + k * np.log(n) < best[0] + best[1] * np.log(n):
-                    best = (chi2, k, onset, degree, fits)
+    rt = r[tested]
+    flat = {name: _wls(np.ones((n, 1)), values[name][tested], errors[name][tested]) for name in free}
+    chi2_flat = sum(f[2] for f in flat.values())
+    constant = {name: float(np.median(values[name][ok])) for name in ("pa", "inc")}
+    best = {}
+    if n >= 6 and free:
+        m = test.min_inner_rings
+        for outward, onsets in ((True, rt[m - 1:-3]), (False, rt[3:len(rt) - m + 1])):
+            for onset in onsets:
+                for degree in (1, 2):
+                    k = len(free) * (degree + 1) + 1
+                    if n - k < 2:
+                        continue
+                    a = _design(rt, onset, degree, outward)
+                    fits = {name: _wls(a, values[name][tested], errors[name][tested]) for name in free}
+                    chi2 = sum(f[2] for f in fits.values())
+                    old = best.get(outward)
+                    if old is None or chi2 + k * np.log(n) < old[0] + old[1] * np.log(n):
+                        best[outward] = (chi2, k, onset, degree, fits)
     summary = {"detected": False, "onset_radius": None, "twist": 0.0, "tilt": 0.0, "delta_bic": None,
-               "rings_tested": n, "test": "flat versus warp beyond an onset radius (BIC)",
+               "rings_tested": n, "test": "flat versus warp beyond an onset radius versus inner change (BIC)",
                "thresholds": {"min_delta_bic": test.min_delta_bic, "min_change_deg": test.min_change,
-                              "rings_inside_beams_excluded": test.inner_beams}}
-    if best is not None:
-        chi2_w, k_w, onset, degree, fits = best
-        s2 = max(1.0, chi2_w / max(n - k_w, 1))
-        delta_bic = (chi2_flat / s2 + 2 * np.log(n)) - (chi2_w / s2 + k_w * np.log(n))
-        a_all = _design(r, onset, degree)
-        prof = {name: a_all @ fits[name][0] for name in ("pa", "inc")}
-        outer = rt.max()
-        change = {name: float((_design(np.array([outer]), onset, degree) @ fits[name][0])[0] - fits[name][0][0])
-                  for name in ("pa", "inc")}
-        summary["delta_bic"] = float(delta_bic)
-        if delta_bic > test.min_delta_bic and max(abs(change["pa"]), abs(change["inc"])) > test.min_change:
-            errs = {name: np.sqrt(np.einsum("ij,jk,ik->i", a_all, fits[name][1] * s2, a_all)) for name in ("pa", "inc")}
-            inner_pa, inner_inc = fits["pa"][0][0], fits["inc"][0][0]
-            tilt, lon = tilt_and_line_of_nodes(prof["pa"], prof["inc"], inner_pa, inner_inc)
+                              "rings_inside_beams_excluded": test.inner_beams,
+                              "min_flat_rings": test.min_inner_rings}}
+    if best:
+        s2 = max(1.0, min(b[0] / max(n - b[1], 1) for b in best.values()))
+        bic = {key: b[0] / s2 + b[1] * np.log(n) for key, b in best.items()}
+        bic_flat = chi2_flat / s2 + len(free) * np.log(n)
+        winner = min(bic, key=bic.get)
+        chi2_w, k_w, onset, degree, fits = best[winner]
+        probe = _design(np.array([rt.max() if winner else rt.min()]), onset, degree, winner)
+        change = {name: float((probe @ fits[name][0])[0] - fits[name][0][0]) for name in free}
+        delta_bic = bic_flat - bic[winner]
+        big = delta_bic > test.min_delta_bic and max(abs(c) for c in change.values()) > test.min_change
+        summary["delta_bic"] = float(bic_flat - bic[True]) if True in bic else None
+        if big and winner:
+            a_all = _design(r, onset, degree)
+            prof, errs = {}, {}
+            for name in ("pa", "inc"):
+                if name in fits:
+                    prof[name] = a_all @ fits[name][0]
+                    errs[name] = np.sqrt(np.einsum("ij,jk,ik->i", a_all, fits[name][1] * s2, a_all))
+                else:
+                    prof[name], errs[name] = np.full(r.shape, constant[name]), np.full(r.shape, np.nan)
+            tilt, lon = tilt_and_line_of_nodes(prof["pa"], prof["inc"], prof["pa"][0], prof["inc"][0])
             summary.update({
-                "detected": True, "onset_radius": float(max(onset, 0.0)), "twist": change["pa"],
-                "tilt": change["inc"], "profile": "constant inside the onset, " + ("linear" if degree == 1 else
-                                                                                  "quadratic") + " beyond",
+                "detected": True, "onset_radius": float(max(onset, 0.0)), "twist": change.get("pa", 0.0),
+                "tilt": change.get("inc", 0.0),
+                "profile": "constant inside the onset, " + ("linear" if degree == 1 else "quadratic") + " beyond",
                 "outer_tilt_angle": float(tilt[np.argmax(r)]),
-                "line_of_nodes": [None if not np.isfinite(v) else float(v) for v in lon],
             })
-            return GeometryProfile(np.mod(prof["pa"], 360.0), errs["pa"], prof["inc"], errs["inc"], summary)
-    s2_flat = max(1.0, chi2_flat / max(2 * n - 2, 1))
-    values = {name: (flat[name][0][0], np.sqrt(flat[name][1][0, 0] * s2_flat)) for name in ("pa", "inc")}
-    summary["profile"] = "constant"
+            return GeometryProfile(np.mod(prof["pa"], 360.0), errs["pa"], prof["inc"], errs["inc"], summary,
+                                   tilt, lon)
+        if big:
+            # the geometry changes inside a radius and is flat outside: non-circular motion (bar, oval) or an
+            # inner disc seen differently; the outer flat value is the disc's geometry
+            summary["inner_change"] = {"radius": float(onset), "position_angle_change": change.get("pa", 0.0),
+                                       "inclination_change": change.get("inc", 0.0),
+                                       "meaning": "ring geometry departs from the outer disc's inside this radius: "
+                                                  "non-circular motions or an inner disc; the outer value is used"}
+            flat = {name: (fits[name][0][:1], fits[name][1][:1, :1], 0.0) for name in fits}
+            chi2_flat = chi2_w
+    s2_flat = max(1.0, chi2_flat / max(len(free) * (n - 1), 1))
     ones = np.ones_like(r)
-    return GeometryProfile(np.mod(values["pa"][0], 360.0) * ones, values["pa"][1] * ones, values["inc"][0] * ones,
-                           values["inc"][1] * ones, summary)
+    mean = {name: (flat[name][0][0], np.sqrt(flat[name][1][0, 0] * s2_flat)) if name in flat else (constant[name], np.nan)
+            for name in ("pa", "inc")}
+    summary["profile"] = "constant"
+    return GeometryProfile(np.mod(mean["pa"][0], 360.0) * ones, mean["pa"][1] * ones, mean["inc"][0] * ones,
+                           mean["inc"][1] * ones, summary, np.zeros_like(r), np.full(r.shape, np.nan))
 
 
 def disc_normal(position_angle, inclination):
