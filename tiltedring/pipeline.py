@@ -79,6 +79,7 @@ class FitOptions:
     min_coverage: float = 0.5
     diagnostics: bool = True
     bar_range: tuple | None = None
+    beam_correction: bool = True
 
     def __post_init__(self):
         self.fixed = tuple(self.fixed)
@@ -470,6 +471,14 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
             side_sols[side] = _run_stage(vmap, pixels, layout, starts_c, free_c, options.ring_options(side))
     flags_c = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_c, layout.radii)]
     stages["final"] = (sols_c, flags_c)
+    beam = None
+    if options.beam_correction and vmap.beam is not None and free_c[_INDEX["v_rotation"]]:
+        constant = [] if warp_summary.get("detected") else [n for n in ("position_angle", "inclination")
+                                                             if n not in fixed]
+        beam = _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
+                                 profile.used, constant, ref)
+        for name in constant:
+            geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
 
     # the larger of the global fit's error and the ring-to-ring scatter of stage "free" (1.25 sigma/sqrt(n):
     # error of a median), since beam-smearing residuals make the global fit's formal error optimistic
@@ -486,11 +495,21 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         final[f"{name}_err"] = geometry[name][1] * u.deg
     for name in ("x_center", "y_center", "v_systemic"):
         final[f"{name}_err"] = np.full(len(final), centre_err[name]) * u.Unit(UNITS[name])
+    if beam is not None:
+        kms = u.km / u.s
+        observed = final["v_rotation"].to_value(kms)
+        corrected = beam["corrected"]["v_rotation"]
+        final["v_rotation_smeared"] = observed * kms
+        final["v_rotation"] = corrected * kms
+        # the correction stretches the curve, and with it the noise: scale the formal error alike
+        final["v_rotation_err"] = final["v_rotation_err"] * np.maximum(1.0, np.nan_to_num(corrected / observed, nan=1.0))
     _finish_velocity_errors(final, side_sols, options)
     from .result import add_sky_centre
 
     add_sky_centre(final, vmap)
     summaries = {"warp": warp_summary}
+    if beam is not None:
+        summaries["beam_smearing"] = beam["summary"]
     final["warp_tilt"] = profile.tilt * u.deg
     final["warp_line_of_nodes"] = profile.line_of_nodes * u.deg
     if warp_summary.get("detected"):
@@ -509,7 +528,8 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     if finite.sum() == 0:
         raise InputError("no ring could be fitted: the map has too few valid pixels along the rings; "
                          "check the masking, or give wider rings (--ring-width)")
-    model = model_field(vmap.shape, vmap.sky_jacobian, rings, r_outer=layout.edges[-1])
+    model = beam["model"] if beam is not None else model_field(vmap.shape, vmap.sky_jacobian, rings,
+                                                               r_outer=layout.edges[-1])
     residual = vmap.velocity - model
     cautions += _cautions(final, options, vmap, summaries)
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
@@ -538,6 +558,68 @@ def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
         summary["asymmetry"] = asymmetry_summary(final["v_rotation_approaching"].value,
                                                  final["v_rotation_receding"].value, usable)
     return summary
+
+
+def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
+                      reference_pa):
+    """Beam-smearing correction of the final curve (and of a constant geometry) by forward modelling.
+
+    What the data gave (stage ``final`` speeds; the constant position angle / inclination as the
+    error-weighted mean of stage ``centred`` over the rings ``used``) is reproduced by fitting the
+    smeared model of a trial disc the same way, and the trial is corrected until they agree
+    (:func:`.smearing.correct_beam_smearing`).
+    """
+    from .smearing import BeamKernel, correct_beam_smearing
+
+    x, y, _, sigma = pixels
+    ix, iy = x.astype(int), y.astype(int)
+    observed = {"v_rotation": np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols_c])}
+    weights = {}
+    for name in constant:
+        k = _INDEX[name]
+        w = np.where(used & np.isfinite(err_b[:, k]) & (err_b[:, k] > 0), 1.0 / np.maximum(err_b[:, k], 1e-12) ** 2, 0)
+        weights[name] = w / w.sum() if w.sum() > 0 else None
+        observed[name] = float(starts_c[0, k])
+    constant = [n for n in constant if weights[n] is not None]
+
+    def measure(model_map):
+        values = model_map[iy, ix]
+        good = np.isfinite(values)
+        px = (x[good], y[good], values[good], sigma[good])
+        starts = starts_c.copy()
+        out = {}
+        if constant:
+            sols = _run_stage(vmap, px, layout, starts_b, free_b, opts)
+            for name in constant:
+                k = _INDEX[name]
+                vals = np.array([s.params[k] for s in sols])
+                vals = _centre_angle(vals, reference_pa) if name == "position_angle" else vals
+                out[name] = float(np.nansum(weights[name] * vals))
+                starts[:, k] = out[name]
+        sols = _run_stage(vmap, px, layout, starts, free_c, opts)
+        out["v_rotation"] = np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols])
+        return out
+
+    rings = {name: starts_c[:, k] for name, k in _INDEX.items()}
+    rings["radius"] = layout.radii
+    rings["v_rotation"] = observed["v_rotation"]
+    kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
+    corrected, model, iterations, converged = correct_beam_smearing(vmap, rings, layout.edges[-1], observed, measure,
+                                                                    kernel=kernel)
+    for name in constant:
+        if name == "position_angle":
+            corrected[name] = corrected[name] % 360.0
+    summary = {
+        "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I, iterated until the smeared "
+                                     "model refitted the same way reproduces the data's fit",
+        "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
+        "intensity": "uniform over the modelled disc (no intensity map given)" if vmap.intensity is None
+        else "the intensity map",
+        "iterations": iterations, "converged": converged,
+        "geometry_corrected": constant,
+        "geometry_change": {n: float(corrected[n] - observed[n]) for n in constant},
+    }
+    return {"corrected": corrected, "model": model, "summary": summary}
 
 
 def _finish_velocity_errors(final, side_sols, options):
@@ -593,6 +675,13 @@ def _cautions(final, options, vmap, summaries) -> list:
             for name in ringflags.split(f):
                 counts[name] = counts.get(name, 0) + 1
         out.append("flagged rings: " + ", ".join(f"{n} x {name}" for name, n in counts.items()))
-    if vmap.beam is not None:
+    beam = summaries.get("beam_smearing")
+    if vmap.beam is not None and beam is None:
         out.append("beam smearing is not corrected: v_rotation within about two beams of the centre is biased low")
+    elif beam is not None:
+        if vmap.intensity is None:
+            out.append("beam-smearing correction assumed a uniform intensity over the disc (no intensity map given)")
+        if not beam["converged"]:
+            out.append(f"beam-smearing correction did not settle in {beam['iterations']} iterations: the inner curve "
+                       "is uncertain by more than its errors say")
     return out

@@ -49,6 +49,7 @@ class GeometryProfile:
     summary: dict = field(default_factory=dict)
     tilt: np.ndarray | None = None
     line_of_nodes: np.ndarray | None = None
+    used: np.ndarray | None = None
 
 
 def _design(r, onset, degree, outward=True):
@@ -140,7 +141,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
                 "outer_tilt_angle": float(tilt[np.argmax(r)]),
             })
             return GeometryProfile(np.mod(prof["pa"], 360.0), errs["pa"], prof["inc"], errs["inc"], summary,
-                                   tilt, lon)
+                                   tilt, lon, tested)
         if big:
             # the geometry changes inside a radius and is flat outside: non-circular motion (bar, oval) or an
             # inner disc seen differently; the outer flat value is the disc's geometry
@@ -156,7 +157,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
             for name in ("pa", "inc")}
     summary["profile"] = "constant"
     return GeometryProfile(np.mod(mean["pa"][0], 360.0) * ones, mean["pa"][1] * ones, mean["inc"][0] * ones,
-                           mean["inc"][1] * ones, summary, np.zeros_like(r), np.full(r.shape, np.nan))
+                           mean["inc"][1] * ones, summary, np.zeros_like(r), np.full(r.shape, np.nan), tested)
 
 
 def disc_normal(position_angle, inclination):
