@@ -12,8 +12,9 @@
 5. diagnostics at the final geometry (:mod:`.diagnostics`): harmonic decomposition, radial and
    bisymmetric flow models with BIC selection, approaching/receding asymmetry; flags set.
 
-Uncertainty of v_rotation in the final table, in quadrature:
-``v_rotation_err_formal`` (least squares, scaled by reduced chi-square and pixels per beam),
+Uncertainty of v_rotation in the final table, in quadrature: a noise term, the larger of
+``v_rotation_err_formal`` (least squares, scaled by reduced chi-square and pixels per beam) and
+``v_rotation_err_resampled`` (:mod:`.resampling`, residual-like correlated noise), then
 ``v_rotation_err_sides`` (half the approaching-receding difference; de Blok et al. 2008, common
 practice) and ``v_rotation_err_inclination`` (v cot(i) sigma_i, the inclination error carried
 into v_rotation).
@@ -35,6 +36,7 @@ from astropy import units as u
 
 from .kinematics import PARAMETERS, UNITS, model_field
 from .maps import VelocityMap
+from .resampling import resample
 from .rings import RingLayout, parse_width
 from .warp import geometry_profile
 
@@ -80,6 +82,8 @@ class FitOptions:
     diagnostics: bool = True
     bar_range: tuple | None = None
     beam_correction: bool = True
+    resamples: int = 20
+    quiet: bool = True
 
     def __post_init__(self):
         self.fixed = tuple(self.fixed)
@@ -478,7 +482,8 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         beam = _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
                                  profile.used, constant, ref)
         for name in constant:
-            geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
+            if name in beam["corrected"]:
+                geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
 
     # the larger of the global fit's error and the ring-to-ring scatter of stage "free" (1.25 sigma/sqrt(n):
     # error of a median), since beam-smearing residuals make the global fit's formal error optimistic
@@ -495,21 +500,45 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         final[f"{name}_err"] = geometry[name][1] * u.deg
     for name in ("x_center", "y_center", "v_systemic"):
         final[f"{name}_err"] = np.full(len(final), centre_err[name]) * u.Unit(UNITS[name])
+    kms = u.km / u.s
+    ratio = np.ones(len(final))
     if beam is not None:
-        kms = u.km / u.s
         observed = final["v_rotation"].to_value(kms)
         corrected = beam["corrected"]["v_rotation"]
         final["v_rotation_smeared"] = observed * kms
         final["v_rotation"] = corrected * kms
-        # the correction stretches the curve, and with it the noise: scale the formal error alike
-        final["v_rotation_err"] = final["v_rotation_err"] * np.maximum(1.0, np.nan_to_num(corrected / observed, nan=1.0))
+        # the correction stretches the curve, and with it the noise: scale the noise errors alike
+        ratio = np.maximum(1.0, np.nan_to_num(corrected / observed, nan=1.0))
+        final["v_rotation_err"] = final["v_rotation_err"] * ratio
+    finite = np.isfinite(final["v_rotation"].to_value(kms))
+    if finite.sum() == 0:
+        raise InputError("no ring could be fitted: the map has too few valid pixels along the rings; "
+                         "check the masking, or give wider rings (--ring-width)")
+    rings = {name: np.asarray(final[name].value)[finite] for name in PARAMETERS if name in final.colnames}
+    rings["radius"] = final["radius"].to_value(u.arcsec)[finite]
+    model = beam["model"] if beam is not None else model_field(vmap.shape, vmap.sky_jacobian, rings,
+                                                               r_outer=layout.edges[-1])
+    residual = vmap.velocity - model
+    summaries = {"warp": warp_summary}
+    if beam is not None:
+        summaries["beam_smearing"] = beam["summary"]
+    if options.resamples > 0 and free_c[_INDEX["v_rotation"]]:
+        constant = [] if warp_summary.get("detected") else [n for n in ("position_angle", "inclination")
+                                                             if n not in fixed]
+        measure, _ = _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
+                                    profile.used, constant, ref)
+        scatter = resample(model, residual, measure, options.resamples, seed=options.seed, quiet=options.quiet)
+        final["v_rotation_err_resampled"] = scatter["v_rotation"] * ratio * kms
+        for name in constant:
+            final[f"{name}_err"] = np.fmax(final[f"{name}_err"].to_value(u.deg), scatter[name]) * u.deg
+        summaries["resampling"] = {
+            "realisations": options.resamples, "seed": options.seed,
+            "method": "noise fields with the power spectrum and rms of the residual map, added to the model and "
+                      "refitted (stage centred geometry and stage final speeds)"}
     _finish_velocity_errors(final, side_sols, options)
     from .result import add_sky_centre
 
     add_sky_centre(final, vmap)
-    summaries = {"warp": warp_summary}
-    if beam is not None:
-        summaries["beam_smearing"] = beam["summary"]
     final["warp_tilt"] = profile.tilt * u.deg
     final["warp_line_of_nodes"] = profile.line_of_nodes * u.deg
     if warp_summary.get("detected"):
@@ -519,18 +548,6 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     if options.diagnostics:
         summaries.update(_diagnose(final, vmap, pixels, layout, options, use_b))
     final = final[[c for c in final.colnames if c != "flags"] + ["flags"]]
-
-    finite = np.isfinite(np.asarray(final["v_rotation"]))
-    rings = {name: np.asarray(final[name].value)[finite] for name in PARAMETERS if name in final.colnames}
-    rings["radius"] = final["radius"].to_value(u.arcsec)[finite]
-    if "v_radial" not in rings:
-        rings["v_radial"] = np.zeros(finite.sum())
-    if finite.sum() == 0:
-        raise InputError("no ring could be fitted: the map has too few valid pixels along the rings; "
-                         "check the masking, or give wider rings (--ring-width)")
-    model = beam["model"] if beam is not None else model_field(vmap.shape, vmap.sky_jacobian, rings,
-                                                               r_outer=layout.edges[-1])
-    residual = vmap.velocity - model
     cautions += _cautions(final, options, vmap, summaries)
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
                      model=model, residual=residual, cautions=cautions, diagnostics=summaries, centre=centre)
@@ -560,17 +577,13 @@ def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
     return summary
 
 
-def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
-                      reference_pa):
-    """Beam-smearing correction of the final curve (and of a constant geometry) by forward modelling.
+def _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
+                   reference_pa):
+    """The fit of a model map done as on the data: returns (measure(map) -> dict, what the data gave).
 
-    What the data gave (stage ``final`` speeds; the constant position angle / inclination as the
-    error-weighted mean of stage ``centred`` over the rings ``used``) is reproduced by fitting the
-    smeared model of a trial disc the same way, and the trial is corrected until they agree
-    (:func:`.smearing.correct_beam_smearing`).
+    Measured: stage ``final`` speeds and, for each name in ``constant``, the error-weighted mean of
+    stage ``centred`` over the rings ``used`` (weights from the data's errors, so draws are comparable).
     """
-    from .smearing import BeamKernel, correct_beam_smearing
-
     x, y, _, sigma = pixels
     ix, iy = x.astype(int), y.astype(int)
     observed = {"v_rotation": np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols_c])}
@@ -578,9 +591,9 @@ def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, star
     for name in constant:
         k = _INDEX[name]
         w = np.where(used & np.isfinite(err_b[:, k]) & (err_b[:, k] > 0), 1.0 / np.maximum(err_b[:, k], 1e-12) ** 2, 0)
-        weights[name] = w / w.sum() if w.sum() > 0 else None
-        observed[name] = float(starts_c[0, k])
-    constant = [n for n in constant if weights[n] is not None]
+        if w.sum() > 0:
+            weights[name] = w / w.sum()
+            observed[name] = float(starts_c[0, k])
 
     def measure(model_map):
         values = model_map[iy, ix]
@@ -588,27 +601,42 @@ def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, star
         px = (x[good], y[good], values[good], sigma[good])
         starts = starts_c.copy()
         out = {}
-        if constant:
+        if weights:
             sols = _run_stage(vmap, px, layout, starts_b, free_b, opts)
-            for name in constant:
+            for name, w in weights.items():
                 k = _INDEX[name]
                 vals = np.array([s.params[k] for s in sols])
                 vals = _centre_angle(vals, reference_pa) if name == "position_angle" else vals
-                out[name] = float(np.nansum(weights[name] * vals))
+                out[name] = float(np.nansum(w * vals))
                 starts[:, k] = out[name]
         sols = _run_stage(vmap, px, layout, starts, free_c, opts)
         out["v_rotation"] = np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols])
         return out
 
+    return measure, observed
+
+
+def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
+                      reference_pa):
+    """Beam-smearing correction of the final curve (and of a constant geometry) by forward modelling.
+
+    What the data gave (:func:`_stage_measure`) is reproduced by fitting the smeared model of a trial
+    disc the same way, and the trial is corrected until they agree
+    (:func:`.smearing.correct_beam_smearing`).
+    """
+    from .smearing import BeamKernel, correct_beam_smearing
+
+    measure, observed = _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
+                                       used, constant, reference_pa)
+    constant = [n for n in constant if n in observed]
     rings = {name: starts_c[:, k] for name, k in _INDEX.items()}
     rings["radius"] = layout.radii
     rings["v_rotation"] = observed["v_rotation"]
     kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
     corrected, model, iterations, converged = correct_beam_smearing(vmap, rings, layout.edges[-1], observed, measure,
                                                                     kernel=kernel)
-    for name in constant:
-        if name == "position_angle":
-            corrected[name] = corrected[name] % 360.0
+    if "position_angle" in corrected:
+        corrected["position_angle"] %= 360.0
     summary = {
         "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I, iterated until the smeared "
                                      "model refitted the same way reproduces the data's fit",
@@ -643,6 +671,8 @@ def _finish_velocity_errors(final, side_sols, options):
     inc_err = np.nan_to_num(final["inclination_err"].to_value(u.rad))
     from_inc = np.abs(v) * inc_err / np.tan(inc)
     final["v_rotation_err_formal"] = formal * kms
+    if "v_rotation_err_resampled" in final.colnames:  # noise term: the larger of the two estimates
+        formal = np.fmax(formal, final["v_rotation_err_resampled"].to_value(kms))
     final["v_rotation_err_sides"] = sides * kms
     final["v_rotation_err_inclination"] = from_inc * kms
     total = np.sqrt(formal**2 + np.nan_to_num(sides) ** 2 + from_inc**2)

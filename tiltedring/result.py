@@ -26,8 +26,10 @@ from .kinematics import PARAMETERS, UNITS
 __all__ = ["FitResult", "stage_table", "ERROR_COLUMNS"]
 
 ERROR_COLUMNS = {
-    "v_rotation_err": "total uncertainty of v_rotation: formal, sides and inclination terms in quadrature "
-                      "(widened to half of v_rotation at low inclination)",
+    "v_rotation_err": "total uncertainty of v_rotation: noise term (larger of formal and resampled), sides and "
+                      "inclination terms in quadrature (widened to half of v_rotation at low inclination)",
+    "v_rotation_err_resampled": "scatter of v_rotation over refits of model + noise drawn with the residual map's "
+                                "power spectrum (seeded)",
     "v_rotation_err_formal": "least-squares error scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)",
     "v_rotation_err_sides": "half the difference between approaching-side and receding-side fits",
     "v_rotation_err_inclination": "v_rotation cot(i) times the inclination error",
