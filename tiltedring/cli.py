@@ -37,7 +37,7 @@ Options given on the command line win over the run file.
 
 _INITIAL = ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination",
             "v_rotation")
-_INPUT_KEYS = ("error_map", "intensity_map", "beam", "pixel_scale", "velocity_unit")
+_INPUT_KEYS = ("error_map", "intensity_map", "dispersion_map", "beam", "pixel_scale", "velocity_unit")
 
 
 def _common() -> argparse.ArgumentParser:
@@ -59,6 +59,8 @@ def _fit_parser(sub):
     g = p.add_argument_group("inputs")
     g.add_argument("--error-map", help="map of velocity errors (same units rule as the map)")
     g.add_argument("--intensity-map", help="intensity (moment-0) map; reprojected if on another grid")
+    g.add_argument("--dispersion-map", help="velocity-dispersion (moment-2) map: adds the asymmetric-drift-corrected "
+                                            "circular speed to curve.ecsv (needs --intensity-map)")
     g.add_argument("--beam", help="beam MAJ[,MIN[,PA]] in arcsec and deg (default: BMAJ/BMIN/BPA)")
     g.add_argument("--pixel-scale", type=float, help="arcsec per pixel, for maps without celestial WCS")
     g.add_argument("--velocity-unit", help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
@@ -82,6 +84,13 @@ def _fit_parser(sub):
     g.add_argument("--fit-radial", action="store_true", default=None, help="also fit v_radial per ring")
     g.add_argument("--low-inclination", type=float, help="flag and widen errors below this inclination (default 30)")
     g.add_argument("--seed", type=int, help="seed of every random step (default 0)")
+    g.add_argument("--resamples", type=int, help="noise realisations for resampled errors (default 20; 0 skips)")
+    g.add_argument("--no-beam-correction", dest="beam_correction", action="store_false", default=None,
+                   help="skip the beam-smearing correction (on by default when a beam is known)")
+    g = p.add_argument_group("the rotation-curve product (curve.ecsv)")
+    g.add_argument("--distance", help="distance: a number in Mpc or a length such as 12Mpc (adds radius_kpc)")
+    g.add_argument("--redshift", type=float, help="redshift, for the angular-diameter distance when no --distance")
+    g.add_argument("--cosmology", default="Planck18", help="astropy cosmology for --redshift (default Planck18)")
     g = p.add_argument_group("starting values (used instead of the first guess)")
     g.add_argument("--x-center", type=float, help="pixels, 0-based")
     g.add_argument("--y-center", type=float, help="pixels, 0-based")
@@ -140,7 +149,7 @@ def _gather(args) -> tuple:
     bad = set(inputs) - set(_INPUT_KEYS)
     if bad:
         raise InputError(f"run file: unknown input(s) {sorted(bad)}; known: {', '.join(_INPUT_KEYS)}")
-    for key in ("error_map", "intensity_map"):
+    for key in ("error_map", "intensity_map", "dispersion_map"):
         if key in inputs:
             inputs[key] = str(base / inputs[key])
     for key in _INPUT_KEYS:
@@ -149,7 +158,7 @@ def _gather(args) -> tuple:
     fit = {k.replace("-", "_"): v for k, v in config.get("fit", {}).items()}
     fit["initial"] = dict(fit.get("initial", {}))
     for key in ("ring_width", "spacing", "growth", "first_radius", "max_radius", "weighting", "exclusion_wedge",
-                "side", "clip", "fit_radial", "low_inclination", "seed"):
+                "side", "clip", "fit_radial", "low_inclination", "seed", "resamples", "beam_correction"):
         if getattr(args, key) is not None:
             fit[key] = getattr(args, key)
     if args.ring_edges is not None:
@@ -172,29 +181,33 @@ def run_fit(args) -> int:
     from .result import file_checksum
 
     inputs, fit_values = _gather(args)
+    fit_values.setdefault("quiet", bool(args.quiet))
     options = FitOptions.from_mapping(fit_values)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitCaution)
         vmap = read_velocity_map(args.map, error=inputs.get("error_map"), intensity=inputs.get("intensity_map"),
-                                 beam=inputs.get("beam"), pixel_scale=inputs.get("pixel_scale"),
-                                 velocity_unit=inputs.get("velocity_unit"))
+                                 dispersion=inputs.get("dispersion_map"), beam=inputs.get("beam"),
+                                 pixel_scale=inputs.get("pixel_scale"), velocity_unit=inputs.get("velocity_unit"))
         result = fit_velocity_map(vmap, options)
+        curve = result.curve(distance=args.distance, redshift=args.redshift, cosmology=args.cosmology)
     result.inputs = {"velocity_map": {"path": str(Path(args.map).resolve()), "sha256": file_checksum(args.map)}}
-    for key in ("error_map", "intensity_map"):
+    for key in ("error_map", "intensity_map", "dispersion_map"):
         if inputs.get(key):
             result.inputs[key] = {"path": str(Path(inputs[key]).resolve()), "sha256": file_checksum(inputs[key])}
     for key in ("beam", "pixel_scale", "velocity_unit"):
         if inputs.get(key) is not None:
             result.inputs[key] = inputs[key]
-    result.write(args.out, overwrite=args.overwrite)
+    result.inputs["curve"] = {"distance": args.distance, "redshift": args.redshift, "cosmology": args.cosmology}
+    result.write(args.out, overwrite=args.overwrite, curve=curve)
     if not args.quiet:
         print(result.summary())
         if args.verbose:
             print(result.rings)
-        other = [str(w.message) for w in caught if str(w.message) not in result.cautions]
+        other = [str(w.message) for w in caught
+                 if issubclass(w.category, FitCaution) and str(w.message) not in result.cautions]
         for text in other:
             print(f"caution: {text}")
-        print(f"wrote {args.out}/rings.ecsv, model.fits, residual.fits, fit.json")
+        print(f"wrote {args.out}/rings.ecsv, curve.ecsv, model.fits, residual.fits, fit.json")
     return EXIT_OK
 
 

@@ -43,7 +43,9 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
     harm = ring_harmonics(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam)
     flows = fit_flows(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, test.flows, bar_range)
     sin_i = np.sin(np.radians(np.asarray(rings["inclination"], float)))
-    amp_err = np.sqrt(np.nanmean([harm[f"{c}_err"] ** 2 for c in ("s1", "c2", "s2", "c3", "s3")], axis=0)) / sin_i
+    variances = np.array([harm[f"{c}_err"] ** 2 for c in ("s1", "c2", "s2", "c3", "s3")])
+    measured = np.isfinite(variances).sum(axis=0)
+    amp_err = np.sqrt(np.where(measured > 0, np.nansum(variances, axis=0) / np.maximum(measured, 1), np.nan)) / sin_i
     strong = ((harm["noncircular_in_plane"] > np.maximum(test.min_amplitude, 3 * amp_err))
               & (harm["harmonic_p_value"] < test.max_p_value))
     ring_flags = [set() for _ in range(n)]

@@ -94,6 +94,7 @@ class VelocityMap:
     error: np.ndarray | None = None
     intensity: np.ndarray | None = None
     beam: Beam | None = None
+    dispersion: np.ndarray | None = None
     source: str = "array"
     notes: list = field(default_factory=list)
 
@@ -368,11 +369,22 @@ def _finite_check(data, role, name, notes) -> np.ndarray:
     return data
 
 
+def _velocity_like(source, role, vmap, own_unit, velocity_unit, notes):
+    """Read a map in velocity units (error, dispersion) onto the velocity map's grid, in km/s.
+
+    Its unit: ``own_unit`` if given, else its BUNIT, else the velocity map's stated unit."""
+    data, header, name = load_image(source, role)
+    unit = own_unit if own_unit is not None else (velocity_unit if not header.get("BUNIT") else None)
+    data = data * _velocity_factor(header, unit, name, role)
+    return _finite_check(_match_grid(data, header, vmap, role, name, notes), role, name, notes), name
+
+
 def read_velocity_map(
     source,
     *,
     error=None,
     intensity=None,
+    dispersion=None,
     beam: "Beam | str | None" = None,
     pixel_scale: float | None = None,
     velocity_unit=None,
@@ -383,9 +395,9 @@ def read_velocity_map(
 
     Parameters
     ----------
-    source, error, intensity
-        A FITS path, an HDU/HDUList, or ``(array, header-or-WCS)``. Error and intensity maps on
-        another grid are reprojected onto the velocity grid (and a note says so).
+    source, error, intensity, dispersion
+        A FITS path, an HDU/HDUList, or ``(array, header-or-WCS)``. Error, intensity and dispersion
+        (moment-2) maps on another grid are reprojected onto the velocity grid (and a note says so).
     beam
         :class:`Beam` or ``"MAJ[,MIN[,PA]]"`` in arcsec; default from BMAJ/BMIN/BPA.
     pixel_scale
@@ -407,10 +419,7 @@ def read_velocity_map(
     vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes)
 
     if error is not None:
-        edata, eheader, ename = load_image(error, "error map")
-        unit = error_unit if error_unit is not None else (velocity_unit if not eheader.get("BUNIT") else None)
-        edata = edata * _velocity_factor(eheader, unit, ename, "error map")
-        edata = _finite_check(_match_grid(edata, eheader, vmap, "error map", ename, notes), "error map", ename, notes)
+        edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
         bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
         if bad.any():
             raise InputError(
@@ -418,6 +427,8 @@ def read_velocity_map(
                 "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
             )
         vmap.error = edata
+    if dispersion is not None:
+        vmap.dispersion, _ = _velocity_like(dispersion, "dispersion map", vmap, error_unit, velocity_unit, notes)
     if intensity is not None:
         idata, iheader, iname = load_image(intensity, "intensity map")
         idata = _finite_check(_match_grid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)

@@ -4,6 +4,7 @@ Files written by :meth:`FitResult.write` into one folder (atomically: a temporar
 into place on success):
 
 - ``rings.ecsv``: the final ring table (astropy ECSV, units in the header)
+- ``curve.ecsv``: the rotation-curve product (:mod:`.curve`)
 - ``stage_free.ecsv``, ``stage_centred.ecsv``: the earlier stages' tables
 - ``model.fits``, ``residual.fits``: full-size maps on the input grid (input WCS, BUNIT km/s)
 - ``fit.json``: the run record (inputs with checksums, options, versions, first guess, stage
@@ -192,8 +193,17 @@ class FitResult:
         return f"<div><b>tiltedring fit</b> of {html.escape(str(self.vmap.source))}<ul>{rows}</ul></div>"
 
     # ------------------------------------------------------------------ writing
-    def write(self, folder, overwrite: bool = False) -> Path:
-        """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``."""
+    def curve(self, distance=None, redshift=None, cosmology: str = "Planck18"):
+        """The :class:`.curve.RotationCurve` product (physical units, corrections, error budget)."""
+        from .curve import RotationCurve
+
+        return RotationCurve.from_fit(self, distance=distance, redshift=redshift, cosmology=cosmology)
+
+    def write(self, folder, overwrite: bool = False, curve=None) -> Path:
+        """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``.
+
+        ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a distance).
+        """
         from ._io import atomic_folder, write_json
         from .maps import write_map
 
@@ -205,18 +215,23 @@ class FitResult:
                     _write_table(table, tmp / f"stage_{name}.ecsv")
             write_map(tmp / "model.fits", self.model, self.vmap, extra={"ORIGIN": "tiltedring model field"})
             write_map(tmp / "residual.fits", self.residual, self.vmap, extra={"ORIGIN": "tiltedring data - model"})
+            (curve or self.curve()).write(tmp / "curve.ecsv")
             write_json(tmp / "fit.json", self.record())
         return folder
+
+
+def plain_table(table: QTable):
+    """A Table of plain columns with units (a cleaner ECSV header than serialised quantities)."""
+    from astropy.table import Column, Table
+
+    return Table([Column(getattr(table[n], "value", table[n]), name=n, unit=getattr(table[n], "unit", None))
+                  for n in table.colnames])
 
 
 def _write_table(table: QTable, path) -> None:
     from ._io import atomic_path
 
-    from astropy.table import Column, Table
-
-    # plain columns with units: a cleaner ECSV header than serialised quantities
-    out = Table([Column(getattr(table[n], "value", table[n]), name=n, unit=getattr(table[n], "unit", None))
-                 for n in table.colnames])
+    out = plain_table(table)
     out.meta["comment"] = ["written by tiltedring; conventions in fit.json",
                            "position_angle: receding major axis, deg north through east; inclination 0 = face-on"]
     with atomic_path(path) as tmp:
