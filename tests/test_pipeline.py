@@ -85,7 +85,8 @@ def test_every_stage_is_kept_and_final_has_required_columns(quiet):
                 "v_rotation_err_sides", "v_rotation_err_inclination"):
         assert col in res.rings.colnames, col
     total = res.rings["v_rotation_err"].value
-    parts = np.sqrt(res.rings["v_rotation_err_formal"].value ** 2 + np.nan_to_num(res.rings["v_rotation_err_sides"].value) ** 2
+    noise = np.fmax(res.rings["v_rotation_err_formal"].value, res.rings["v_rotation_err_resampled"].value)
+    parts = np.sqrt(noise**2 + np.nan_to_num(res.rings["v_rotation_err_sides"].value) ** 2
                     + res.rings["v_rotation_err_inclination"].value ** 2)
     np.testing.assert_allclose(total, parts, equal_nan=True)
 
