@@ -100,10 +100,14 @@ def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0
     header["BMAJ"] = header["BMIN"] = beam_pixels * pixel_scale / 3600.0
     header["BPA"] = 0.0
     hdul = fits.HDUList([fits.PrimaryHDU((vel * factor).astype(np.float32), header=header)])
+    iheader = header.copy()
+    iheader["BUNIT"] = "Jy/beam.km/s"
+    intensity_hdu = fits.PrimaryHDU(smooth_n.astype(np.float32), header=iheader)
     truth = {"x_center": centre_pix[0], "y_center": centre_pix[1], "v_systemic": v_systemic,
              "position_angle": position_angle % 360.0, "inclination": inclination,
              "v_rotation": lambda r: v_flat * np.tanh(np.asarray(r) / r_turn), "beam": beam_pixels * pixel_scale,
-             "ra": float(centre.ra.deg), "dec": float(centre.dec.deg), "disc_radius": disc_radius}
+             "ra": float(centre.ra.deg), "dec": float(centre.dec.deg), "disc_radius": disc_radius,
+             "intensity_hdu": intensity_hdu}
     if warp is not None:
         onset, twist, tilt = warp
         frac = lambda r: np.clip((np.asarray(r) - onset) / (disc_radius - onset), 0, None)  # noqa: E731
