@@ -104,17 +104,95 @@ def _fit_parser(sub):
     return p
 
 
+MASS_EXAMPLES = """examples:
+  tiltedring massmodel fit1/curve.ecsv --components baryons.ecsv --out mass1
+  tiltedring massmodel galaxy_rotmod.dat --models nfw,burkert,mond --ml-mode free --out mass2
+  tiltedring massmodel table.csv --radius-column R --velocity-column V --error-column eV --disc-mode maximum --out m3
+
+The curve is the fit's curve.ecsv (run the fit with --distance so radii are in kpc), any table with
+radius (kpc), speed and error columns you name, or a SPARC *_rotmod.dat file (which carries its own
+baryonic curves). --components names a table of baryonic speed curves for M/L = 1 (columns v_gas with
+helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv,
+components_<model>.ecsv and massmodel.json.
+"""
+
+
+def _mass_parser(sub):
+    p = sub.add_parser("massmodel", parents=[_common()], help="fit baryons + halo or MOND to a rotation curve",
+                       description="Fit mass models (pseudo-isothermal, NFW, Burkert, Einasto halos; MOND) to a "
+                                   "rotation curve.", epilog=MASS_EXAMPLES,
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("curve", help="curve.ecsv, a table, or a SPARC *_rotmod.dat file")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    p.add_argument("--models", default="isothermal,nfw,burkert,einasto,mond",
+                   help="comma-separated: isothermal, nfw, burkert, einasto, mond, none (default: all but none)")
+    p.add_argument("--components", help="table of baryonic speed curves for M/L = 1")
+    p.add_argument("--radius-column"), p.add_argument("--velocity-column"), p.add_argument("--error-column")
+    p.add_argument("--ml-mode", choices=("fixed", "free", "lognormal"), default="lognormal",
+                   help="mass-to-light ratios: fixed, free, or free with a log-normal prior (default)")
+    p.add_argument("--ml-disc", type=float, default=0.5, help="disc M/L (3.6 micron; default 0.5)")
+    p.add_argument("--ml-bulge", type=float, default=0.7, help="bulge M/L (default 0.7)")
+    p.add_argument("--disc-mode", choices=("fit", "maximum", "minimum"), default="fit")
+    p.add_argument("--concentration-prior", action="store_true", help="NFW: Dutton & Maccio 2014 c(M) prior")
+    p.add_argument("--a0-free", action="store_true", help="MOND: fit a0 too")
+    p.add_argument("--interpolating", choices=("simple", "standard"), default="simple", help="MOND function")
+    p.add_argument("--disc-scale-length", type=float, help="kpc, for the baryonic share of v at 2.2 scale lengths")
+    p.add_argument("--sample", action="store_true", help="sample the posterior with emcee (optional dependency)")
+    p.add_argument("--steps", type=int, default=1500, help="emcee steps per walker")
+    p.add_argument("--seed", type=int, default=0)
+    p.set_defaults(run=run_massmodel)
+
+
+def run_massmodel(args) -> int:
+    from .errors import InputError
+    from .massmodel import (MassModelSettings, fit_mass_model, read_components, read_curve, read_sparc_rotmod,
+                            write_results)
+
+    if args.curve.endswith(".dat") and args.radius_column is None:
+        curve, baryons = read_sparc_rotmod(args.curve)
+    else:
+        curve = read_curve(args.curve, args.radius_column, args.velocity_column, args.error_column)
+        from .massmodel import Baryons
+
+        baryons = read_components(args.components) if args.components else Baryons()
+    if args.components and args.curve.endswith(".dat"):
+        baryons = read_components(args.components)
+    baryons.disc_scale_length = args.disc_scale_length
+    models = [m.strip() for m in args.models.split(",") if m.strip()]
+    results = {}
+    for model in models:
+        settings = MassModelSettings(model=model, ml_mode=args.ml_mode, ml_disc=args.ml_disc, ml_bulge=args.ml_bulge,
+                                     disc_mode=args.disc_mode, use_concentration_prior=args.concentration_prior,
+                                     a0_free=args.a0_free, interpolating=args.interpolating)
+        results[model] = fit_mass_model(curve, baryons, settings, sample=args.sample, n_steps=args.steps,
+                                        seed=args.seed, quiet=args.quiet)
+    if not results:
+        raise InputError("no model named; use --models nfw,burkert,...")
+    write_results(args.out, results, curve, overwrite=args.overwrite)
+    if not args.quiet:
+        print(f"{curve.name}: {len(curve.radius)} points")
+        for name, r in results.items():
+            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}" for k, v in r.parameters.items())
+            print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
+        if all(r.parameters == {} for r in results.values()) and baryons.disc is None and baryons.gas is None:
+            print("caution: no baryonic components given: the halo alone carries the curve")
+        print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, massmodel.json")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
     parser = argparse.ArgumentParser(
         prog="tiltedring",
         description="Tilted-ring kinematic modelling of disc-galaxy velocity maps.",
-        epilog="Run 'tiltedring fit --help' for the fit's options and examples.",
+        epilog="Run 'tiltedring fit --help' or 'tiltedring massmodel --help' for options and examples.",
     )
     parser.add_argument("--version", action="version", version=f"tiltedring {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     _fit_parser(sub)
+    _mass_parser(sub)
     return parser
 
 
