@@ -285,7 +285,8 @@ def _sample(residuals, q, err, lower, upper, n_walkers, n_steps, seed, quiet):
     rng = np.random.default_rng(seed)
     spread = np.where(np.isfinite(err) & (err > 0), err, 0.01) * 0.1
     p0 = np.clip(q + spread * rng.standard_normal((n_walkers, len(q))), lower + 1e-9, upper - 1e-9)
-    sampler = emcee.EnsembleSampler(n_walkers, len(q), log_prob, seed=seed)
+    sampler = emcee.EnsembleSampler(n_walkers, len(q), log_prob)
+    sampler.random_state = np.random.mtrand.RandomState(seed).get_state()  # repeatable chains
     progress = Progress("sampling posterior", n_steps, quiet=quiet)
     for k, _ in enumerate(sampler.sample(p0, iterations=n_steps), start=1):
         progress.update(k)
