@@ -56,6 +56,8 @@ def _fit_parser(sub):
     p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--config", help="TOML run file with [inputs], [fit] and [fit.initial] tables")
+    p.add_argument("--no-report", action="store_true", help="skip report.pdf (faster, for scripted runs)")
+    p.add_argument("--png", action="store_true", help="also write the report pages as PNG files")
     g = p.add_argument_group("inputs")
     g.add_argument("--error-map", help="map of velocity errors (same units rule as the map)")
     g.add_argument("--intensity-map", help="intensity (moment-0) map; reprojected if on another grid")
@@ -181,6 +183,53 @@ def run_massmodel(args) -> int:
     return EXIT_OK
 
 
+COMPARE_EXAMPLES = """examples:
+  tiltedring compare fit1/residual.fits fit2/residual.fits --rings fit1/rings.ecsv --out cmp
+  tiltedring compare hi_velocity.fits co_velocity.fits --names HI,CO --out tracers
+
+The first map's grid is the common one unless --grid names another; maps on other grids are
+reprojected (bilinear for velocities; --flux for flux-conserving resampling of intensity maps).
+Writes difference_<k>.fits (map k minus the first), statistics.ecsv (per ring and per 30-degree
+azimuth sector) and comparison.png (all maps on one colour scale).
+"""
+
+
+def _compare_parser(sub):
+    p = sub.add_parser("compare", parents=[_common()], help="compare residual or velocity maps on one grid",
+                       description="Compare maps on a common grid: differences and their statistics.",
+                       epilog=COMPARE_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("maps", nargs="+", help="two or more FITS maps")
+    p.add_argument("--out", required=True, help="output folder")
+    p.add_argument("--overwrite", action="store_true")
+    p.add_argument("--grid", help="FITS map whose grid is the common one (default: the first map)")
+    p.add_argument("--rings", help="rings.ecsv of a fit, to take statistics on its rings")
+    p.add_argument("--names", help="comma-separated names for the maps")
+    p.add_argument("--flux", action="store_true", help="flux-conserving reprojection (intensity maps)")
+    p.add_argument("--velocity-unit", help="unit of maps whose BUNIT is missing")
+    p.set_defaults(run=run_compare)
+
+
+def run_compare(args) -> int:
+    import numpy as np
+
+    from .compare import compare_maps
+
+    names = args.names.split(",") if args.names else None
+    result = compare_maps(args.maps, names=names, grid=args.grid, rings=args.rings, flux=args.flux,
+                          velocity_unit=args.velocity_unit)
+    result.write(args.out, overwrite=args.overwrite)
+    if not args.quiet:
+        for note in result.notes:
+            print(f"note: {note}")
+        rings = result.statistics[result.statistics["kind"] == "ring"]
+        for name in result.names[1:]:
+            sel = rings[rings["map"] == name]
+            rms = np.sqrt(np.nansum(sel["rms"] ** 2 * sel["n_pixels"]) / max(np.sum(sel["n_pixels"]), 1))
+            print(f"{name} - {result.names[0]}: rms difference {rms:.2f} km/s over {int(np.sum(sel['n_pixels']))} pixels")
+        print(f"wrote {args.out}/difference_*.fits, statistics.ecsv, comparison.png")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -193,6 +242,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     _fit_parser(sub)
     _mass_parser(sub)
+    _compare_parser(sub)
     return parser
 
 
@@ -276,7 +326,7 @@ def run_fit(args) -> int:
         if inputs.get(key) is not None:
             result.inputs[key] = inputs[key]
     result.inputs["curve"] = {"distance": args.distance, "redshift": args.redshift, "cosmology": args.cosmology}
-    result.write(args.out, overwrite=args.overwrite, curve=curve)
+    result.write(args.out, overwrite=args.overwrite, curve=curve, report=not args.no_report, png=args.png)
     if not args.quiet:
         print(result.summary())
         if args.verbose:
@@ -285,7 +335,8 @@ def run_fit(args) -> int:
                  if issubclass(w.category, FitCaution) and str(w.message) not in result.cautions]
         for text in other:
             print(f"caution: {text}")
-        print(f"wrote {args.out}/rings.ecsv, curve.ecsv, model.fits, residual.fits, fit.json")
+        extra = "" if args.no_report else ", report.pdf"
+        print(f"wrote {args.out}/rings.ecsv, curve.ecsv, model.fits, residual.fits, fit.json{extra}")
     return EXIT_OK
 
 

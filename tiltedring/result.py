@@ -7,6 +7,7 @@ into place on success):
 - ``curve.ecsv``: the rotation-curve product (:mod:`.curve`)
 - ``stage_free.ecsv``, ``stage_centred.ecsv``: the earlier stages' tables
 - ``model.fits``, ``residual.fits``: full-size maps on the input grid (input WCS, BUNIT km/s)
+- ``report.pdf`` (on request): summary page and figures (:mod:`.plotting`)
 - ``fit.json``: the run record (inputs with checksums, options, versions, first guess, stage
   summaries, global statistics, cautions, what each error column means)
 """
@@ -199,10 +200,42 @@ class FitResult:
 
         return RotationCurve.from_fit(self, distance=distance, redshift=redshift, cosmology=cosmology)
 
-    def write(self, folder, overwrite: bool = False, curve=None) -> Path:
+    # ------------------------------------------------------------------ figures (matplotlib imported on use)
+    def plot_maps(self, axes=None):
+        from .plotting import plot_maps
+
+        return plot_maps(self, axes)
+
+    def plot_geometry(self, axes=None):
+        from .plotting import plot_geometry
+
+        return plot_geometry(self, axes)
+
+    def plot_curve(self, ax=None):
+        from .plotting import plot_rotation_curve
+
+        return plot_rotation_curve(self, ax)
+
+    def plot_slice(self, ax=None):
+        from .plotting import plot_major_axis_slice
+
+        return plot_major_axis_slice(self, ax)
+
+    def plot_harmonics(self, ax=None):
+        from .plotting import plot_harmonics
+
+        return plot_harmonics(self, ax)
+
+    def plot_warp(self, ax=None):
+        from .plotting import plot_warp
+
+        return plot_warp(self, ax)
+
+    def write(self, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False) -> Path:
         """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``.
 
         ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a distance).
+        ``report``: also write ``report.pdf`` (and ``report_*.png`` with ``png``).
         """
         from ._io import atomic_folder, write_json
         from .maps import write_map
@@ -217,6 +250,10 @@ class FitResult:
             write_map(tmp / "residual.fits", self.residual, self.vmap, extra={"ORIGIN": "tiltedring data - model"})
             (curve or self.curve()).write(tmp / "curve.ecsv")
             write_json(tmp / "fit.json", self.record())
+            if report:
+                from .plotting import write_report
+
+                write_report(self, tmp / "report.pdf", png_folder=tmp if png else None)
         return folder
 
 
