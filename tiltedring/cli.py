@@ -1,7 +1,7 @@
 """The ``tiltedring`` command: a thin layer over the same API a notebook calls.
 
 Exit codes: 0 success, 2 unusable input or options (the message says what to fix),
-1 an unexpected failure.
+1 an unexpected failure (and, for ``batch``, one or more galaxies failed: see the catalogue).
 """
 
 from __future__ import annotations
@@ -230,6 +230,52 @@ def run_compare(args) -> int:
     return EXIT_OK
 
 
+BATCH_EXAMPLES = """examples:
+  tiltedring batch survey.csv --out survey_fits
+  tiltedring batch survey.ecsv --out survey_fits --workers 1            # in this process, for debugging
+  tiltedring batch survey.csv --out survey_fits --scheduler tcp://10.0.0.5:8786 --config run.toml
+
+The manifest has one galaxy per row: velocity_map (path relative to the manifest) and optionally
+name, error_map, intensity_map, dispersion_map, distance, redshift and any fit option by name.
+Shared options come from --config ([fit] table) and the flags below; per-row values win.
+Re-running the same command skips finished galaxies and retries failed ones. The catalogue is
+OUT/catalogue.ecsv (status ok or failed, with the error message).
+"""
+
+
+def _batch_parser(sub):
+    p = sub.add_parser("batch", parents=[_common()], help="fit many galaxies from a manifest (dask)",
+                       description="Fit every galaxy of a manifest; one folder per galaxy and one catalogue.",
+                       epilog=BATCH_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("manifest", help="CSV or ECSV manifest")
+    p.add_argument("--out", required=True, help="output folder (galaxy folders and catalogue.ecsv)")
+    p.add_argument("--workers", type=int, help="worker processes (default: one per core; 1 runs in this process)")
+    p.add_argument("--scheduler", help="address of an existing dask.distributed scheduler")
+    p.add_argument("--config", help="TOML run file whose [fit] table holds shared options")
+    p.add_argument("--ring-width"), p.add_argument("--resamples", type=int)
+    p.add_argument("--no-beam-correction", dest="beam_correction", action="store_false", default=None)
+    p.add_argument("--report", action="store_true", help="write report.pdf for every galaxy (slower)")
+    p.set_defaults(run=run_batch_command)
+
+
+def run_batch_command(args) -> int:
+    from .batch import run_batch
+
+    shared = {k.replace("-", "_"): v for k, v in _read_config(args.config).get("fit", {}).items()}
+    for key in ("ring_width", "resamples", "beam_correction"):
+        if getattr(args, key) is not None:
+            shared[key] = getattr(args, key)
+    if args.report:
+        shared["report"] = True
+    summary = run_batch(args.manifest, args.out, shared, workers=args.workers, scheduler=args.scheduler,
+                        quiet=args.quiet)
+    if not args.quiet:
+        rate = f", {summary['rate_per_minute']:.1f} galaxies/min" if summary["rate_per_minute"] else ""
+        print(f"{summary['total']} galaxies: {summary['fitted']} fitted, {summary['skipped']} already done, "
+              f"{summary['failed']} failed{rate}; catalogue in {args.out}/catalogue.ecsv")
+    return EXIT_OK if summary["failed"] == 0 else EXIT_FAILURE
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -243,6 +289,7 @@ def build_parser() -> argparse.ArgumentParser:
     _fit_parser(sub)
     _mass_parser(sub)
     _compare_parser(sub)
+    _batch_parser(sub)
     return parser
 
 

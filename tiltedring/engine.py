@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .geometry import disc_coordinates
+from .geometry import disc_coordinates, wrap_angle
 from .kinematics import PARAMETERS, ring_model
 
 __all__ = ["RingFitOptions", "RingSolution", "fit_ring", "WEIGHTINGS", "SIDES"]
@@ -157,7 +157,7 @@ def _normalise(p):
         p[3] += 180.0
         p[5] = -p[5]
         p[6] = -p[6]
-    p[3] = np.mod(p[3], 360.0)
+    p[3] = wrap_angle(p[3])
     return p
 
 

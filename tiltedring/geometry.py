@@ -26,8 +26,9 @@ DEG = np.pi / 180.0
 
 
 def wrap_angle(angle):
-    """Position angle wrapped into [0, 360) deg."""
-    return np.mod(angle, 360.0)
+    """Position angle wrapped into [0, 360) deg (a tiny negative angle gives 0, not 360)."""
+    wrapped = np.mod(angle, 360.0)
+    return np.where(wrapped >= 360.0, 0.0, wrapped) if np.ndim(wrapped) else (0.0 if wrapped >= 360.0 else wrapped)
 
 
 @njit(cache=True, inline="always")

@@ -31,7 +31,7 @@ from . import flags as ringflags
 from .engine import RingFitOptions, fit_ring
 from .errors import FitCaution, InputError
 from .first_guess import first_guess, guess_rotation
-from .geometry import disc_coordinates
+from .geometry import disc_coordinates, wrap_angle
 from astropy import units as u
 
 from .kinematics import PARAMETERS, UNITS, model_field
@@ -356,6 +356,12 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     initial = _resolve_initial(vmap, options)
 
     ok = vmap.valid
+    needed = int(max(30, 6 * vmap.pixels_per_beam))
+    if ok.sum() < needed:
+        raise InputError(
+            f"velocity map {vmap.source} has only {int(ok.sum())} valid pixels (fewer than {needed}, about six beams' "
+            "worth): too few to fit a disc; check the masking or use a map with more coverage"
+        )
     yy, xx = np.nonzero(ok)
     x, y = xx.astype(float), yy.astype(float)
     v = vmap.velocity[ok]
@@ -495,7 +501,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     tables = {name: stage_table(vmap, layout, st_sols, st_flags) for name, (st_sols, st_flags) in stages.items()}
     final = tables["final"]
     for name in ("position_angle", "inclination"):
-        values = np.mod(geometry[name][0], 360.0) if name == "position_angle" else geometry[name][0]
+        values = wrap_angle(geometry[name][0]) if name == "position_angle" else geometry[name][0]
         final[name] = values * u.deg
         final[f"{name}_err"] = geometry[name][1] * u.deg
     for name in ("x_center", "y_center", "v_systemic"):

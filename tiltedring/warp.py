@@ -25,6 +25,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .geometry import wrap_angle
+
 __all__ = ["WarpTest", "GeometryProfile", "geometry_profile", "tilt_and_line_of_nodes", "disc_normal"]
 
 
@@ -140,7 +142,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
                 "profile": "constant inside the onset, " + ("linear" if degree == 1 else "quadratic") + " beyond",
                 "outer_tilt_angle": float(tilt[np.argmax(r)]),
             })
-            return GeometryProfile(np.mod(prof["pa"], 360.0), errs["pa"], prof["inc"], errs["inc"], summary,
+            return GeometryProfile(wrap_angle(prof["pa"]), errs["pa"], prof["inc"], errs["inc"], summary,
                                    tilt, lon, tested)
         if big:
             # the geometry changes inside a radius and is flat outside: non-circular motion (bar, oval) or an
@@ -156,7 +158,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
     mean = {name: (flat[name][0][0], np.sqrt(flat[name][1][0, 0] * s2_flat)) if name in flat else (constant[name], np.nan)
             for name in ("pa", "inc")}
     summary["profile"] = "constant"
-    return GeometryProfile(np.mod(mean["pa"][0], 360.0) * ones, mean["pa"][1] * ones, mean["inc"][0] * ones,
+    return GeometryProfile(wrap_angle(mean["pa"][0]) * ones, mean["pa"][1] * ones, mean["inc"][0] * ones,
                            mean["inc"][1] * ones, summary, np.zeros_like(r), np.full(r.shape, np.nan), tested)
 
 
