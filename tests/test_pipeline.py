@@ -136,7 +136,7 @@ def test_inclination_pinned_at_edge_on_is_refused():
 
 
 def test_galaxy_smaller_than_two_beams_is_refused():
-    truth = DiscTruth(disc_radius=12.0)
+    truth = DiscTruth(disc_radius=18.0, inclination=55.0)
     field = make_field(truth, beam_fwhm=10.0, seed=10)
     with pytest.raises(tr.InputError, match="two beams"):
         _fit_hdu(field.velocity_hdu)

@@ -83,31 +83,51 @@ def sky_from_disc(radius, azimuth, x_center, y_center, sky_jacobian, position_an
     return x_center + dx.reshape(shape), y_center + dy.reshape(shape)
 
 
+@njit(cache=True, inline="always")
+def _offset(x, y, jac, radius, xc, yc, pa, inc):
+    """Disc radius of a pixel under one ring's geometry, minus that ring's radius."""
+    xd, yd = project(x, y, xc, yc, jac, np.sin(pa * DEG), np.cos(pa * DEG), np.cos(inc * DEG))
+    return np.sqrt(xd * xd + yd * yd) - radius
+
+
 @njit(cache=True)
 def _assign(x, y, jac, radii, xc, yc, pa, inc, r_outer):
     n = x.shape[0]
     m = radii.shape[0]
     position = np.full(n, -1.0)
     radius_out = np.full(n, np.nan)
-    f = np.empty(m)
+    mid = m // 2
     for k in range(n):
-        for j in range(m):
-            sp, cp = np.sin(pa[j] * DEG), np.cos(pa[j] * DEG)
-            xd, yd = project(x[k], y[k], xc[j], yc[j], jac, sp, cp, np.cos(inc[j] * DEG))
-            f[j] = np.sqrt(xd * xd + yd * yd) - radii[j]
-        if f[0] < 0.0:
-            position[k] = 0.0
-            radius_out[k] = f[0] + radii[0]
-            continue
-        for j in range(m - 1):
-            if f[j] >= 0.0 and f[j + 1] < 0.0:
-                w = f[j] / (f[j] - f[j + 1])
-                position[k] = j + w
-                radius_out[k] = radii[j] + w * (radii[j + 1] - radii[j])
-                break
-        if position[k] < 0.0 and f[m - 1] >= 0.0 and f[m - 1] + radii[m - 1] <= r_outer:
-            position[k] = m - 1.0
-            radius_out[k] = f[m - 1] + radii[m - 1]
+        # start from the ring the middle ring's geometry suggests, then walk to the sign change of f
+        start = _offset(x[k], y[k], jac, 0.0, xc[mid], yc[mid], pa[mid], inc[mid])
+        j = min(max(np.searchsorted(radii, start), 0), m - 1)
+        fj = _offset(x[k], y[k], jac, radii[j], xc[j], yc[j], pa[j], inc[j])
+        if fj >= 0.0:
+            while j + 1 < m:
+                f_next = _offset(x[k], y[k], jac, radii[j + 1], xc[j + 1], yc[j + 1], pa[j + 1], inc[j + 1])
+                if f_next < 0.0:
+                    w = fj / (fj - f_next)
+                    position[k] = j + w
+                    radius_out[k] = radii[j] + w * (radii[j + 1] - radii[j])
+                    break
+                j += 1
+                fj = f_next
+            if position[k] < 0.0 and fj + radii[m - 1] <= r_outer:
+                position[k] = m - 1.0
+                radius_out[k] = fj + radii[m - 1]
+        else:
+            while j > 0:
+                f_prev = _offset(x[k], y[k], jac, radii[j - 1], xc[j - 1], yc[j - 1], pa[j - 1], inc[j - 1])
+                if f_prev >= 0.0:
+                    w = f_prev / (f_prev - fj)
+                    position[k] = j - 1 + w
+                    radius_out[k] = radii[j - 1] + w * (radii[j] - radii[j - 1])
+                    break
+                j -= 1
+                fj = f_prev
+            if position[k] < 0.0:
+                position[k] = 0.0
+                radius_out[k] = fj + radii[0]
     return position, radius_out
 
 
@@ -116,8 +136,10 @@ def assign_to_rings(x, y, sky_jacobian, radii, x_center, y_center, position_angl
 
     For ring centres ``radii`` with their own geometry, f_j = R_j(pixel) - r_j is the
     disc radius of the pixel under ring j's geometry minus that ring's radius; the pixel lies
-    between rings j and j+1 where f changes sign (the innermost crossing is taken where
-    projected rings overlap), at fractional ring index ``j + f_j / (f_j - f_{j+1})``. Inside the
+    between rings j and j+1 where f changes sign, at fractional ring index ``j + f_j / (f_j - f_{j+1})``.
+    The search starts at the ring the middle ring's geometry suggests and walks to the nearest sign
+    change, so it costs a few evaluations per pixel; where projected rings overlap, the crossing
+    nearest that start is taken. Inside the
     first ring the first ring's geometry is used; beyond the last, the last ring's geometry out
     to ``r_outer``. Returns (fractional ring index, -1 where unassigned; disc radius in arcsec).
     """

@@ -200,10 +200,44 @@ def _layout(vmap: VelocityMap, options: FitOptions, guess: dict, x, y) -> RingLa
     return RingLayout.uniform(width, r_max, first)
 
 
-def _run_stage(vmap, pixels, layout, starts, free, ring_options):
+def _candidates(vmap, pixels, layout, starts, free, wander: float):
+    """Per ring, the pixels that can fall in it while its geometry moves during the fit.
+
+    Pixels are sorted once by their disc radius under the median starting geometry; a ring takes
+    those within a margin of its edges that grows with how far its own starting geometry is from
+    the median (and with what the fit may still change). Only a speed-up: the ring fit still selects
+    its pixels exactly from these.
+    """
+    x, y = pixels[0], pixels[1]
+    ref = np.nanmedian(starts, axis=0)
+    ref[_INDEX["position_angle"]] = _centre_angle(starts[:, _INDEX["position_angle"]],
+                                                  starts[0, _INDEX["position_angle"]]).mean()
+    radius, _, _ = disc_coordinates(x, y, ref[0], ref[1], vmap.sky_jacobian, ref[_INDEX["position_angle"]],
+                                    ref[_INDEX["inclination"]])
+    order = np.argsort(radius)
+    sorted_r = radius[order]
+    geometry_free = bool(free[[_INDEX["position_angle"], _INDEX["inclination"], 0, 1]].any())
+    cos_ref = np.cos(np.radians(ref[_INDEX["inclination"]]))
+    out = []
+    for k in range(len(layout)):
+        d_pa = np.radians(abs(_centre_angle(starts[k, _INDEX["position_angle"]], ref[_INDEX["position_angle"]])
+                              - ref[_INDEX["position_angle"]]))
+        cos_k = np.cos(np.radians(starts[k, _INDEX["inclination"]]))
+        stretch = max(cos_ref, cos_k) / max(min(cos_ref, cos_k), 1e-3)
+        shift = np.hypot(*(vmap.sky_jacobian @ (starts[k, :2] - ref[:2])))
+        grow = 2.0 * d_pa + (stretch - 1.0) + (wander if geometry_free else 0.02)
+        lo = layout.inner[k] / (1 + grow) / stretch - shift - layout.widths[k]
+        hi = layout.outer[k] * (1 + grow) * stretch + shift + layout.widths[k]
+        out.append(order[np.searchsorted(sorted_r, lo):np.searchsorted(sorted_r, hi)])
+    return out
+
+
+def _run_stage(vmap, pixels, layout, starts, free, ring_options, wander: float = 0.1):
+    """Fit every ring; ``wander``: how far (as a fraction of radius) the geometry may still move."""
     x, y, v, sigma = pixels
-    return [fit_ring(x, y, v, sigma, starts[k], free, vmap.sky_jacobian, layout.inner[k], layout.outer[k],
-                     ring_options, vmap.pixels_per_beam) for k in range(len(layout))]
+    candidates = _candidates(vmap, pixels, layout, starts, free, wander)
+    return [fit_ring(x[c], y[c], v[c], sigma[c], starts[k], free, vmap.sky_jacobian, layout.inner[k],
+                     layout.outer[k], ring_options, vmap.pixels_per_beam) for k, c in enumerate(candidates)]
 
 
 def _ring_flags(sol, options, vmap, min_pixels, radius) -> set:
@@ -356,10 +390,10 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     initial = _resolve_initial(vmap, options)
 
     ok = vmap.valid
-    needed = int(max(30, 6 * vmap.pixels_per_beam))
+    needed = int(max(30, 4 * vmap.pixels_per_beam))
     if ok.sum() < needed:
         raise InputError(
-            f"velocity map {vmap.source} has only {int(ok.sum())} valid pixels (fewer than {needed}, about six beams' "
+            f"velocity map {vmap.source} has only {int(ok.sum())} valid pixels (fewer than {needed}, about four beams' "
             "worth): too few to fit a disc; check the masking or use a map with more coverage"
         )
     yy, xx = np.nonzero(ok)
@@ -398,7 +432,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
 
     # stage "free"
     opts = options.ring_options()
-    sols = _run_stage(vmap, pixels, layout, starts_from(guess_geom, vrot0), base_free, opts)
+    sols = _run_stage(vmap, pixels, layout, starts_from(guess_geom, vrot0), base_free, opts, wander=0.35)
     flags_a = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols, layout.radii)]
     stages["free"] = (sols, flags_a)
     use = _usable(sols, flags_a)
