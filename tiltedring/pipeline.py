@@ -641,8 +641,8 @@ def _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_
         px = (x[good], y[good], values[good], sigma[good])
         starts = starts_c.copy()
         out = {}
-        if weights:
-            sols = _run_stage(vmap, px, layout, starts_b, free_b, opts)
+        if weights:  # a model of the data's own geometry: it moves little, so a narrow candidate band will do
+            sols = _run_stage(vmap, px, layout, starts_b, free_b, opts, wander=0.04)
             for name, w in weights.items():
                 k = _INDEX[name]
                 vals = np.array([s.params[k] for s in sols])

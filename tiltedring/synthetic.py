@@ -121,7 +121,8 @@ def make_field(truth: DiscTruth = DiscTruth(), shape=(128, 128), pixel_scale: fl
     wcs = sky_wcs(truth.ra, truth.dec, shape, pixel_scale, rotation, aspect)
     ny, nx = shape
     jac = sky_jacobian_from_wcs(wcs, (nx - 1) / 2.0, (ny - 1) / 2.0)
-    radii = np.arange(0.0, truth.disc_radius * 1.6 + 2 * pixel_scale, pixel_scale / 2)
+    step = max(pixel_scale / 2, truth.disc_radius / 400)  # fine enough for the geometry, cheap for big maps
+    radii = np.arange(0.0, truth.disc_radius * 1.6 + 2 * pixel_scale, step)
     rings = truth.table(radii)
     velocity = model_field(shape, jac, rings, r_outer=radii[-1])
     yy, xx = np.mgrid[0:ny, 0:nx]
