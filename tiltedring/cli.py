@@ -130,6 +130,8 @@ def _mass_parser(sub):
     p.add_argument("--models", default="isothermal,nfw,burkert,einasto,mond",
                    help="comma-separated: isothermal, nfw, burkert, einasto, mond, none (default: all but none)")
     p.add_argument("--components", help="table of baryonic speed curves for M/L = 1")
+    p.add_argument("--gas", help="gas.ecsv written by 'tiltedring fit' (HI surface density with helium): "
+                                 "its thin-disc speed becomes the gas component")
     p.add_argument("--radius-column"), p.add_argument("--velocity-column"), p.add_argument("--error-column")
     p.add_argument("--ml-mode", choices=("fixed", "free", "lognormal"), default="lognormal",
                    help="mass-to-light ratios: fixed, free, or free with a log-normal prior (default)")
@@ -160,6 +162,13 @@ def run_massmodel(args) -> int:
         baryons = read_components(args.components) if args.components else Baryons()
     if args.components and args.curve.endswith(".dat"):
         baryons = read_components(args.components)
+    if args.gas:
+        from astropy.table import Table
+
+        from .massmodel import ThinDisc
+
+        gas = Table.read(args.gas, format="ascii.ecsv")
+        baryons.gas = ThinDisc(gas["radius_kpc"], gas["surface_density_gas"], label="gas")
     baryons.disc_scale_length = args.disc_scale_length
     models = [m.strip() for m in args.models.split(",") if m.strip()]
     results = {}
@@ -349,6 +358,27 @@ def _gather(args) -> tuple:
     return inputs, fit
 
 
+def _write_gas(result, curve, args):
+    """``gas.ecsv`` beside the curve when an HI intensity map in usable units and a distance are known."""
+    from .errors import InputError
+
+    distance = (curve.meta.get("distance") or {}).get("value_mpc")
+    if result.vmap.intensity is None or distance is None:
+        return
+    from ._io import atomic_path
+    from .massmodel.gas import gas_table
+    from .result import plain_table
+
+    try:
+        table = gas_table(result, distance)
+    except InputError as exc:
+        if not args.quiet:
+            print(f"note: no gas.ecsv ({exc})")
+        return
+    with atomic_path(Path(args.out) / "gas.ecsv") as tmp:
+        plain_table(table).write(tmp, format="ascii.ecsv")
+
+
 def run_fit(args) -> int:
     from .errors import FitCaution
     from .maps import read_velocity_map
@@ -374,6 +404,7 @@ def run_fit(args) -> int:
             result.inputs[key] = inputs[key]
     result.inputs["curve"] = {"distance": args.distance, "redshift": args.redshift, "cosmology": args.cosmology}
     result.write(args.out, overwrite=args.overwrite, curve=curve, report=not args.no_report, png=args.png)
+    _write_gas(result, curve, args)
     if not args.quiet:
         print(result.summary())
         if args.verbose:

@@ -95,6 +95,7 @@ class VelocityMap:
     intensity: np.ndarray | None = None
     beam: Beam | None = None
     dispersion: np.ndarray | None = None
+    intensity_unit: str | None = None
     source: str = "array"
     notes: list = field(default_factory=list)
 
@@ -431,6 +432,7 @@ def read_velocity_map(
         vmap.dispersion, _ = _velocity_like(dispersion, "dispersion map", vmap, error_unit, velocity_unit, notes)
     if intensity is not None:
         idata, iheader, iname = load_image(intensity, "intensity map")
+        vmap.intensity_unit = str(iheader.get("BUNIT", "")).strip() or None
         idata = _finite_check(_match_grid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
         vmap.intensity = idata
     if not vmap.valid.any():

@@ -21,7 +21,7 @@ from astropy import units as u
 from ..curve import ring_statistic
 from ..errors import InputError
 
-__all__ = ["hi_surface_density", "HI_FREQUENCY_GHZ"]
+__all__ = ["hi_surface_density", "column_density", "gas_table", "HI_FREQUENCY_GHZ"]
 
 HI_FREQUENCY_GHZ = 1.420405751
 _N_PER_MSUN_PC2 = float((1 * u.Msun / u.pc**2 / (const.m_p + const.m_e)).to_value(u.cm**-2))
@@ -52,14 +52,33 @@ def column_density(intensity, unit, beam=None):
                      "Jy/beam km/s")
 
 
-def hi_surface_density(result, intensity_unit: str, helium: float = 1.33):
-    """(radius arcsec, Sigma_gas M_sun/pc^2) on the fit's rings, deprojected and with helium."""
+def hi_surface_density(result, intensity_unit: str | None = None, helium: float = 1.33):
+    """(radius arcsec, Sigma_gas M_sun/pc^2) on the fit's rings, deprojected and with helium.
+
+    ``intensity_unit`` defaults to the intensity map's BUNIT."""
     vmap = result.vmap
     if vmap.intensity is None:
         raise InputError("the gas profile needs the intensity (moment-0) map given to the fit")
+    intensity_unit = intensity_unit or vmap.intensity_unit
+    if not intensity_unit:
+        raise InputError("the intensity map has no BUNIT: give its unit (K km/s or Jy/beam km/s)")
     rings = result.rings
     geom = {n: rings[n].value for n in ("x_center", "y_center", "position_angle", "inclination")}
     mean = ring_statistic(vmap.intensity, vmap.sky_jacobian, geom, rings["radius_inner"].value,
                           rings["radius_outer"].value, np.nanmean)
     n_hi = column_density(mean, intensity_unit, vmap.beam) * np.cos(np.radians(geom["inclination"]))
     return rings["radius"].value, helium * n_hi / _N_PER_MSUN_PC2
+
+
+def gas_table(result, distance_mpc: float, helium: float = 1.33):
+    """``gas.ecsv`` content: radius (arcsec, kpc) and the gas surface density (M_sun/pc^2, with helium)."""
+    from astropy.table import QTable
+
+    radius, sigma = hi_surface_density(result, helium=helium)
+    t = QTable()
+    t["radius"] = radius * u.arcsec
+    t["radius_kpc"] = (radius * u.arcsec).to_value(u.rad) * distance_mpc * 1000.0 * u.kpc
+    t["surface_density_gas"] = sigma * u.Msun / u.pc**2
+    t.meta["comment"] = [f"gas = {helium} x HI (helium); deprojected ring averages of the intensity map",
+                         "N_HI = 1.823e18 int T_B dv; Jy/beam -> K with the beam at 1.4204 GHz"]
+    return t
