@@ -12,7 +12,8 @@ With theta the disc-plane azimuth and i the inclination (geometry held at the fi
   disc plane, measured from the receding major axis, and tangential/radial amplitudes).
 
 Each model is linear in its velocities for a given phi_b, so phi_b is found by a grid search
-(3 deg steps, parabolic refinement) — per ring, and over a radial range with one common phi_b.
+(3 deg steps, parabolic refinement; each angle a 4 x 4 solve from precomputed normal equations) —
+per ring, and over a radial range with one common phi_b.
 
 Selection by BIC with the pixel-correlation correction: with n pixels, p pixels per beam and
 s^2 the reduced chi-square of the richest model (the noise scale when no error map is given),
@@ -62,9 +63,45 @@ def _solve(a, v, w):
     return coef, chi2, aw
 
 
-def _best_angle(cos_t, sin_t, sin_i, v, w):
+def _gram(cos_t, sin_t, sin_i, v, w):
+    """Normal equations of the six-column basis that spans the bisymmetric model at every angle.
+
+    With c = cos 2 phi_b, s = sin 2 phi_b: cos(2 theta_b) cos(theta) = c cos2t cost + s sin2t cost and
+    sin(2 theta_b) sin(theta) = c sin2t sint - s cos2t sint, so for each angle the model's columns are
+    fixed combinations (:func:`_combine`) of [1, cos t, cos2t cos t, sin2t cos t, sin2t sin t, cos2t sin t]
+    (times sin i); chi^2 at any angle then costs a 4 x 4 solve.
+    """
+    c2 = cos_t**2 - sin_t**2
+    s2 = 2 * sin_t * cos_t
+    basis = np.column_stack([np.ones_like(cos_t), sin_i * cos_t, sin_i * c2 * cos_t, sin_i * s2 * cos_t,
+                             sin_i * s2 * sin_t, sin_i * c2 * sin_t]) * w[:, None]
+    vw = v * w
+    return basis.T @ basis, basis.T @ vw, float(vw @ vw)
+
+
+def _combine(phi):
+    c, s = np.cos(2 * phi), np.sin(2 * phi)
+    t = np.zeros((6, 4))
+    t[0, 0] = t[1, 1] = 1.0
+    t[2, 2], t[3, 2] = -c, -s
+    t[4, 3], t[5, 3] = -c, s
+    return t
+
+
+def _chi2_at(gram, phi):
+    g, h, vv = gram
+    t = _combine(phi)
+    g4, h4 = t.T @ g @ t, t.T @ h
+    try:
+        coef = np.linalg.solve(g4, h4)
+    except np.linalg.LinAlgError:
+        coef = np.linalg.lstsq(g4, h4, rcond=None)[0]
+    return vv - float(coef @ h4)
+
+
+def _best_angle(gram):
     """phi_b minimising chi^2 of the bisymmetric model (grid, then a parabola through the minimum)."""
-    chi = np.array([_solve(_columns(cos_t, sin_t, sin_i, phi), v, w)[1] for phi in _ANGLES])
+    chi = np.array([_chi2_at(gram, phi) for phi in _ANGLES])
     j = int(np.argmin(chi))
     lo, hi = chi[j - 1], chi[(j + 1) % len(chi)]
     denom = lo - 2 * chi[j] + hi
@@ -106,8 +143,8 @@ def fit_flows(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: 
         n = len(v)
         if n < 4 * _K["bisymmetric"]:
             continue
-        cache[k] = (cos_t, sin_t, v, w)
-        phi = _best_angle(cos_t, sin_t, sin_i[k], v, w)
+        cache[k] = (cos_t, sin_t, v, w, _gram(cos_t, sin_t, sin_i[k], v, w))
+        phi = _best_angle(cache[k][4])
         fits = {"circular": _solve(_columns(cos_t, sin_t, sin_i[k]), v, w),
                 "radial": _solve(_columns(cos_t, sin_t, sin_i[k], radial=True), v, w),
                 "bisymmetric": _solve(_columns(cos_t, sin_t, sin_i[k], phi), v, w)}
@@ -149,11 +186,10 @@ def fit_flows(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: 
     if ring_ids:
         total = np.zeros(len(_ANGLES))
         for k in ring_ids:
-            cos_t, sin_t, v, w = cache[k]
-            total += [_solve(_columns(cos_t, sin_t, sin_i[k], phi), v, w)[1] for phi in _ANGLES]
+            total += [_chi2_at(cache[k][4], phi) for phi in _ANGLES]
         phi_common = _ANGLES[int(np.argmin(total))]
         for k in ring_ids:
-            cos_t, sin_t, v, w = cache[k]
+            cos_t, sin_t, v, w, _ = cache[k]
             coef, _, aw = _solve(_columns(cos_t, sin_t, sin_i[k], phi_common), v, w)
             err = np.sqrt(np.clip(np.diag(np.linalg.pinv(aw.T @ aw)) * out["noise_scale"][k] ** 2 * pixels_per_beam,
                                   0, None))
