@@ -45,9 +45,9 @@ def test_elliptical_beam_follows_its_position_angle_on_a_rotated_grid():
 def test_corrected_inner_curve_recovers_truth_while_uncorrected_is_low(seed, quiet):
     """Independent particle field, steep inner rise (turnover 5 arcsec = half the 10-arcsec beam), intensity
     map given, rings half a beam wide. Between half a beam and 1.5 beams: the fit without correction is
-    10-30 per cent low; the corrected curve is within 8 per cent of the truth on average (the issue's target
-    is 6 per cent; 8 here leaves room for the noise of two seeds); the inclination is not biased low by
-    more than 2 deg."""
+    10-30 per cent low; the corrected curve is within 6 per cent of the truth on average (the target of the
+    beam-smearing issue; measured 3.0 and 5.5 per cent for these two seeds); the inclination is not biased
+    low by more than 2 deg."""
     hdul, truth = draw_field(65.0, 55.0, seed=seed, beam_pixels=10.0, r_turn=5.0, noise=4.0, n_particles=2_500_000)
     vm = tr.read_velocity_map(hdul, intensity=truth["intensity_hdu"])
     res = tr.fit_velocity_map(vm, ring_width="0.5beam", resamples=0)
@@ -57,7 +57,7 @@ def test_corrected_inner_curve_recovers_truth_while_uncorrected_is_low(seed, qui
     smeared = np.mean(res.rings["v_rotation_smeared"].value[sel] / v_true)
     corrected = np.mean(res.rings["v_rotation"].value[sel] / v_true)
     assert 0.70 <= smeared <= 0.90
-    assert abs(corrected - 1.0) < 0.08
+    assert abs(corrected - 1.0) < 0.06
     assert res.rings["inclination"].value[0] > 55.0 - 2.0
     assert res.diagnostics["beam_smearing"]["corrected"]
 
