@@ -14,7 +14,6 @@ motion v = v_c (-sin t, cos t, 0) makes the side at t = 0 recede, as the trade's
 
 import numpy as np
 from astropy import units as u
-from astropy.coordinates import SkyCoord
 from astropy.io import fits
 from astropy.wcs import WCS
 from scipy.ndimage import gaussian_filter

@@ -1,6 +1,5 @@
 """Residual-map comparison across grids, the report, figures and the command line's manners."""
 
-import json
 
 import numpy as np
 import pytest

@@ -3,7 +3,6 @@
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import SkyCoord
 from astropy.io import fits
 
 from independent_fields import grid_wcs

@@ -8,7 +8,6 @@ loosely). Tolerances are ours: 5 deg in position angle, 10 deg in inclination, 2
 """
 
 import numpy as np
-import pytest
 
 import tiltedring as tr
 

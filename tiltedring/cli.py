@@ -156,11 +156,10 @@ def run_massmodel(args) -> int:
     if args.curve.endswith(".dat") and args.radius_column is None:
         curve, baryons = read_sparc_rotmod(args.curve)
     else:
-        curve = read_curve(args.curve, args.radius_column, args.velocity_column, args.error_column)
         from .massmodel import Baryons
 
-        baryons = read_components(args.components) if args.components else Baryons()
-    if args.components and args.curve.endswith(".dat"):
+        curve, baryons = read_curve(args.curve, args.radius_column, args.velocity_column, args.error_column), Baryons()
+    if args.components:
         baryons = read_components(args.components)
     if args.gas:
         from astropy.table import Table

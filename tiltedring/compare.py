@@ -18,7 +18,7 @@ from astropy.table import QTable, Table
 
 from .errors import InputError
 from .geometry import disc_coordinates
-from .maps import load_image, read_velocity_map
+from .maps import _velocity_factor, load_image, read_velocity_map, regrid
 
 __all__ = ["MapComparison", "compare_maps"]
 
@@ -61,29 +61,6 @@ class MapComparison:
         return Path(folder)
 
 
-def _regrid(source, reference, flux, notes, name):
-    data, header, _ = load_image(source, name)
-    from .maps import _celestial_wcs
-
-    wcs = _celestial_wcs(header, data.shape)
-    if wcs is None or reference.wcs is None:
-        if data.shape != reference.shape:
-            raise InputError(f"{name} has shape {data.shape} but the common grid is {reference.shape}, and without "
-                             "celestial WCS the two cannot be aligned")
-        return data
-    if data.shape == reference.shape and np.allclose(wcs.wcs.crval, reference.wcs.wcs.crval) and np.allclose(
-            wcs.pixel_scale_matrix, reference.wcs.pixel_scale_matrix) and np.allclose(wcs.wcs.crpix,
-                                                                                     reference.wcs.wcs.crpix):
-        return data
-    from reproject import reproject_exact, reproject_interp
-
-    method = reproject_exact if flux else reproject_interp
-    out, footprint = method((data, wcs), reference.wcs, shape_out=reference.shape)
-    out[footprint <= 0] = np.nan
-    notes.append(f"{name} reprojected onto the common grid ({'flux-conserving' if flux else 'bilinear'})")
-    return out
-
-
 def compare_maps(sources, names=None, grid=None, rings=None, flux: bool = False, velocity_unit=None,
                  sector_width: float = 30.0) -> MapComparison:
     """Put ``sources`` (paths, HDUs or (array, header)) on one grid and compare them (module docstring).
@@ -100,13 +77,10 @@ def compare_maps(sources, names=None, grid=None, rings=None, flux: bool = False,
     reference = read_velocity_map(grid if grid is not None else sources[0], velocity_unit="km/s")
     maps = []
     for source, name in zip(sources, names):
-        data = _regrid(source, reference, flux, notes, name)
+        data, header, _ = load_image(source, name)
         if not flux:
-            from .maps import _velocity_factor
-
-            _, header, _ = load_image(source, name)
             data = data * _velocity_factor(header, velocity_unit, name)
-        maps.append(data)
+        maps.append(regrid(data, header, reference, "map", name, notes, flux=flux, warn=False))
     differences = [m - maps[0] for m in maps[1:]]
     statistics = _statistics(reference, differences, names, rings, sector_width)
     return MapComparison(names, maps, differences, statistics, reference, notes)

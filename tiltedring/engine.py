@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .geometry import disc_coordinates, wrap_angle
-from .kinematics import PARAMETERS, ring_model
+from .kinematics import ring_model
 
 __all__ = ["RingFitOptions", "RingSolution", "fit_ring", "WEIGHTINGS", "SIDES"]
 
@@ -75,10 +75,6 @@ class RingSolution:
     converged: bool
     free: np.ndarray = field(default_factory=lambda: np.zeros(7, bool))
 
-    def as_dict(self) -> dict:
-        out = {name: self.params[k] for k, name in enumerate(PARAMETERS)}
-        out.update({f"{name}_err": self.errors[k] for k, name in enumerate(PARAMETERS)})
-        return out
 
 
 def _select(x, y, params, jac, inner, outer, options):

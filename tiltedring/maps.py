@@ -18,7 +18,7 @@ of a linear mapping is negligible (< 1e-4 relative over a degree).
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -142,12 +142,6 @@ class VelocityMap:
         j = self.sky_jacobian
         return j[0, 0] * dx + j[0, 1] * dy, j[1, 0] * dx + j[1, 1] * dy
 
-    def pixel_to_sky(self, x: float, y: float):
-        """(ra, dec) in deg of a pixel position, or (nan, nan) without a WCS."""
-        if self.wcs is None:
-            return float("nan"), float("nan")
-        c = self.wcs.pixel_to_world(x, y)
-        return float(c.spherical.lon.deg), float(c.spherical.lat.deg)
 
     def sky_to_pixel(self, ra: float, dec: float):
         """Pixel (x, y) of a sky position in deg (needs a WCS)."""
@@ -169,9 +163,6 @@ class VelocityMap:
             hdr["BPA"] = self.beam.position_angle
         return hdr
 
-    def with_velocity(self, velocity: np.ndarray) -> "VelocityMap":
-        """A copy with another velocity array on the same grid."""
-        return replace(self, velocity=np.asarray(velocity, float))
 
 
 # --------------------------------------------------------------------------- reading
@@ -336,14 +327,19 @@ def _velocity_factor(header, velocity_unit, name, role="velocity map") -> float:
         raise InputError(f"{role} {name}: BUNIT {bunit!r} — {exc}; or state the unit with --velocity-unit") from None
 
 
-def _match_grid(data, header, target: "VelocityMap", role, name, notes) -> np.ndarray:
-    """Put an auxiliary map on the velocity map's grid (reproject when the grids differ)."""
+def regrid(data, header, target: "VelocityMap", role, name, notes, flux: bool = False, warn: bool = True):
+    """Put a map on ``target``'s grid; unchanged when the grids already agree.
+
+    Grids that differ are reprojected with reproject (bilinear, or flux-conserving with ``flux``;
+    pixels outside the source become NaN) and a note says so. Without celestial WCS on both sides
+    the shapes must agree.
+    """
     own = _celestial_wcs(header, data.shape)
     same_shape = data.shape == target.shape
     if own is None or target.wcs is None:
         if not same_shape:
             raise InputError(
-                f"{role} {name} has shape {data.shape} but the velocity map has {target.shape}, "
+                f"{role} {name} has shape {data.shape} but the target grid has {target.shape}, "
                 "and without celestial WCS in both the two cannot be aligned; regrid it first"
             )
         return data
@@ -351,12 +347,14 @@ def _match_grid(data, header, target: "VelocityMap", role, name, notes) -> np.nd
         own.pixel_scale_matrix, target.wcs.pixel_scale_matrix
     ) and np.allclose(own.wcs.crval, target.wcs.wcs.crval):
         return data
-    from reproject import reproject_interp
+    from reproject import reproject_exact, reproject_interp
 
-    out, _ = reproject_interp((data, own), target.wcs, shape_out=target.shape)
-    msg = f"{role} {name} is on another grid; reprojected onto the velocity map's grid (bilinear)"
+    out, footprint = (reproject_exact if flux else reproject_interp)((data, own), target.wcs, shape_out=target.shape)
+    out[footprint <= 0] = np.nan
+    msg = f"{role} {name} is on another grid; reprojected ({'flux-conserving' if flux else 'bilinear'})"
     notes.append(msg)
-    warnings.warn(msg, FitCaution, stacklevel=3)
+    if warn:
+        warnings.warn(msg, FitCaution, stacklevel=3)
     return out
 
 
@@ -377,7 +375,7 @@ def _velocity_like(source, role, vmap, own_unit, velocity_unit, notes):
     data, header, name = load_image(source, role)
     unit = own_unit if own_unit is not None else (velocity_unit if not header.get("BUNIT") else None)
     data = data * _velocity_factor(header, unit, name, role)
-    return _finite_check(_match_grid(data, header, vmap, role, name, notes), role, name, notes), name
+    return _finite_check(regrid(data, header, vmap, role, name, notes), role, name, notes), name
 
 
 def read_velocity_map(
@@ -433,7 +431,7 @@ def read_velocity_map(
     if intensity is not None:
         idata, iheader, iname = load_image(intensity, "intensity map")
         vmap.intensity_unit = str(iheader.get("BUNIT", "")).strip() or None
-        idata = _finite_check(_match_grid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
+        idata = _finite_check(regrid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
         vmap.intensity = idata
     if not vmap.valid.any():
         raise InputError(f"velocity map {name} has no pixel with both a finite velocity and a positive error")

@@ -43,7 +43,6 @@ from .warp import geometry_profile
 __all__ = ["FitOptions", "fit_velocity_map"]
 
 _INDEX = {name: k for k, name in enumerate(PARAMETERS)}
-STAGES = ("free", "centred", "final")
 
 
 @dataclass
@@ -592,7 +591,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     final = final[[c for c in final.colnames if c != "flags"] + ["flags"]]
     cautions += _cautions(final, options, vmap, summaries)
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
-                     model=model, residual=residual, cautions=cautions, diagnostics=summaries, centre=centre)
+                     model=model, residual=residual, cautions=cautions, diagnostics=summaries)
 
 
 def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:

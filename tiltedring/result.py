@@ -99,7 +99,6 @@ class FitResult:
     residual: np.ndarray
     cautions: list = field(default_factory=list)
     diagnostics: dict = field(default_factory=dict)
-    centre: dict = field(default_factory=dict)
     inputs: dict = field(default_factory=dict)
 
     # ------------------------------------------------------------------ summaries

@@ -120,7 +120,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
         bic = {key: b[0] / s2 + b[1] * np.log(n) for key, b in best.items()}
         bic_flat = chi2_flat / s2 + len(free) * np.log(n)
         winner = min(bic, key=bic.get)
-        chi2_w, k_w, onset, degree, fits = best[winner]
+        chi2_w, _, onset, degree, fits = best[winner]
         probe = _design(np.array([rt.max() if winner else rt.min()]), onset, degree, winner)
         change = {name: float((probe @ fits[name][0])[0] - fits[name][0][0]) for name in free}
         delta_bic = bic_flat - bic[winner]
