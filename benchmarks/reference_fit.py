@@ -1,14 +1,20 @@
 """A plain, straightforward ring fit: the reference the speed benchmark compares against.
 
-    python benchmarks/reference_fit.py MAP.fits
+    python benchmarks/reference_fit.py MAP.fits [--select-once]
 
 numpy + scipy.optimize.least_squares with numerical (2-point) Jacobians, two stages, as one would
 write it without care for speed: a start from moments of the map (median velocity, centroid,
 first-moment direction, axis ratio of the valid pixels), rings one beam wide; stage 1 fits centre,
 systemic velocity, position angle, inclination and rotation per ring; stage 2 fixes centre and
-systemic velocity to their medians and refits position angle, inclination and rotation. Pixels of
-each ring are selected once per stage at its starting geometry, weighted by |cos theta|.
-Prints the ring table and the wall time.
+systemic velocity to their medians and refits position angle, inclination and rotation.
+
+The ring fit is the same as the tool's (:mod:`tiltedring.engine`): pixels of a ring are those
+whose disc radius under the ring's geometry falls inside it, outside a 15 deg wedge about the minor
+axis, weighted by |cos theta|; since membership depends on the geometry being fitted, the pixels
+are selected again after each fit until no geometry parameter moves by more than 0.02 (deg or
+pixel), at most 10 times. ``--select-once`` selects the pixels once per stage at the starting
+geometry instead (a cheaper but different fit: geometry errors in the start then bias the ring).
+Prints a summary and the wall time.
 """
 
 import sys
@@ -37,7 +43,10 @@ def model(q, x, y, jac):
     return vsys + np.sin(np.radians(inc)) * vrot * cos_t
 
 
-def main(path):
+WEDGE = np.sin(np.radians(15.0))
+
+
+def main(path, select_once=False):
     t0 = time.perf_counter()
     hdu = fits.open(path)[0]
     data = hdu.data.astype(float) * (1e-3 if "M/S" == hdu.header["BUNIT"].upper().replace(" ", "") else 1.0)
@@ -61,25 +70,32 @@ def main(path):
     edges = np.arange(0, np.percentile(r_all, 99), beam)
     start = np.array([xc, yc, vsys, pa, inc, vrot])
 
+    def select(q, k):
+        r, cos_t = disc(x, y, q[0], q[1], jac, q[3], q[4])
+        sel = (r >= edges[k]) & (r < edges[k + 1]) & (np.abs(cos_t) >= WEDGE)
+        return sel, np.sqrt(np.abs(cos_t[sel]))
+
     def fit_stage(starts, free):
         out = []
         for k in range(len(edges) - 1):
-            q0 = starts[k]
-            r, cos_t = disc(x, y, q0[0], q0[1], jac, q0[3], q0[4])
-            sel = (r >= edges[k]) & (r < edges[k + 1])
-            if sel.sum() < 10:
-                out.append(np.full(6, np.nan))
-                continue
-            xs, ys, vs, ws = x[sel], y[sel], v[sel], np.sqrt(np.abs(cos_t[sel]))
+            q = starts[k].copy()
+            for _update in range(1 if select_once else 10):
+                sel, ws = select(q, k)
+                if sel.sum() < 10:
+                    q = np.full(6, np.nan)
+                    break
+                xs, ys, vs = x[sel], y[sel], v[sel]
 
-            def resid(p):
-                q = q0.copy()
-                q[free] = p
-                return (vs - model(q, xs, ys, jac)) * ws
+                def resid(p, q0=q.copy()):
+                    qq = q0.copy()
+                    qq[free] = p
+                    return (vs - model(qq, xs, ys, jac)) * ws
 
-            sol = least_squares(resid, q0[free], jac="2-point")
-            q = q0.copy()
-            q[free] = sol.x
+                sol = least_squares(resid, q[free], jac="2-point")
+                moved = np.abs(sol.x - q[free])[np.isin(np.flatnonzero(free), [0, 1, 3, 4])]
+                q[free] = sol.x
+                if moved.size == 0 or moved.max() < 0.02:
+                    break
             out.append(q)
         return np.array(out)
 
@@ -96,4 +112,4 @@ def main(path):
 
 
 if __name__ == "__main__":
-    main(sys.argv[1])
+    main(sys.argv[1], select_once="--select-once" in sys.argv[2:])

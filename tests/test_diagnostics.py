@@ -12,7 +12,7 @@ from scipy.spatial.transform import Rotation
 import tiltedring as tr
 from independent_fields import draw_field
 from tiltedring.flows import fit_flows
-from tiltedring.harmonics import ring_harmonics
+from tiltedring.harmonics import chi2_survival, ring_harmonics
 from tiltedring.synthetic import DiscTruth, make_field
 from tiltedring.warp import tilt_and_line_of_nodes
 
@@ -25,6 +25,15 @@ def _fit(hdul, **options):
 
 def _non_circular(flags):
     return np.array([any(name in f for name in NON_CIRCULAR) for f in flags])
+
+
+@pytest.mark.parametrize("dof", [1, 3, 5, 7])
+def test_chi2_survival_against_scipy_stats(dof):
+    """The closed form (Abramowitz & Stegun 26.4.4) used for harmonic p-values, against scipy.stats.chi2."""
+    from scipy import stats
+
+    for x in (0.0, 0.3, 2.0, 5.0, 11.0, 30.0, 80.0):
+        assert chi2_survival(x, dof) == pytest.approx(stats.chi2.sf(x, dof), rel=1e-9, abs=1e-14)
 
 
 def test_tilt_and_line_of_nodes_against_scipy_rotation():

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .candidates import gather_rings
 from .flows import FlowTest, fit_flows
 from .harmonics import HARMONIC_NAMES, ring_harmonics
 
@@ -40,8 +41,9 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
     """Return (per-ring columns dict, per-ring flag sets, summary dict)."""
     n = len(inner)
     radii = 0.5 * (np.asarray(inner) + np.asarray(outer))
-    harm = ring_harmonics(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam)
-    flows = fit_flows(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, test.flows, bar_range)
+    members = gather_rings(pixels, sky_jacobian, rings, inner, outer)
+    harm = ring_harmonics(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, members)
+    flows = fit_flows(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, test.flows, bar_range, members)
     sin_i = np.sin(np.radians(np.asarray(rings["inclination"], float)))
     variances = np.array([harm[f"{c}_err"] ** 2 for c in ("s1", "c2", "s2", "c3", "s3")])
     measured = np.isfinite(variances).sum(axis=0)

@@ -21,15 +21,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .geometry import disc_coordinates, wrap_angle
-from .kinematics import ring_model
-
-__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "WEIGHTINGS", "SIDES"]
+__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "fit_rings", "WEIGHTINGS", "SIDES"]
 
 WEIGHTINGS = {"uniform": 0, "cos": 1, "cos2": 2}
 SIDES = ("both", "approaching", "receding")
-_INC_BOUNDS = (1.0, 89.0)
-_AZIMUTH_BINS = 36
 
 
 @dataclass(frozen=True)
@@ -74,103 +69,45 @@ class RingSolution:
     rms: float
     converged: bool
     free: np.ndarray = field(default_factory=lambda: np.zeros(7, bool))
+    truncated: bool = False  # the ring reached the edge of its candidate pixels (see :func:`fit_rings`)
 
 
 
-def _select(x, y, params, jac, inner, outer, options):
-    radius, cos_t, sin_t = disc_coordinates(x, y, params[0], params[1], jac, params[3], params[4])
-    keep = (radius >= inner) & (radius < outer)
-    if options.exclusion_wedge > 0:
-        keep &= np.abs(cos_t) >= np.sin(np.radians(options.exclusion_wedge))
-    if options.side == "approaching":
-        keep &= cos_t < 0
-    elif options.side == "receding":
-        keep &= cos_t > 0
-    return keep, cos_t, sin_t
+def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, options=RingFitOptions(),
+              pixels_per_beam: float = 1.0, min_pixels: int = 0, threads: int | None = None, order_radius=None,
+              margin: float = 0.0) -> list:
+    """Fit many rings at once; ring k reads pixels ``bounds[k, 0]:bounds[k, 1]`` of ``x, y, v, sigma``.
 
+    Sorting the pixels by disc radius (``order_radius``, ascending) lets each ring's candidates be
+    one contiguous slice (see :mod:`.candidates`); a ring whose pixels come within ``margin`` of an
+    end of its slice is marked ``truncated``. ``starts``: (n_rings, 7) starting parameters; ``inner``/``outer``:
+    ring edges (arcsec). Rings are shared among ``threads`` threads (default: the machine's cores,
+    at most 4); the compiled fit releases the interpreter lock. Returns a list of :class:`RingSolution`.
+    """
+    from .ring_solver import fit_ring_list
+    from .threads import run_parts, thread_count
 
-def _coverage(cos_t, sin_t, options) -> float:
-    """Fraction of the usable azimuth (outside the wedge, on the chosen side) holding pixels."""
-    centres = (np.arange(_AZIMUTH_BINS) + 0.5) * 2 * np.pi / _AZIMUTH_BINS
-    usable = np.abs(np.cos(centres)) >= np.sin(np.radians(options.exclusion_wedge))
-    if options.side == "approaching":
-        usable &= np.cos(centres) < 0
-    elif options.side == "receding":
-        usable &= np.cos(centres) > 0
-    theta = np.mod(np.arctan2(sin_t, cos_t), 2 * np.pi)
-    hit = np.zeros(_AZIMUTH_BINS, bool)
-    hit[np.minimum((theta / (2 * np.pi) * _AZIMUTH_BINS).astype(int), _AZIMUTH_BINS - 1)] = True
-    return float((hit & usable).sum() / max(usable.sum(), 1))
+    arrays = [np.ascontiguousarray(a, float) for a in (x, y, v, sigma)]
+    bounds = np.asarray(bounds, np.int64).reshape(-1, 2)
+    m = len(bounds)
+    starts = np.ascontiguousarray(np.broadcast_to(np.asarray(starts, float), (m, 7)))
+    free = np.asarray(free, bool)
+    params, errors, stats = np.empty((m, 7)), np.empty((m, 7)), np.empty((m, 6))
+    # the largest rings first, dealt out in turn, so the threads finish together
+    order = np.argsort(bounds[:, 0] - bounds[:, 1], kind="stable")
+    threads = min(threads or thread_count(), max(m, 1))
+    order_radius = np.zeros(len(arrays[0])) if order_radius is None else np.ascontiguousarray(order_radius, float)
+    shared = (*arrays, order_radius, float(margin), np.ascontiguousarray(bounds[:, 0]), np.ascontiguousarray(bounds[:, 1]), starts, free,
+              np.ascontiguousarray(sky_jacobian, float), np.ascontiguousarray(np.broadcast_to(inner, m), float),
+              np.ascontiguousarray(np.broadcast_to(outer, m), float), WEIGHTINGS[options.weighting],
+              float(np.sin(np.radians(options.exclusion_wedge))), SIDES.index(options.side), float(options.clip or 0.0),
+              options.max_iterations, options.geometry_updates, int(min_pixels), float(pixels_per_beam),
+              params, errors, stats)
 
-
-def _clamp(p):
-    p[4] = min(max(p[4], _INC_BOUNDS[0]), _INC_BOUNDS[1])
-    return p
-
-
-def _levenberg_marquardt(x, y, v, w_sqrt, p, free, jac, max_iterations):
-    """Minimise sum (w_sqrt (v - model))^2 over p[free]; returns (p, residual, A, converged)."""
-    lam = 1e-3
-    model, deriv = ring_model(x, y, p, jac)
-    r = (v - model) * w_sqrt
-    cost = r @ r
-    converged = False
-    for _ in range(max_iterations):
-        a = deriv[:, free] * w_sqrt[:, None]
-        g = a.T @ r
-        h = a.T @ a
-        diag = np.diag(h).copy() + 1e-12
-        improved = False
-        while lam < 1e12:
-            try:
-                step = np.linalg.solve(h + lam * np.diag(diag), g)
-            except np.linalg.LinAlgError:
-                lam *= 10
-                continue
-            trial = p.copy()
-            trial[free] += step
-            _clamp(trial)
-            m_new, d_new = ring_model(x, y, trial, jac)
-            r_new = (v - m_new) * w_sqrt
-            c_new = r_new @ r_new
-            if np.isfinite(c_new) and c_new <= cost:
-                improved = True
-                small = cost - c_new <= 1e-10 * max(cost, 1e-30)
-                p, model, deriv, r, cost = trial, m_new, d_new, r_new, c_new
-                lam = max(lam / 10, 1e-12)
-                break
-            lam *= 10
-        if not improved or small:
-            converged = True
-            break
-    a = deriv[:, free] * w_sqrt[:, None]
-    return p, r, a, converged
-
-
-def _normalise(p):
-    """Keep v_rotation >= 0 by turning the position angle half a circle (same v_los field)."""
-    if p[5] < 0:
-        p[3] += 180.0
-        p[5] = -p[5]
-        p[6] = -p[6]
-    p[3] = wrap_angle(p[3])
-    return p
-
-
-def _fit_selected(x, y, v, idx, w_sqrt, p, free, jac, options, n_free):
-    """LM on the selected pixels, with optional iterative clipping; returns (p, r, A, converged, idx)."""
-    for _round in range(4 if options.clip else 1):
-        p_new, r, a, converged = _levenberg_marquardt(x[idx], y[idx], v[idx], w_sqrt, p.copy(), free, jac,
-                                                      options.max_iterations)
-        if not options.clip:
-            break
-        raw = r / np.where(w_sqrt > 0, w_sqrt, 1.0)
-        mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
-        good = np.abs(raw) <= options.clip * max(mad, 1e-9)
-        if good.all() or good.sum() < 2 * n_free:
-            break
-        idx, w_sqrt = idx[good], w_sqrt[good]
-    return p_new, r, a, converged, idx
+    parts = [np.ascontiguousarray(order[t::threads]) for t in range(threads)]
+    run_parts(lambda part: fit_ring_list(part, *shared), parts, threads)
+    return [RingSolution(params[k], errors[k], int(stats[k, 0]), float(stats[k, 1]), float(stats[k, 2]),
+                         float(stats[k, 3]), bool(stats[k, 4]), free.copy(), bool(stats[k, 5])) for k in range(m)]
 
 
 def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=RingFitOptions(),
@@ -182,58 +119,5 @@ def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=Ri
     mask of those to fit. A ring with fewer than ``max(min_pixels, 2 * n_free)`` pixels is
     returned unfitted (``converged`` False, parameters at ``start``).
     """
-    p = _clamp(np.asarray(start, float).copy())
-    free = np.asarray(free, bool)
-    n_free = int(free.sum())
-    jac = np.ascontiguousarray(sky_jacobian, float)
-    power = WEIGHTINGS[options.weighting]
-    geometry = np.zeros(7, bool)
-    geometry[[0, 1, 3, 4]] = True
-    geometry_free = bool((free & geometry).any())
-    result = None
-    for _ in range(options.geometry_updates if geometry_free else 1):
-        keep, cos_t, sin_t = _select(x, y, p, jac, inner, outer, options)
-        n = int(keep.sum())
-        if n < max(min_pixels, 2 * n_free, 3):
-            return RingSolution(p, np.full(7, np.nan), n, _coverage(cos_t[keep], sin_t[keep], options),
-                                np.nan, np.nan, False, free)
-        idx = np.flatnonzero(keep)
-        w_sqrt = np.abs(cos_t[idx]) ** (power / 2.0) / sigma[idx]
-        p_new, r, a, converged, idx = _fit_selected(x, y, v, idx, w_sqrt, p, free, jac, options, n_free)
-        result = (idx, r, a, converged, cos_t, sin_t)
-        step = p_new - p
-        if not geometry_free or np.max(np.abs(step[geometry])) < 0.02:
-            p = p_new
-            break
-        # Damped fixed-point update of the geometry: the pixel selection depends on the geometry, and an
-        # undamped update can flip between two selections (seen in warped discs); velocities take the full step.
-        p = p_new - 0.5 * np.where(geometry, step, 0.0)
-    else:
-        # not settled: hold the damped geometry and refit the velocities on its own pixel selection
-        keep, cos_t, sin_t = _select(x, y, p, jac, inner, outer, options)
-        idx = np.flatnonzero(keep)
-        if len(idx) < max(min_pixels, 2 * n_free, 3):
-            return RingSolution(p, np.full(7, np.nan), len(idx), _coverage(cos_t[keep], sin_t[keep], options),
-                                np.nan, np.nan, False, free)
-        w_sqrt = np.abs(cos_t[idx]) ** (power / 2.0) / sigma[idx]
-        velocities = free & ~geometry
-        if velocities.any():
-            p, _, _, _, idx_v = _fit_selected(x, y, v, idx, w_sqrt, p, velocities, jac, options, int(velocities.sum()))
-            keep_v = np.isin(idx, idx_v)
-            idx, w_sqrt = idx[keep_v], w_sqrt[keep_v]
-        _, r, a, _ = _levenberg_marquardt(x[idx], y[idx], v[idx], w_sqrt, p, free, jac, 0)  # Jacobian for errors
-        result = (idx, r, a, True, cos_t, sin_t)
-    idx, r, a, converged, cos_t, sin_t = result
-    n = len(idx)
-    dof = max(n - n_free, 1)
-    chi2_red = float(r @ r / dof)
-    errors = np.full(7, np.nan)
-    try:
-        cov = np.linalg.inv(a.T @ a) * chi2_red * pixels_per_beam
-        errors[free] = np.sqrt(np.clip(np.diag(cov), 0, None))
-    except np.linalg.LinAlgError:
-        converged = False
-    model, _ = ring_model(x[idx], y[idx], p, jac)
-    rms = float(np.sqrt(np.mean((v[idx] - model) ** 2)))
-    p = _normalise(p)
-    return RingSolution(p, errors, n, _coverage(cos_t[idx], sin_t[idx], options), chi2_red, rms, converged, free)
+    return fit_rings(x, y, v, sigma, [(0, len(x))], np.asarray(start, float)[None, :], free, sky_jacobian, [inner],
+                     [outer], options, pixels_per_beam, min_pixels, threads=1)[0]

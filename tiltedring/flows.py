@@ -29,7 +29,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .geometry import disc_coordinates
+from .candidates import gather_rings
+from .leastsq import weighted_least_squares
 
 __all__ = ["FlowTest", "fit_flows", "MODELS"]
 
@@ -56,13 +57,6 @@ def _columns(cos_t, sin_t, sin_i, phi_b=None, radial=False):
     return np.column_stack(cols)
 
 
-def _solve(a, v, w):
-    aw = a * w[:, None]
-    coef, *_ = np.linalg.lstsq(aw, v * w, rcond=None)
-    chi2 = float(np.sum((v * w - aw @ coef) ** 2))
-    return coef, chi2, aw
-
-
 def _gram(cos_t, sin_t, sin_i, v, w):
     """Normal equations of the six-column basis that spans the bisymmetric model at every angle.
 
@@ -80,28 +74,32 @@ def _gram(cos_t, sin_t, sin_i, v, w):
 
 
 def _combine(phi):
+    """(len(phi), 6, 4) maps from the six-column basis to the bisymmetric model's columns at each angle."""
+    phi = np.atleast_1d(phi)
     c, s = np.cos(2 * phi), np.sin(2 * phi)
-    t = np.zeros((6, 4))
-    t[0, 0] = t[1, 1] = 1.0
-    t[2, 2], t[3, 2] = -c, -s
-    t[4, 3], t[5, 3] = -c, s
+    t = np.zeros((len(phi), 6, 4))
+    t[:, 0, 0] = t[:, 1, 1] = 1.0
+    t[:, 2, 2], t[:, 3, 2] = -c, -s
+    t[:, 4, 3], t[:, 5, 3] = -c, s
     return t
 
 
 def _chi2_at(gram, phi):
+    """chi^2 of the bisymmetric model at each bar angle in ``phi`` (array), from :func:`_gram`."""
     g, h, vv = gram
     t = _combine(phi)
-    g4, h4 = t.T @ g @ t, t.T @ h
+    g4 = np.einsum("aij,jk,akl->ail", t.transpose(0, 2, 1), g, t)
+    h4 = np.einsum("aji,j->ai", t, h)
     try:
-        coef = np.linalg.solve(g4, h4)
+        coef = np.linalg.solve(g4, h4[..., None])[..., 0]
     except np.linalg.LinAlgError:
-        coef = np.linalg.lstsq(g4, h4, rcond=None)[0]
-    return vv - float(coef @ h4)
+        coef = np.array([np.linalg.lstsq(a, b, rcond=None)[0] for a, b in zip(g4, h4)])
+    return vv - np.einsum("ai,ai->a", coef, h4)
 
 
 def _best_angle(gram):
     """phi_b minimising chi^2 of the bisymmetric model (grid, then a parabola through the minimum)."""
-    chi = np.array([_chi2_at(gram, phi) for phi in _ANGLES])
+    chi = _chi2_at(gram, _ANGLES)
     j = int(np.argmin(chi))
     lo, hi = chi[j - 1], chi[(j + 1) % len(chi)]
     denom = lo - 2 * chi[j] + hi
@@ -109,24 +107,19 @@ def _best_angle(gram):
     return (_ANGLES[j] + shift * (_ANGLES[1] - _ANGLES[0])) % np.pi
 
 
-def _ring_pixels(pixels, sky_jacobian, rings, k, inner, outer):
-    x, y, v, sigma = pixels
-    radius, cos_t, sin_t = disc_coordinates(x, y, rings["x_center"][k], rings["y_center"][k], sky_jacobian,
-                                            rings["position_angle"][k], rings["inclination"][k])
-    sel = (radius >= inner[k]) & (radius < outer[k])
-    return cos_t[sel], sin_t[sel], v[sel], 1.0 / sigma[sel]
-
-
 def fit_flows(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: float = 1.0,
-              test: FlowTest = FlowTest(), bar_range=None) -> dict:
+              test: FlowTest = FlowTest(), bar_range=None, ring_pixels: list | None = None) -> dict:
     """Fit the three models to every ring and choose one per ring (module docstring).
 
     ``bar_range``: optional (r_min, r_max) arcsec over which one common bar angle is fitted; by
     default the range of the rings that chose ``bisymmetric`` on their own. Returns per-ring arrays
     (``flow_model``, ``v_t_<model>``, ``v_radial_flow`` and error, ``v_2t``, ``v_2r`` and errors,
     ``bar_angle_ring``, ``delta_bic_radial``, ``delta_bic_bisymmetric``) and ``disc`` (disc-wide
-    BIC per model, the common bar angle and the chosen disc-wide model).
+    BIC per model, the common bar angle and the chosen disc-wide model). ``ring_pixels``: the rings'
+    pixels from :func:`.candidates.gather_rings`, when already at hand.
     """
+    if ring_pixels is None:
+        ring_pixels = gather_rings(pixels, sky_jacobian, rings, inner, outer)
     n_rings = len(inner)
     sin_i = np.sin(np.radians(np.asarray(rings["inclination"], float)))
     radii = 0.5 * (np.asarray(inner) + np.asarray(outer))
@@ -139,25 +132,24 @@ def fit_flows(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: 
     disc_n = 0.0
     cache = {}
     for k in range(n_rings):
-        cos_t, sin_t, v, w = _ring_pixels(pixels, sky_jacobian, rings, k, inner, outer)
+        cos_t, sin_t, v, sigma = ring_pixels[k]
+        w = 1.0 / sigma
         n = len(v)
         if n < 4 * _K["bisymmetric"]:
             continue
         cache[k] = (cos_t, sin_t, v, w, _gram(cos_t, sin_t, sin_i[k], v, w))
         phi = _best_angle(cache[k][4])
-        fits = {"circular": _solve(_columns(cos_t, sin_t, sin_i[k]), v, w),
-                "radial": _solve(_columns(cos_t, sin_t, sin_i[k], radial=True), v, w),
-                "bisymmetric": _solve(_columns(cos_t, sin_t, sin_i[k], phi), v, w)}
-        s2 = max(fits["bisymmetric"][1] / (n - _K["bisymmetric"]), 1e-12)
+        fits = {"circular": weighted_least_squares(_columns(cos_t, sin_t, sin_i[k]), v, w),
+                "radial": weighted_least_squares(_columns(cos_t, sin_t, sin_i[k], radial=True), v, w),
+                "bisymmetric": weighted_least_squares(_columns(cos_t, sin_t, sin_i[k], phi), v, w)}
+        s2 = max(fits["bisymmetric"][2] / (n - _K["bisymmetric"]), 1e-12)
         n_eff = max(n / pixels_per_beam, _K["bisymmetric"] + 1.0)
-        bic = {m: fits[m][1] / (s2 * pixels_per_beam) + _K[m] * np.log(n_eff) for m in MODELS}
+        bic = {m: fits[m][2] / (s2 * pixels_per_beam) + _K[m] * np.log(n_eff) for m in MODELS}
         for m in MODELS:
-            disc_chi[m] += fits[m][1] / (s2 * pixels_per_beam)
+            disc_chi[m] += fits[m][2] / (s2 * pixels_per_beam)
         disc_n += n_eff
-        errs = {}
-        for m in ("radial", "bisymmetric"):
-            aw = fits[m][2]
-            errs[m] = np.sqrt(np.clip(np.diag(np.linalg.pinv(aw.T @ aw)) * s2 * pixels_per_beam, 0, None))
+        errs = {m: np.sqrt(np.clip(np.diag(fits[m][1]) * s2 * pixels_per_beam, 0, None))
+                for m in ("radial", "bisymmetric")}
         out["noise_scale"][k] = np.sqrt(s2)
         out["v_t_circular"][k] = fits["circular"][0][1]
         out["v_t_radial"][k] = fits["radial"][0][1]
@@ -186,13 +178,12 @@ def fit_flows(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: 
     if ring_ids:
         total = np.zeros(len(_ANGLES))
         for k in ring_ids:
-            total += [_chi2_at(cache[k][4], phi) for phi in _ANGLES]
+            total += _chi2_at(cache[k][4], _ANGLES)
         phi_common = _ANGLES[int(np.argmin(total))]
         for k in ring_ids:
             cos_t, sin_t, v, w, _ = cache[k]
-            coef, _, aw = _solve(_columns(cos_t, sin_t, sin_i[k], phi_common), v, w)
-            err = np.sqrt(np.clip(np.diag(np.linalg.pinv(aw.T @ aw)) * out["noise_scale"][k] ** 2 * pixels_per_beam,
-                                  0, None))
+            coef, cov, _ = weighted_least_squares(_columns(cos_t, sin_t, sin_i[k], phi_common), v, w)
+            err = np.sqrt(np.clip(np.diag(cov) * out["noise_scale"][k] ** 2 * pixels_per_beam, 0, None))
             out["v_t_bisymmetric"][k] = coef[1]
             out["v_2t"][k], out["v_2t_err"][k] = coef[2], err[2]
             out["v_2r"][k], out["v_2r_err"][k] = coef[3], err[3]

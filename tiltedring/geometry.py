@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["disc_coordinates", "sky_from_disc", "assign_to_rings", "wrap_angle"]
+__all__ = ["centre_angle", "disc_coordinates", "sky_from_disc", "assign_to_rings", "wrap_angle"]
 
 DEG = np.pi / 180.0
 
@@ -29,6 +29,11 @@ def wrap_angle(angle):
     """Position angle wrapped into [0, 360) deg (a tiny negative angle gives 0, not 360)."""
     wrapped = np.mod(angle, 360.0)
     return np.where(wrapped >= 360.0, 0.0, wrapped) if np.ndim(wrapped) else (0.0 if wrapped >= 360.0 else wrapped)
+
+
+def centre_angle(values, reference):
+    """Angles (deg) re-expressed within 180 deg of ``reference`` so they can be averaged."""
+    return reference + np.mod(np.asarray(values, float) - reference + 180.0, 360.0) - 180.0
 
 
 @njit(cache=True, inline="always")
@@ -84,50 +89,56 @@ def sky_from_disc(radius, azimuth, x_center, y_center, sky_jacobian, position_an
 
 
 @njit(cache=True, inline="always")
-def _offset(x, y, jac, radius, xc, yc, pa, inc):
+def _offset(x, y, jac, radius, xc, yc, sp, cp, ci):
     """Disc radius of a pixel under one ring's geometry, minus that ring's radius."""
-    xd, yd = project(x, y, xc, yc, jac, np.sin(pa * DEG), np.cos(pa * DEG), np.cos(inc * DEG))
+    xd, yd = project(x, y, xc, yc, jac, sp, cp, ci)
     return np.sqrt(xd * xd + yd * yd) - radius
+
+
+@njit(cache=True)
+def ring_trig(pa, inc):
+    """Per-ring sin and cos of the position angle and cos of the inclination (degrees in)."""
+    return np.sin(pa * DEG), np.cos(pa * DEG), np.cos(inc * DEG)
+
+
+@njit(cache=True, inline="always")
+def place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer):
+    """(fractional ring index, disc radius) of one pixel; (-1, NaN) beyond ``r_outer`` (see :func:`assign_to_rings`)."""
+    m = radii.shape[0]
+    mid = m // 2
+    # start from the ring the middle ring's geometry suggests, then walk to the sign change of f
+    start = _offset(x, y, jac, 0.0, xc[mid], yc[mid], sp[mid], cp[mid], ci[mid])
+    j = min(max(np.searchsorted(radii, start), 0), m - 1)
+    fj = _offset(x, y, jac, radii[j], xc[j], yc[j], sp[j], cp[j], ci[j])
+    if fj >= 0.0:
+        while j + 1 < m:
+            f_next = _offset(x, y, jac, radii[j + 1], xc[j + 1], yc[j + 1], sp[j + 1], cp[j + 1], ci[j + 1])
+            if f_next < 0.0:
+                w = fj / (fj - f_next)
+                return j + w, radii[j] + w * (radii[j + 1] - radii[j])
+            j += 1
+            fj = f_next
+        if fj + radii[m - 1] <= r_outer:
+            return m - 1.0, fj + radii[m - 1]
+        return -1.0, np.nan
+    while j > 0:
+        f_prev = _offset(x, y, jac, radii[j - 1], xc[j - 1], yc[j - 1], sp[j - 1], cp[j - 1], ci[j - 1])
+        if f_prev >= 0.0:
+            w = f_prev / (f_prev - fj)
+            return j - 1 + w, radii[j - 1] + w * (radii[j] - radii[j - 1])
+        j -= 1
+        fj = f_prev
+    return 0.0, fj + radii[0]
 
 
 @njit(cache=True)
 def _assign(x, y, jac, radii, xc, yc, pa, inc, r_outer):
     n = x.shape[0]
-    m = radii.shape[0]
-    position = np.full(n, -1.0)
-    radius_out = np.full(n, np.nan)
-    mid = m // 2
+    position = np.empty(n)
+    radius_out = np.empty(n)
+    sp, cp, ci = ring_trig(pa, inc)
     for k in range(n):
-        # start from the ring the middle ring's geometry suggests, then walk to the sign change of f
-        start = _offset(x[k], y[k], jac, 0.0, xc[mid], yc[mid], pa[mid], inc[mid])
-        j = min(max(np.searchsorted(radii, start), 0), m - 1)
-        fj = _offset(x[k], y[k], jac, radii[j], xc[j], yc[j], pa[j], inc[j])
-        if fj >= 0.0:
-            while j + 1 < m:
-                f_next = _offset(x[k], y[k], jac, radii[j + 1], xc[j + 1], yc[j + 1], pa[j + 1], inc[j + 1])
-                if f_next < 0.0:
-                    w = fj / (fj - f_next)
-                    position[k] = j + w
-                    radius_out[k] = radii[j] + w * (radii[j + 1] - radii[j])
-                    break
-                j += 1
-                fj = f_next
-            if position[k] < 0.0 and fj + radii[m - 1] <= r_outer:
-                position[k] = m - 1.0
-                radius_out[k] = fj + radii[m - 1]
-        else:
-            while j > 0:
-                f_prev = _offset(x[k], y[k], jac, radii[j - 1], xc[j - 1], yc[j - 1], pa[j - 1], inc[j - 1])
-                if f_prev >= 0.0:
-                    w = f_prev / (f_prev - fj)
-                    position[k] = j - 1 + w
-                    radius_out[k] = radii[j - 1] + w * (radii[j] - radii[j - 1])
-                    break
-                j -= 1
-                fj = f_prev
-            if position[k] < 0.0:
-                position[k] = 0.0
-                radius_out[k] = fj + radii[0]
+        position[k], radius_out[k] = place_pixel(x[k], y[k], jac, radii, xc, yc, sp, cp, ci, r_outer)
     return position, radius_out
 
 

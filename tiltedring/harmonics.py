@@ -18,15 +18,31 @@ against zero with their covariance (dof 5).
 
 from __future__ import annotations
 
-import numpy as np
-from scipy import stats
+import math
 
-from .geometry import disc_coordinates
+import numpy as np
+from .candidates import gather_rings
+from .leastsq import weighted_least_squares
 
 __all__ = ["HARMONIC_NAMES", "NON_CIRCULAR", "ring_harmonics"]
 
 HARMONIC_NAMES = ("c0", "c1", "s1", "c2", "s2", "c3", "s3")
 NON_CIRCULAR = ("s1", "c2", "s2", "c3", "s3")
+
+
+def chi2_survival(x: float, dof: int) -> float:
+    """P(chi^2_dof > x) for odd ``dof`` (Abramowitz & Stegun 1964, 26.4.4)::
+
+        Q = erfc(sqrt(x/2)) + sqrt(2/pi) exp(-x/2) sum_{j=1}^{(dof-1)/2} x^(j-1/2) / (1 3 5 ... (2j-1))
+    """
+    if dof % 2 != 1:
+        raise ValueError("chi2_survival needs an odd number of degrees of freedom")
+    x = max(float(x), 0.0)
+    total, term = 0.0, math.sqrt(x)
+    for j in range(1, (dof - 1) // 2 + 1):
+        total += term
+        term *= x / (2 * j + 1)
+    return min(1.0, math.erfc(math.sqrt(x / 2)) + math.sqrt(2 / math.pi) * math.exp(-x / 2) * total)
 
 
 def _basis(cos_t, sin_t):
@@ -37,16 +53,19 @@ def _basis(cos_t, sin_t):
     return np.column_stack(cols)
 
 
-def ring_harmonics(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: float = 1.0) -> dict:
+def ring_harmonics(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: float = 1.0,
+                   ring_pixels: list | None = None) -> dict:
     """Decompose every ring; returns arrays (one value per ring) keyed by coefficient name.
 
     ``pixels`` = (x, y, v, sigma); ``rings`` holds per-ring ``x_center``, ``y_center``,
     ``position_angle``, ``inclination``. Errors are scaled by sqrt(reduced chi-square x pixels per
     beam). Keys: each name in :data:`HARMONIC_NAMES` and ``<name>_err``, ``noncircular_amplitude``
     (km/s on the sky, debiased), ``noncircular_in_plane``, ``noncircular_fraction``,
-    ``harmonic_p_value``, ``harmonic_pixels``.
+    ``harmonic_p_value``, ``harmonic_pixels``. ``ring_pixels``: the rings' pixels from
+    :func:`.candidates.gather_rings`, when already at hand.
     """
-    x, y, v, sigma = pixels
+    if ring_pixels is None:
+        ring_pixels = gather_rings(pixels, sky_jacobian, rings, inner, outer)
     n_rings = len(inner)
     out = {name: np.full(n_rings, np.nan) for name in HARMONIC_NAMES}
     out.update({f"{name}_err": np.full(n_rings, np.nan) for name in HARMONIC_NAMES})
@@ -55,18 +74,13 @@ def ring_harmonics(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_b
     out["harmonic_pixels"] = np.zeros(n_rings, int)
     nc = [HARMONIC_NAMES.index(n) for n in NON_CIRCULAR]
     for k in range(n_rings):
-        radius, cos_t, sin_t = disc_coordinates(x, y, rings["x_center"][k], rings["y_center"][k], sky_jacobian,
-                                                rings["position_angle"][k], rings["inclination"][k])
-        sel = (radius >= inner[k]) & (radius < outer[k])
-        n = int(sel.sum())
+        cos_t, sin_t, v, sigma = ring_pixels[k]
+        n = len(v)
         out["harmonic_pixels"][k] = n
         if n < 3 * len(HARMONIC_NAMES):
             continue
-        w = 1.0 / sigma[sel]
-        a = _basis(cos_t[sel], sin_t[sel]) * w[:, None]
-        coef, *_ = np.linalg.lstsq(a, v[sel] * w, rcond=None)
-        chi2_red = float(np.sum((v[sel] * w - a @ coef) ** 2) / (n - len(coef)))
-        cov = np.linalg.pinv(a.T @ a) * chi2_red * pixels_per_beam
+        coef, cov, chi2 = weighted_least_squares(_basis(cos_t, sin_t), v, 1.0 / sigma)
+        cov = cov * chi2 / (n - len(coef)) * pixels_per_beam
         err = np.sqrt(np.clip(np.diag(cov), 0, None))
         for j, name in enumerate(HARMONIC_NAMES):
             out[name][k], out[f"{name}_err"][k] = coef[j], err[j]
@@ -79,7 +93,7 @@ def ring_harmonics(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_b
         out["noncircular_fraction"][k] = amplitude / abs(coef[1]) if coef[1] != 0 else np.nan
         try:
             chi2_nc = float(b @ np.linalg.solve(c, b))
-            out["harmonic_p_value"][k] = float(stats.chi2.sf(chi2_nc, len(nc)))
+            out["harmonic_p_value"][k] = chi2_survival(chi2_nc, len(nc))
         except np.linalg.LinAlgError:
             pass
     return out

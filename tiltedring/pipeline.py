@@ -26,14 +26,14 @@ import warnings
 from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
-
-from . import flags as ringflags
-from .engine import RingFitOptions, fit_ring
-from .errors import FitCaution, InputError
-from .first_guess import first_guess, guess_rotation
-from .geometry import disc_coordinates, wrap_angle
 from astropy import units as u
 
+from . import flags as ringflags
+from .candidates import SortedPixels
+from .engine import RingFitOptions, fit_rings
+from .errors import FitCaution, InputError
+from .first_guess import first_guess, guess_rotation
+from .geometry import centre_angle, disc_coordinates, wrap_angle
 from .kinematics import PARAMETERS, UNITS, model_field
 from .maps import VelocityMap
 from .resampling import resample
@@ -136,11 +136,6 @@ def weighted_median(values, errors):
     return float(v[np.searchsorted(cum, 0.5 * cum[-1])])
 
 
-def _centre_angle(values, reference):
-    """Angles (deg) re-expressed within 180 deg of ``reference`` so they can be averaged."""
-    return reference + np.mod(np.asarray(values, float) - reference + 180.0, 360.0) - 180.0
-
-
 # --------------------------------------------------------------------------- set-up
 
 
@@ -199,44 +194,30 @@ def _layout(vmap: VelocityMap, options: FitOptions, guess: dict, x, y) -> RingLa
     return RingLayout.uniform(width, r_max, first)
 
 
-def _candidates(vmap, pixels, layout, starts, free, wander: float):
-    """Per ring, the pixels that can fall in it while its geometry moves during the fit.
+def _run_stage(vmap, pixels, layout, starts, free, ring_options, wander: float = 0.03):
+    """Fit every ring from its candidate slice (:mod:`.candidates`), starting at ``wander``.
 
-    Pixels are sorted once by their disc radius under the median starting geometry; a ring takes
-    those within a margin of its edges that grows with how far its own starting geometry is from
-    the median (and with what the fit may still change). Only a speed-up: the ring fit still selects
-    its pixels exactly from these.
+    ``pixels``: the (x, y, v, sigma) arrays or a :class:`.candidates.SortedPixels` made for
+    these ``starts``. A ring whose pixels reach the edge of its slice is refitted from a slice three
+    times wider, until none does (or the slice spans the whole disc), so narrow slices cost
+    nothing in accuracy.
     """
-    x, y = pixels[0], pixels[1]
-    ref = np.nanmedian(starts, axis=0)
-    ref[_INDEX["position_angle"]] = _centre_angle(starts[:, _INDEX["position_angle"]],
-                                                  starts[0, _INDEX["position_angle"]]).mean()
-    radius, _, _ = disc_coordinates(x, y, ref[0], ref[1], vmap.sky_jacobian, ref[_INDEX["position_angle"]],
-                                    ref[_INDEX["inclination"]])
-    order = np.argsort(radius)
-    sorted_r = radius[order]
-    geometry_free = bool(free[[_INDEX["position_angle"], _INDEX["inclination"], 0, 1]].any())
-    cos_ref = np.cos(np.radians(ref[_INDEX["inclination"]]))
-    out = []
-    for k in range(len(layout)):
-        d_pa = np.radians(abs(_centre_angle(starts[k, _INDEX["position_angle"]], ref[_INDEX["position_angle"]])
-                              - ref[_INDEX["position_angle"]]))
-        cos_k = np.cos(np.radians(starts[k, _INDEX["inclination"]]))
-        stretch = max(cos_ref, cos_k) / max(min(cos_ref, cos_k), 1e-3)
-        shift = np.hypot(*(vmap.sky_jacobian @ (starts[k, :2] - ref[:2])))
-        grow = 2.0 * d_pa + (stretch - 1.0) + (wander if geometry_free else 0.02)
-        lo = layout.inner[k] / (1 + grow) / stretch - shift - layout.widths[k]
-        hi = layout.outer[k] * (1 + grow) * stretch + shift + layout.widths[k]
-        out.append(order[np.searchsorted(sorted_r, lo):np.searchsorted(sorted_r, hi)])
-    return out
-
-
-def _run_stage(vmap, pixels, layout, starts, free, ring_options, wander: float = 0.1):
-    """Fit every ring; ``wander``: how far (as a fraction of radius) the geometry may still move."""
-    x, y, v, sigma = pixels
-    candidates = _candidates(vmap, pixels, layout, starts, free, wander)
-    return [fit_ring(x[c], y[c], v[c], sigma[c], starts[k], free, vmap.sky_jacobian, layout.inner[k],
-                     layout.outer[k], ring_options, vmap.pixels_per_beam) for k, c in enumerate(candidates)]
+    if not isinstance(pixels, SortedPixels):
+        pixels = SortedPixels(pixels, vmap.sky_jacobian, starts, layout.inner, layout.outer)
+    x, y, v, sigma = pixels.pixels
+    geometry_free = bool(free[[0, 1, _INDEX["position_angle"], _INDEX["inclination"]]].any())
+    wander = wander if geometry_free else 0.02
+    todo = np.arange(len(layout))
+    solutions = [None] * len(layout)
+    while len(todo):
+        fitted = fit_rings(x, y, v, sigma, pixels.bounds(wander)[todo], starts[todo], free, vmap.sky_jacobian,
+                           layout.inner[todo], layout.outer[todo], ring_options, vmap.pixels_per_beam,
+                           order_radius=pixels.radius, margin=pixels.margin)
+        for k, sol in zip(todo, fitted):
+            solutions[k] = sol
+        wander *= 3.0
+        todo = np.array([k for k, sol in zip(todo, fitted) if sol.truncated and wander < 3.0], int)
+    return solutions
 
 
 def _ring_flags(sol, options, vmap, min_pixels, radius) -> set:
@@ -255,45 +236,33 @@ def _ring_flags(sol, options, vmap, min_pixels, radius) -> set:
 
 
 def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=()):
-    """Centre and systemic velocity from one fit to all pixels at once, other ring values held.
+    """Centre and systemic velocity from one fit to all pixels at once, the rotation curve held.
 
-    Minimises sum |cos theta| (v - model)^2 / sigma^2 over (x_center, y_center, v_systemic) with
-    the full model field of ``rings`` (:func:`.kinematics.line_of_sight` after
-    :func:`.geometry.assign_to_rings`), so every ring constrains the centre coherently instead of
-    each ring alone. Large maps are thinned to about 100,000 pixels (every k-th). Returns (values,
-    errors) dicts; errors scaled by sqrt(reduced chi-square x pixels per beam x k).
+    ``rings``: per-ring ``radius`` and ``v_rotation`` and one ``position_angle`` and ``inclination``
+    for the whole disc. Minimises sum |cos theta| (v - v_sys - sin i v_rot(R) cos theta)^2 / sigma^2
+    over (x_center, y_center, v_systemic), v_rot(R) interpolated between the rings (held at the end
+    values beyond them, nothing beyond ``r_outer``), so every ring constrains the centre coherently
+    instead of each ring alone. Large maps are thinned to about 40,000 pixels (every k-th). Returns
+    (values, errors) dicts; errors scaled by sqrt(reduced chi-square x pixels per beam x k).
     """
     from scipy.optimize import least_squares
 
-    from .geometry import assign_to_rings
-    from .kinematics import line_of_sight
-
     x, y, v, sigma = pixels
-    stride = max(1, len(x) // 100_000)  # three parameters: 100,000 pixels are plenty (regular, so repeatable)
+    stride = max(1, len(x) // 40_000)  # three parameters: 40,000 pixels are plenty (regular, so repeatable)
     x, y, v, sigma = x[::stride], y[::stride], v[::stride], sigma[::stride]
     names = [n for n in ("x_center", "y_center", "v_systemic") if n not in fixed]
     if not names:
         return dict(start), {}
     order = np.argsort(rings["radius"])
-    table = {k: np.asarray(val, float)[order] for k, val in rings.items()}
-    table["position_angle"] = np.degrees(np.unwrap(np.radians(table["position_angle"])))
-    index = np.arange(len(order), dtype=float)
+    radii, v_rot = np.asarray(rings["radius"], float)[order], np.asarray(rings["v_rotation"], float)[order]
+    pa, inc = float(np.median(rings["position_angle"])), float(np.median(rings["inclination"]))
 
     def residual(q):
         cen = dict(start)
         cen.update(zip(names, q))
-        n = len(order)
-        pos, _ = assign_to_rings(x, y, vmap.sky_jacobian, table["radius"], np.full(n, cen["x_center"]),
-                                 np.full(n, cen["y_center"]), table["position_angle"], table["inclination"], r_outer)
-        out = np.zeros(len(x))
-        inside = pos >= 0
-        per = {k: np.interp(pos[inside], index, table[k]) for k in ("position_angle", "inclination", "v_rotation")}
-        model = line_of_sight(x[inside], y[inside], vmap.sky_jacobian, x_center=cen["x_center"],
-                              y_center=cen["y_center"], v_systemic=cen["v_systemic"], **per)
-        _, cos_t, _ = disc_coordinates(x[inside], y[inside], cen["x_center"], cen["y_center"], vmap.sky_jacobian,
-                                       float(np.median(per["position_angle"])), float(np.median(per["inclination"])))
-        out[inside] = np.sqrt(np.abs(cos_t)) * (v[inside] - model) / sigma[inside]
-        return out
+        radius, cos_t, _ = disc_coordinates(x, y, cen["x_center"], cen["y_center"], vmap.sky_jacobian, pa, inc)
+        model = cen["v_systemic"] + np.sin(np.radians(inc)) * np.interp(radius, radii, v_rot) * cos_t
+        return np.where(radius <= r_outer, np.sqrt(np.abs(cos_t)) * (v - model) / sigma, 0.0)
 
     q0 = np.array([start[n] for n in names])
     sol = least_squares(residual, q0, x_scale=np.array([0.5 if n != "v_systemic" else 2.0 for n in names]),
@@ -307,6 +276,22 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
     except np.linalg.LinAlgError:
         errors = {n: np.nan for n in names}
     return values, errors
+
+
+class _Laps:
+    """Wall time of consecutive steps: ``lap(name)`` adds the time since the previous lap to ``laps[name]``."""
+
+    def __init__(self):
+        import time
+
+        self._now = time.perf_counter
+        self._last = self._now()
+        self.laps = {}
+
+    def lap(self, name: str):
+        now = self._now()
+        self.laps[name] = self.laps.get(name, 0.0) + now - self._last
+        self._last = now
 
 
 def _usable(solutions, ring_flags):
@@ -407,7 +392,9 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     if vmap.beam is None:
         cautions.append("no beam known: pixels treated as independent, so errors may be too small; give --beam")
 
+    clock = _Laps()
     guess = first_guess(vmap, initial, options.fixed, seed=options.seed)
+    clock.lap("first guess")
     layout = _layout(vmap, options, guess, x, y)
     min_pixels = int(np.ceil(options.min_beams_per_ring * vmap.pixels_per_beam))
 
@@ -433,7 +420,8 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
 
     # stage "free"
     opts = options.ring_options()
-    sols = _run_stage(vmap, pixels, layout, starts_from(guess_geom, vrot0), base_free, opts, wander=0.35)
+    sols = _run_stage(vmap, pixels, layout, starts_from(guess_geom, vrot0), base_free, opts)
+    clock.lap("stage free")
     flags_a = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols, layout.radii)]
     stages["free"] = (sols, flags_a)
     use = _usable(sols, flags_a)
@@ -449,7 +437,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
             centre[name] = weighted_median(par[use, k], err[use, k])
     # position angle average must respect the 0/360 wrap
     ref = guess_geom["position_angle"]
-    par[:, _INDEX["position_angle"]] = _centre_angle(par[:, _INDEX["position_angle"]], ref)
+    par[:, _INDEX["position_angle"]] = centre_angle(par[:, _INDEX["position_angle"]], ref)
     held = {"radius": layout.radii[use]}
     for name in ("position_angle", "inclination", "v_rotation"):
         k = _INDEX[name]
@@ -457,6 +445,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         held[name] = par[use, k] if name == "v_rotation" else np.full(use.sum(), typical)
     centre, centre_err = refine_centre(vmap, pixels, held, layout.edges[-1], centre, fixed) if use.sum() >= 2 else (
         centre, {})
+    clock.lap("centre")
 
     # stage "centred"
     free_b = base_free.copy()
@@ -468,12 +457,13 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
             typical = weighted_median(par[use, k], err[use, k])
             starts_b[:, k] = np.where(use & (np.abs(par[:, k] - typical) < 30), par[:, k], typical)
     sols_b = _run_stage(vmap, pixels, layout, starts_b, free_b, opts)
+    clock.lap("stage centred")
     flags_b = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_b, layout.radii)]
     stages["centred"] = (sols_b, flags_b)
     use_b = _usable(sols_b, flags_b)
     par_b = np.array([s.params for s in sols_b])
     err_b = np.array([s.errors for s in sols_b])
-    par_b[:, _INDEX["position_angle"]] = _centre_angle(par_b[:, _INDEX["position_angle"]], ref)
+    par_b[:, _INDEX["position_angle"]] = centre_angle(par_b[:, _INDEX["position_angle"]], ref)
 
     # stage "final": regularised geometry, then v_rotation (and v_radial) alone
     kp, ki = _INDEX["position_angle"], _INDEX["inclination"]
@@ -493,6 +483,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
             excluded = [float(r) for r in layout.radii[use_b & non_circular]]
     profile = geometry_profile(layout.radii, par_b[:, kp], err_b[:, kp], par_b[:, ki], err_b[:, ki], use_geometry,
                                vmap.beam.fwhm if vmap.beam is not None else None)
+    clock.lap("warp test")
     profile.summary["rings_excluded_as_non_circular"] = excluded
     geometry = {"position_angle": (profile.position_angle, profile.position_angle_err),
                 "inclination": (profile.inclination, profile.inclination_err)}
@@ -509,20 +500,27 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     starts_c[:, _INDEX["inclination"]] = geometry["inclination"][0]
     if options.fit_radial:
         starts_c[:, _INDEX["v_radial"]] = np.where(use_b, par_b[:, _INDEX["v_radial"]], 0.0)
-    sols_c = _run_stage(vmap, pixels, layout, starts_c, free_c, opts)
+    sorted_c = SortedPixels(pixels, vmap.sky_jacobian, starts_c, layout.inner, layout.outer)
+    sols_c = _run_stage(vmap, sorted_c, layout, starts_c, free_c, opts)
     side_sols = {}
     if options.side == "both" and free_c.any():
         for side in ("approaching", "receding"):
-            side_sols[side] = _run_stage(vmap, pixels, layout, starts_c, free_c, options.ring_options(side))
+            side_sols[side] = _run_stage(vmap, sorted_c, layout, starts_c, free_c, options.ring_options(side))
     flags_c = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_c, layout.radii)]
+    clock.lap("stage final")
     stages["final"] = (sols_c, flags_c)
-    beam = None
-    if options.beam_correction and vmap.beam is not None and free_c[_INDEX["v_rotation"]]:
+    beam = response = None
+    correct_beam = options.beam_correction and vmap.beam is not None and free_c[_INDEX["v_rotation"]]
+    if correct_beam or (options.resamples > 0 and free_c[_INDEX["v_rotation"]]):
         constant = [] if warp_summary.get("detected") else [n for n in ("position_angle", "inclination")
                                                              if n not in fixed]
-        beam = _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
-                                 profile.used, constant, ref)
-        for name in constant:
+        response = _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, err_b, profile.used,
+                                 constant, ref)
+        clock.lap("fit response")
+    if correct_beam:
+        beam = _correct_for_beam(vmap, layout, response, starts_c)
+        clock.lap("beam smearing")
+        for name in beam["summary"]["geometry_corrected"]:
             if name in beam["corrected"]:
                 geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
 
@@ -559,23 +557,22 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     rings["radius"] = final["radius"].to_value(u.arcsec)[finite]
     model = beam["model"] if beam is not None else model_field(vmap.shape, vmap.sky_jacobian, rings,
                                                                r_outer=layout.edges[-1])
+    clock.lap("model map")
     residual = vmap.velocity - model
     summaries = {"warp": warp_summary}
     if beam is not None:
         summaries["beam_smearing"] = beam["summary"]
     if options.resamples > 0 and free_c[_INDEX["v_rotation"]]:
-        constant = [] if warp_summary.get("detected") else [n for n in ("position_angle", "inclination")
-                                                             if n not in fixed]
-        measure, _ = _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
-                                    profile.used, constant, ref)
-        scatter = resample(model, residual, measure, options.resamples, seed=options.seed, quiet=options.quiet)
+        scatter = resample(model, residual, response.measure, options.resamples, seed=options.seed,
+                           quiet=options.quiet)
+        clock.lap("resampling")
         final["v_rotation_err_resampled"] = scatter["v_rotation"] * ratio * kms
-        for name in constant:
+        for name in response.names:
             final[f"{name}_err"] = np.fmax(final[f"{name}_err"].to_value(u.deg), scatter[name]) * u.deg
         summaries["resampling"] = {
             "realisations": options.resamples, "seed": options.seed,
             "method": "noise fields with the power spectrum and rms of the residual map, added to the model and "
-                      "refitted (stage centred geometry and stage final speeds)"}
+                      "refitted to first order about the data's fit (stage centred geometry and stage final speeds)"}
     _finish_velocity_errors(final, side_sols, options)
     from .result import add_sky_centre
 
@@ -588,10 +585,12 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
                           for f, r in zip(final["flags"], layout.radii)]
     if options.diagnostics:
         summaries.update(_diagnose(final, vmap, pixels, layout, options, use_b))
+        clock.lap("diagnostics")
     final = final[[c for c in final.colnames if c != "flags"] + ["flags"]]
     cautions += _cautions(final, options, vmap, summaries)
+    clock.lap("tables")
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=guess, stages=tables, rings=final,
-                     model=model, residual=residual, cautions=cautions, diagnostics=summaries)
+                     model=model, residual=residual, cautions=cautions, diagnostics=summaries, timings=clock.laps)
 
 
 def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
@@ -618,75 +617,51 @@ def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
     return summary
 
 
-def _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
-                   reference_pa):
-    """The fit of a model map done as on the data: returns (measure(map) -> dict, what the data gave).
+def _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, err_b, used, constant, reference_pa):
+    """:class:`.response.FitResponse` of stage ``final`` speeds and, for each name in ``constant``, the
+    error-weighted mean of stage ``centred`` over the rings ``used`` (weights from the data's errors)."""
+    from .response import FitResponse
 
-    Measured: stage ``final`` speeds and, for each name in ``constant``, the error-weighted mean of
-    stage ``centred`` over the rings ``used`` (weights from the data's errors, so draws are comparable).
-    """
-    x, y, _, sigma = pixels
-    ix, iy = x.astype(int), y.astype(int)
-    observed = {"v_rotation": np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols_c])}
     weights = {}
     for name in constant:
         k = _INDEX[name]
         w = np.where(used & np.isfinite(err_b[:, k]) & (err_b[:, k] > 0), 1.0 / np.maximum(err_b[:, k], 1e-12) ** 2, 0)
         if w.sum() > 0:
             weights[name] = w / w.sum()
-            observed[name] = float(starts_c[0, k])
-
-    def measure(model_map):
-        values = model_map[iy, ix]
-        good = np.isfinite(values)
-        px = (x[good], y[good], values[good], sigma[good])
-        starts = starts_c.copy()
-        out = {}
-        if weights:  # a model of the data's own geometry: it moves little, so a narrow candidate band will do
-            sols = _run_stage(vmap, px, layout, starts_b, free_b, opts, wander=0.04)
-            for name, w in weights.items():
-                k = _INDEX[name]
-                vals = np.array([s.params[k] for s in sols])
-                vals = _centre_angle(vals, reference_pa) if name == "position_angle" else vals
-                out[name] = float(np.nansum(w * vals))
-                starts[:, k] = out[name]
-        sols = _run_stage(vmap, px, layout, starts, free_c, opts)
-        out["v_rotation"] = np.array([s.params[_INDEX["v_rotation"]] if s.converged else np.nan for s in sols])
-        return out
-
-    return measure, observed
+    par_b = np.array([s.params for s in sols_b])
+    ok_b = np.any([w > 0 for w in weights.values()], axis=0) if weights else np.zeros(len(layout), bool)
+    par_c = np.array([s.params for s in sols_c])
+    ok_c = np.array([s.converged for s in sols_c])
+    return FitResponse(vmap, pixels, layout, opts, par_b, ok_b, free_b, weights, par_c, ok_c, free_c, reference_pa)
 
 
-def _correct_for_beam(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b, used, constant,
-                      reference_pa):
+def _correct_for_beam(vmap, layout, response, starts_c):
     """Beam-smearing correction of the final curve (and of a constant geometry) by forward modelling.
 
-    What the data gave (:func:`_stage_measure`) is reproduced by fitting the smeared model of a trial
-    disc the same way, and the trial is corrected until they agree
-    (:func:`.smearing.correct_beam_smearing`).
+    What the data gave is reproduced by the fit (``response``) of the smeared model of a trial disc,
+    and the trial is corrected until they agree (:func:`.smearing.correct_beam_smearing`).
     """
     from .smearing import BeamKernel, correct_beam_smearing
 
-    measure, observed = _stage_measure(vmap, pixels, layout, opts, sols_c, starts_b, free_b, starts_c, free_c, err_b,
-                                       used, constant, reference_pa)
-    constant = [n for n in constant if n in observed]
+    observed = response.observed()
+    constant = [n for n in observed if n != "v_rotation"]
     rings = {name: starts_c[:, k] for name, k in _INDEX.items()}
     rings["radius"] = layout.radii
     rings["v_rotation"] = observed["v_rotation"]
     kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
-    corrected, model, iterations, converged = correct_beam_smearing(vmap, rings, layout.edges[-1], observed, measure,
-                                                                    kernel=kernel)
+    corrected, model, iterations, converged = correct_beam_smearing(vmap, rings, layout.edges[-1], observed,
+                                                                    response.measure, kernel=kernel)
     if "position_angle" in corrected:
         corrected["position_angle"] %= 360.0
     summary = {
-        "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I, iterated until the smeared "
-                                     "model refitted the same way reproduces the data's fit",
+        "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I, iterated until the fit of the "
+                                     "smeared model (to first order about the data's fit) reproduces the data's fit",
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
         "intensity": "uniform over the modelled disc (no intensity map given)" if vmap.intensity is None
         else "the intensity map",
         "iterations": iterations, "converged": converged,
         "geometry_corrected": constant,
-        "geometry_change": {n: float(corrected[n] - observed[n]) for n in constant},
+        "geometry_change": {n: float(centre_angle(corrected[n], observed[n]) - observed[n]) for n in constant},
     }
     return {"corrected": corrected, "model": model, "summary": summary}
 

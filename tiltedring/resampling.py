@@ -25,12 +25,14 @@ def residual_like_noise(residual, n: int, seed: int = 0):
     if ok.sum() < 10:
         raise ValueError("too few finite residual pixels to estimate the noise spectrum")
     filled = np.where(ok, residual - np.nanmean(residual), 0.0)
-    amplitude = np.abs(fft.rfft2(filled)) / np.sqrt(ok.mean())
+    amplitude = (np.abs(fft.rfft2(filled)) / np.sqrt(ok.mean())).astype(np.float32)  # noise: single precision will do
     rms = float(np.sqrt(np.mean(filled[ok] ** 2)))
     rng = np.random.default_rng(seed)
     for _ in range(n):
-        phases = fft.rfft2(rng.standard_normal(residual.shape))
-        field = fft.irfft2(phases * amplitude, s=residual.shape)
+        # the transform of white noise, drawn directly: independent complex normals (irfft2 keeps the
+        # Hermitian part, and the rms is set below)
+        phases = rng.standard_normal(amplitude.shape, np.float32) + 1j * rng.standard_normal(amplitude.shape, np.float32)
+        field = fft.irfft2(phases * amplitude, s=residual.shape, workers=-1)
         field *= rms / max(float(np.std(field[ok])), 1e-30)
         yield field
 

@@ -100,6 +100,7 @@ class FitResult:
     cautions: list = field(default_factory=list)
     diagnostics: dict = field(default_factory=dict)
     inputs: dict = field(default_factory=dict)
+    timings: dict = field(default_factory=dict)  # wall seconds per step of the fit (not written to files)
 
     # ------------------------------------------------------------------ summaries
     def statistics(self) -> dict:

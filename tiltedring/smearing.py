@@ -13,14 +13,17 @@ The correction is found by iterating on the curve itself, which needs no inversi
 (ill-conditioned) smearing operator and so does not amplify noise. With v_obs the ring fit of the
 data and T the operator "draw the disc with curve v, smear it, fit it with the same rings":
 
-    v_(n+1) = v_n + (v_obs - T(v_n)),     v_0 = v_obs
+    v_(n+1) = v_n + g_n (v_obs - T(v_n)),     v_0 = v_obs
 
-until the largest change is below 0.5 km/s; at convergence T(v) = v_obs, i.e. the smeared model
-of the corrected curve reproduces what the data gave. Like the van Cittert iteration, it recovers
-the well-resolved part of the curve first; stopping at a small change acts as regularisation,
-so unresolved ring-to-ring wiggles are not amplified. Each step costs two FFT convolutions (the plan and
-beam transfer function are reused) and one pass of ring fits with the geometry held, so no
-convolution is repeated per parameter.
+until the largest remaining difference is below 0.5 km/s; at convergence T(v) = v_obs, i.e. the
+smeared model of the corrected curve reproduces what the data gave. With g_n = 1 this is the van
+Cittert iteration, which converges slowly where smearing is strong (T changes little with v); the
+gain g_n, per ring, is the secant estimate of 1 / (dT/dv) from the last two steps, clipped to
+[1, 3] so that poorly resolved rings are not amplified more than three-fold per step. Stopping
+at a small difference acts as regularisation: unresolved ring-to-ring wiggles are not amplified.
+Each step costs one smeared model (two FFT convolutions with a reused beam transfer function) and
+one evaluation of the fit's response (:mod:`.response`), so no convolution is repeated per
+parameter.
 """
 
 from __future__ import annotations
@@ -59,17 +62,25 @@ class BeamKernel:
         quad = c_pix[0, 0] * kx**2 + 2 * c_pix[0, 1] * kx * ky + c_pix[1, 1] * ky**2
         self.transfer = np.exp(-2 * np.pi**2 * quad)
 
+        self._last_weight = None
+
     def __call__(self, image):
         ny, nx = self.shape
         spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, workers=-1)
         return fft.irfft2(spectrum * self.transfer, s=self.padded, workers=-1)[:ny, :nx]
+
+    def normalisation(self, weight):
+        """G * weight, reused while the weight map stays the same (the disc's footprint rarely changes)."""
+        if self._last_weight is None or not np.array_equal(self._last_weight[0], weight):
+            self._last_weight = (weight.copy(), self(weight))
+        return self._last_weight[1]
 
 
 def smear(kernel: BeamKernel, field, intensity, v_systemic):
     """v_sys + G*(I (v - v_sys)) / (G*I) on the modelled pixels (NaN elsewhere)."""
     inside = np.isfinite(field)
     weight = np.where(inside, intensity, 0.0)
-    norm = kernel(weight)
+    norm = kernel.normalisation(weight)
     smeared = kernel(weight * np.where(inside, field - v_systemic, 0.0))
     ok = inside & (norm > 1e-6 * max(float(norm.max()), 1e-30))
     out = np.full(field.shape, np.nan)
@@ -78,7 +89,7 @@ def smear(kernel: BeamKernel, field, intensity, v_systemic):
 
 
 def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed: dict, measure, max_iterations: int = 20,
-                          tolerance: float = 0.5, kernel: BeamKernel | None = None):
+                          tolerance: float = 0.5, kernel: BeamKernel | None = None, max_gain: float = 3.0):
     """Iterate to the disc whose smeared model the fit turns into what the data gave (module docstring).
 
     ``rings``: per-ring ``radius`` and :data:`.kinematics.PARAMETERS` columns (the starting model).
@@ -106,13 +117,21 @@ def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed: dict, mea
         return smear(kernel, model_field(vmap.shape, vmap.sky_jacobian, table, r_outer), intensity, v_sys)
 
     converged = False
+    previous = {}
     for iteration in range(1, max_iterations + 1):
         measured = measure(draw(trial))
         largest = 0.0
         for name in trial:
             got = np.asarray(measured[name], float)[ok] if np.ndim(measured[name]) else float(measured[name])
             step = np.where(np.isfinite(got), target[name] - got, 0.0)
-            trial[name] = trial[name] + step
+            gain = 1.0
+            if name in previous:  # secant estimate of 1 / (d measured / d trial), element by element
+                moved, answered = trial[name] - previous[name][0], got - previous[name][1]
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    gain = np.where(np.abs(answered) > 1e-3, moved / answered, 1.0)
+                gain = np.clip(np.nan_to_num(gain, nan=1.0), 1.0, max_gain)
+            previous[name] = (trial[name], got)
+            trial[name] = trial[name] + gain * step
             largest = max(largest, float(np.max(np.abs(step))))
         if largest < tolerance:
             converged = True

@@ -25,7 +25,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .geometry import wrap_angle
+from .geometry import centre_angle, wrap_angle
+from .leastsq import weighted_least_squares
 
 __all__ = ["WarpTest", "GeometryProfile", "geometry_profile", "tilt_and_line_of_nodes", "disc_normal"]
 
@@ -54,21 +55,14 @@ class GeometryProfile:
     used: np.ndarray | None = None
 
 
+def _weighted(a, v, e):
+    """Weighted least squares with errors ``e``: (coefficients, covariance, chi^2)."""
+    return weighted_least_squares(a, v, 1.0 / e)
+
+
 def _design(r, onset, degree, outward=True):
     d = np.clip(r - onset if outward else onset - r, 0.0, None)
     return np.column_stack([np.ones_like(r)] + [d**p for p in range(1, degree + 1)])
-
-
-def _wls(a, v, e):
-    """Weighted least squares: (coefficients, covariance, chi^2)."""
-    w = 1.0 / e
-    coef, *_ = np.linalg.lstsq(a * w[:, None], v * w, rcond=None)
-    cov = np.linalg.pinv((a * w[:, None]).T @ (a * w[:, None]))
-    return coef, cov, float(np.sum(((v - a @ coef) * w) ** 2))
-
-
-def _centre_on(values, reference):
-    return reference + np.mod(values - reference + 180.0, 360.0) - 180.0
 
 
 def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test: WarpTest = WarpTest()):
@@ -86,13 +80,13 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
         ok &= np.isfinite(values[name]) & np.isfinite(errors[name]) & (errors[name] > 0)
     if not ok.any():
         ok = np.isfinite(values["pa"]) & np.isfinite(values["inc"])
-    values["pa"] = _centre_on(values["pa"], float(np.median(values["pa"][ok])))
+    values["pa"] = centre_angle(values["pa"], float(np.median(values["pa"][ok])))
     tested = ok & (r >= test.inner_beams * beam_fwhm) if beam_fwhm else ok.copy()
     if tested.sum() < 4:
         tested = ok
     n = int(tested.sum())
     rt = r[tested]
-    flat = {name: _wls(np.ones((n, 1)), values[name][tested], errors[name][tested]) for name in free}
+    flat = {name: _weighted(np.ones((n, 1)), values[name][tested], errors[name][tested]) for name in free}
     chi2_flat = sum(f[2] for f in flat.values())
     constant = {name: float(np.median(values[name][ok])) for name in ("pa", "inc")}
     best = {}
@@ -105,7 +99,7 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
                     if n - k < 2:
                         continue
                     a = _design(rt, onset, degree, outward)
-                    fits = {name: _wls(a, values[name][tested], errors[name][tested]) for name in free}
+                    fits = {name: _weighted(a, values[name][tested], errors[name][tested]) for name in free}
                     chi2 = sum(f[2] for f in fits.values())
                     old = best.get(outward)
                     if old is None or chi2 + k * np.log(n) < old[0] + old[1] * np.log(n):

@@ -1,0 +1,99 @@
+"""Which pixels can belong to which ring: pixels sorted by disc radius, and each ring's slice of them.
+
+Sorting the valid pixels once by their disc radius under a reference geometry (the median of the
+rings') makes the candidates of every ring one contiguous slice: a ring whose own geometry differs
+from the reference by d_phi in position angle, a ratio ``stretch`` of cos(i) and a centre shift s
+(arcsec) covers reference radii within about
+
+    [r_in / ((1 + g) stretch) - s - w,  r_out (1 + g) stretch + s + w],   g = 2 d_phi + stretch - 1 + wander
+
+(w the ring width; ``wander`` the fraction of its radius by which a ring still being fitted may
+move). This is only a speed-up: the exact selection is made from the slice, and a ring whose
+selection reaches either end of its slice is looked at again through a wider one.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .geometry import centre_angle, disc_coordinates
+
+__all__ = ["SortedPixels", "ring_members", "gather_rings"]
+
+_X, _Y, _PA, _INC = 0, 1, 3, 4  # columns of a ring table in PARAMETERS order
+
+
+class SortedPixels:
+    """Pixels ``(x, y, v, sigma)`` sorted by disc radius under the median geometry of ``rings``.
+
+    ``rings``: (n_rings, >= 5) parameters in :data:`.kinematics.PARAMETERS` order (centre in
+    pixels, angles in deg). ``pixels``: the sorted arrays; ``order``: the sorting permutation;
+    ``radius``: the sorted radii; ``margin``: twice the largest step in that radius between
+    neighbouring pixels (a ring's pixels closer than this to a slice's end may continue beyond it).
+    """
+
+    def __init__(self, pixels, sky_jacobian, rings, inner, outer):
+        rings = np.asarray(rings, float)
+        self.sky_jacobian = np.asarray(sky_jacobian, float)
+        self.inner, self.outer = np.asarray(inner, float), np.asarray(outer, float)
+        ref = np.nanmedian(rings[:, :5], axis=0)
+        ref[_PA] = centre_angle(rings[:, _PA], rings[0, _PA]).mean()
+        radius, _, _ = disc_coordinates(pixels[0], pixels[1], ref[_X], ref[_Y], self.sky_jacobian, ref[_PA], ref[_INC])
+        self.order = np.argsort(radius)
+        self.radius = radius[self.order]
+        self.pixels = tuple(np.ascontiguousarray(np.asarray(a)[self.order]) for a in pixels)
+        d_pa = np.radians(np.abs(centre_angle(rings[:, _PA], ref[_PA]) - ref[_PA]))
+        cos_ref, cos_k = np.cos(np.radians(ref[_INC])), np.cos(np.radians(rings[:, _INC]))
+        self._stretch = np.maximum(cos_ref, cos_k) / np.maximum(np.minimum(cos_ref, cos_k), 1e-3)
+        self._shift = np.hypot(*(self.sky_jacobian @ (rings[:, [_X, _Y]] - ref[[_X, _Y]]).T))
+        self._grow = 2.0 * d_pa + (self._stretch - 1.0)
+        pixel = np.max(np.hypot(self.sky_jacobian[0], self.sky_jacobian[1]))  # arcsec per pixel step, the worse axis
+        self.margin = 2.0 * pixel / max(np.cos(np.radians(ref[_INC])), 1e-3)
+
+    def bounds(self, wander: float) -> np.ndarray:
+        """(n_rings, 2) slice bounds into the sorted pixels (module docstring)."""
+        grow = self._grow + wander
+        width = self.outer - self.inner
+        lo = self.inner / (1 + grow) / self._stretch - self._shift - width
+        hi = self.outer * (1 + grow) * self._stretch + self._shift + width
+        return np.column_stack([np.searchsorted(self.radius, lo), np.searchsorted(self.radius, hi)])
+
+
+def ring_members(sorted_pixels: SortedPixels, rings) -> list:
+    """Per ring, the sorted-pixel positions inside it at its own geometry, with cos and sin theta.
+
+    ``rings``: (n_rings, >= 5) parameters as for :class:`SortedPixels`. Returns a list of
+    (positions, cos_theta, sin_theta) arrays, one entry per ring.
+    """
+    rings = np.asarray(rings, float)
+    x, y = sorted_pixels.pixels[0], sorted_pixels.pixels[1]
+    total = len(x)
+    out = []
+    for k, (lo, hi) in enumerate(sorted_pixels.bounds(0.02)):
+        while True:
+            radius, cos_t, sin_t = disc_coordinates(x[lo:hi], y[lo:hi], rings[k, _X], rings[k, _Y],
+                                                    sorted_pixels.sky_jacobian, rings[k, _PA], rings[k, _INC])
+            inside = np.flatnonzero((radius >= sorted_pixels.inner[k]) & (radius < sorted_pixels.outer[k]))
+            r_ref = sorted_pixels.radius
+            at_edge = len(inside) and ((lo > 0 and r_ref[lo + inside[0]] - r_ref[lo] < sorted_pixels.margin)
+                                       or (hi < total and r_ref[hi - 1] - r_ref[lo + inside[-1]] < sorted_pixels.margin))
+            if not at_edge:
+                break
+            spread = hi - lo
+            lo, hi = max(lo - spread, 0), min(hi + spread, total)
+        out.append((lo + inside, cos_t[inside], sin_t[inside]))
+    return out
+
+
+def gather_rings(pixels, sky_jacobian, rings: dict, inner, outer) -> list:
+    """Per ring, (cos theta, sin theta, v, sigma) of its pixels at its own geometry.
+
+    ``pixels`` = (x, y, v, sigma); ``rings`` holds per-ring ``x_center``, ``y_center``,
+    ``position_angle`` and ``inclination``.
+    """
+    table = np.zeros((len(inner), 5))
+    for column, name in ((_X, "x_center"), (_Y, "y_center"), (_PA, "position_angle"), (_INC, "inclination")):
+        table[:, column] = np.asarray(rings[name], float)
+    ordered = SortedPixels(pixels, sky_jacobian, table, inner, outer)
+    v, sigma = ordered.pixels[2], ordered.pixels[3]
+    return [(cos_t, sin_t, v[at], sigma[at]) for at, cos_t, sin_t in ring_members(ordered, table)]
