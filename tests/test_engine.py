@@ -80,3 +80,17 @@ def test_bad_options_are_explained():
         RingFitOptions(weighting="sine")
     with pytest.raises(InputError, match="side"):
         RingFitOptions(side="left")
+
+
+def test_sign_of_v_rotation_is_kept_when_the_position_angle_is_held():
+    """A counter-rotating ring (v_rotation < 0 at the disc's position angle): with the position angle held the
+    negative speed is the measurement; with it free the same field is described by PA + 180 and v > 0."""
+    truth = np.array([60.0, 60.0, 0.0, 30.0, 50.0, -80.0, 0.0])
+    x, y, v = _ring_pixels(truth, 0, 0)
+    start = truth.copy()
+    start[5] = 50.0
+    held = fit_ring(x, y, v, np.ones_like(v), start, np.array([False] * 5 + [True, False]), JAC, 20.0, 30.0)
+    assert held.params[5] == pytest.approx(-80.0) and held.params[3] == pytest.approx(30.0)
+    free = fit_ring(x, y, v, np.ones_like(v), start, np.array([False] * 3 + [True, False, True, False]), JAC, 20.0,
+                    30.0)
+    assert free.params[5] == pytest.approx(80.0, abs=1e-4) and free.params[3] == pytest.approx(210.0, abs=1e-4)

@@ -118,7 +118,7 @@ def test_first_order_response_agrees_with_refitting(quiet):
     used = np.array([s.converged for s in sols_b])
     constant = ["position_angle", "inclination"]
     response = _fit_response(vm, pixels, layout, options, sols_b, free_b, sols_c, free_c, err_b, used, constant,
-                             float(starts_c[0, 3]))
+                             float(starts_c[0, 3]), {"position_angle": starts_c[0, 3], "inclination": starts_c[0, 4]})
     ny, nx = vm.shape
     yy, xx = np.mgrid[0:ny, 0:nx]
     ripple = 3.0 * np.sin(xx / 9.0) * np.cos(yy / 13.0) + 2.0 * (xx - nx / 2) / nx

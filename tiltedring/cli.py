@@ -37,7 +37,7 @@ Options given on the command line win over the run file.
 
 _INITIAL = ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination",
             "v_rotation")
-_INPUT_KEYS = ("error_map", "intensity_map", "dispersion_map", "beam", "pixel_scale", "velocity_unit")
+_INPUT_KEYS = ("error_map", "intensity_map", "dispersion_map", "beam", "pixel_scale", "velocity_unit", "bin")
 
 
 def _common() -> argparse.ArgumentParser:
@@ -66,6 +66,8 @@ def _fit_parser(sub):
     g.add_argument("--beam", help="beam MAJ[,MIN[,PA]] in arcsec and deg (default: BMAJ/BMIN/BPA)")
     g.add_argument("--pixel-scale", type=float, help="arcsec per pixel, for maps without celestial WCS")
     g.add_argument("--velocity-unit", help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
+    g.add_argument("--bin", type=int, help="average N x N pixel blocks before fitting (for maps too large for "
+                                           "memory, or far finer than the beam)")
     g = p.add_argument_group("rings")
     g.add_argument("--ring-width", help="ring width: 9arcsec, 4pix, 0.5beam or a bare number in arcsec "
                                         "(default one beam, or two pixels without a beam)")
@@ -392,13 +394,17 @@ def run_fit(args) -> int:
         vmap = read_velocity_map(args.map, error=inputs.get("error_map"), intensity=inputs.get("intensity_map"),
                                  dispersion=inputs.get("dispersion_map"), beam=inputs.get("beam"),
                                  pixel_scale=inputs.get("pixel_scale"), velocity_unit=inputs.get("velocity_unit"))
+        if inputs.get("bin"):
+            from .binning import bin_map
+
+            vmap = bin_map(vmap, inputs["bin"])
         result = fit_velocity_map(vmap, options)
         curve = result.curve(distance=args.distance, redshift=args.redshift, cosmology=args.cosmology)
     result.inputs = {"velocity_map": {"path": str(Path(args.map).resolve()), "sha256": file_checksum(args.map)}}
     for key in ("error_map", "intensity_map", "dispersion_map"):
         if inputs.get(key):
             result.inputs[key] = {"path": str(Path(inputs[key]).resolve()), "sha256": file_checksum(inputs[key])}
-    for key in ("beam", "pixel_scale", "velocity_unit"):
+    for key in ("beam", "pixel_scale", "velocity_unit", "bin"):
         if inputs.get(key) is not None:
             result.inputs[key] = inputs[key]
     result.inputs["curve"] = {"distance": args.distance, "redshift": args.redshift, "cosmology": args.cosmology}

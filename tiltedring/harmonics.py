@@ -46,11 +46,10 @@ def chi2_survival(x: float, dof: int) -> float:
 
 
 def _basis(cos_t, sin_t):
-    theta = np.arctan2(sin_t, cos_t)
-    cols = [np.ones_like(theta)]
-    for m in (1, 2, 3):
-        cols += [np.cos(m * theta), np.sin(m * theta)]
-    return np.column_stack(cols)
+    """Columns 1, cos m theta, sin m theta (m = 1..3) from cos and sin theta (multiple-angle formulae)."""
+    c2, s2 = cos_t * cos_t - sin_t * sin_t, 2.0 * sin_t * cos_t
+    c3, s3 = c2 * cos_t - s2 * sin_t, s2 * cos_t + c2 * sin_t
+    return np.column_stack([np.ones_like(cos_t), cos_t, sin_t, c2, s2, c3, s3])
 
 
 def ring_harmonics(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam: float = 1.0,

@@ -313,11 +313,17 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     rings (and ``fit_radial`` is off and v_radial not fixed), the fit is run again with v_radial
     free in every stage, and that run is adopted only when it lowers the disc-wide BIC by more than
     10 (:func:`compare_radial`). Either way the comparison is reported in ``diagnostics``.
+
+    A map whose fit would need more memory than is available is refused before fitting, with the
+    binning factor (:func:`.binning.bin_map`) that would fit.
     """
     if options is None:
         options = FitOptions(**option_values)
     elif option_values:
         raise TypeError("give either a FitOptions or keyword options, not both")
+    from .binning import check_memory
+
+    check_memory(vmap)
     result = _fit_once(vmap, options)
     radial_rings = sum("radial_flow" in f for f in result.rings["flags"])
     if options.diagnostics and not options.fit_radial and "v_radial" not in options.fixed and radial_rings >= 3:
@@ -515,7 +521,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         constant = [] if warp_summary.get("detected") else [n for n in ("position_angle", "inclination")
                                                              if n not in fixed]
         response = _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, err_b, profile.used,
-                                 constant, ref)
+                                 constant, ref, {name: starts_c[0, _INDEX[name]] for name in constant})
         clock.lap("fit response")
     if correct_beam:
         beam = _correct_for_beam(vmap, layout, response, starts_c)
@@ -617,7 +623,8 @@ def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
     return summary
 
 
-def _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, err_b, used, constant, reference_pa):
+def _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, err_b, used, constant, reference_pa,
+                  adopted):
     """:class:`.response.FitResponse` of stage ``final`` speeds and, for each name in ``constant``, the
     error-weighted mean of stage ``centred`` over the rings ``used`` (weights from the data's errors)."""
     from .response import FitResponse
@@ -632,7 +639,8 @@ def _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, er
     ok_b = np.any([w > 0 for w in weights.values()], axis=0) if weights else np.zeros(len(layout), bool)
     par_c = np.array([s.params for s in sols_c])
     ok_c = np.array([s.converged for s in sols_c])
-    return FitResponse(vmap, pixels, layout, opts, par_b, ok_b, free_b, weights, par_c, ok_c, free_c, reference_pa)
+    return FitResponse(vmap, pixels, layout, opts, par_b, ok_b, free_b, weights, par_c, ok_c, free_c, adopted,
+                       reference_pa)
 
 
 def _correct_for_beam(vmap, layout, response, starts_c):

@@ -31,14 +31,14 @@ _INDEX = {name: k for k, name in enumerate(PARAMETERS)}
 
 
 def _ring_designs(pixels, sky_jacobian, params, ok, inner, outer, options):
-    """Per usable ring: (pixel indices, sqrt-weights, d v_los / d p) at ``params`` as the ring fit selects."""
+    """Yield, ring by ring, (ring, pixel indices, sqrt-weights, d v_los / d p) at ``params`` as the ring fit
+    selects them (usable rings only; one ring's Jacobian in memory at a time)."""
     from .engine import SIDES, WEIGHTINGS
 
     ordered = SortedPixels(pixels, sky_jacobian, params, inner, outer)
     power = WEIGHTINGS[options.weighting]
     sin_wedge = np.sin(np.radians(options.exclusion_wedge))
     side = SIDES.index(options.side)
-    designs = {}
     for k, (at, cos_t, _) in enumerate(ring_members(ordered, params)):
         if not ok[k]:
             continue
@@ -47,8 +47,7 @@ def _ring_designs(pixels, sky_jacobian, params, ok, inner, outer, options):
         index = ordered.order[at[keep]]
         w_sqrt = np.abs(cos_t[keep]) ** (0.5 * power) / pixels[3][index]
         _, deriv = ring_model(pixels[0][index], pixels[1][index], params[k], sky_jacobian)
-        designs[k] = (index, w_sqrt, deriv)
-    return designs
+        yield k, index, w_sqrt, deriv
 
 
 def _influence(deriv, w_sqrt, columns):
@@ -63,11 +62,12 @@ class FitResponse:
     ``pixels``: (x, y, v, sigma) of the data; ``params_b``/``ok_b``: stage-centred solutions and
     which rings count; ``free_b``: its free parameters; ``weights``: per constant geometry name,
     ring weights (summing to 1) of the stage-centred values; ``params_c``/``ok_c``/``free_c``: the
-    stage-final solutions. ``reference_pa``: angles are averaged within 180 deg of it.
+    stage-final solutions, fitted at the ``adopted`` constant geometry (by name). ``reference_pa``:
+    angles are averaged within 180 deg of it.
     """
 
     def __init__(self, vmap, pixels, layout, options, params_b, ok_b, free_b, weights, params_c, ok_c, free_c,
-                 reference_pa):
+                 adopted, reference_pa):
         self.x, self.y, self.v = pixels[0], pixels[1], pixels[2]
         self.ix, self.iy = self.x.astype(int), self.y.astype(int)
         n_pix, n_rings = len(self.v), len(layout)
@@ -75,27 +75,26 @@ class FitResponse:
         self.names, self.weights = list(weights), weights
         self.base, self.geometry_influence = {}, {}
         if self.names:
-            designs_b = _ring_designs(pixels, jac, params_b, ok_b, layout.inner, layout.outer, options)
             free_idx = list(np.flatnonzero(free_b))
             for name in self.names:
                 k = _INDEX[name]
                 values = params_b[:, k] if name != "position_angle" else centre_angle(params_b[:, k], reference_pa)
                 self.base[name] = float(np.nansum(weights[name] * np.where(weights[name] > 0, values, 0.0)))
                 self.geometry_influence[name] = np.zeros(n_pix)
-            for r, (index, w_sqrt, deriv) in designs_b.items():
+            for r, index, w_sqrt, deriv in _ring_designs(pixels, jac, params_b, ok_b, layout.inner, layout.outer,
+                                                         options):
                 rows = _influence(deriv, w_sqrt, free_idx)
                 for name in self.names:
                     self.geometry_influence[name][index] += weights[name][r] * rows[free_idx.index(_INDEX[name])]
         # stage final: speeds at the adopted geometry, and their coupling to it
-        self.adopted = {name: float(params_c[0, _INDEX[name]]) for name in self.names}
+        self.adopted = {name: float(adopted[name]) for name in self.names}
         self.speed = np.where(ok_c, params_c[:, _INDEX["v_rotation"]], np.nan)
         speeds = [k for k in np.flatnonzero(free_c) if k in (_INDEX["v_rotation"], _INDEX["v_radial"])]
         row = speeds.index(_INDEX["v_rotation"])
         geometry = [_INDEX[name] for name in self.names]
         index_parts, coef_parts, ring_parts = [], [], []
         self.coupling = np.zeros((n_rings, len(geometry)))
-        for r, (index, w_sqrt, deriv) in _ring_designs(pixels, jac, params_c, ok_c, layout.inner, layout.outer,
-                                                       options).items():
+        for r, index, w_sqrt, deriv in _ring_designs(pixels, jac, params_c, ok_c, layout.inner, layout.outer, options):
             a_v = deriv[:, speeds] * w_sqrt[:, None]
             h_inv = np.linalg.pinv(a_v.T @ a_v)
             index_parts.append(index)

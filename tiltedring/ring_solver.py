@@ -317,8 +317,8 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
     for j in range(n):
         k = sel[j]
         squares += (v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)) ** 2
-    if p[5] < 0:  # keep v_rotation >= 0 by turning the position angle half a circle (same v_los field)
-        p[3] += 180.0
+    if p[5] < 0 and free[3]:  # a free position angle turns half a circle instead (same v_los field); with the
+        p[3] += 180.0          # position angle held, the sign of v_rotation is the measurement
         p[5] = -p[5]
         p[6] = -p[6]
     p[3] = p[3] % 360.0

@@ -1,0 +1,128 @@
+"""Maps too large to fit in memory: a memory estimate before the fit, and binning to coarser pixels.
+
+The fit holds every valid pixel in memory (its position, velocity, error and per-stage copies)
+plus a few full-size maps (model, residual, smeared model, padded FFT planes). Measured on the
+speed benchmark (``benchmarks/speed.py``) the fit needs about ``BYTES_PER_VALID_PIXEL`` per valid
+pixel and ``BYTES_PER_MAP_PIXEL`` per map pixel above the interpreter's own ~0.3 GB. A map whose
+estimate exceeds the memory available is refused before anything is computed, with the binning
+factor that would fit.
+
+Binning averages f x f blocks of pixels: a well-sampled map (several pixels across the beam) loses
+nothing a tilted-ring fit can use as long as about two binned pixels still span the beam FWHM. The
+velocity of a block is the intensity-weighted mean of its valid pixels (plain mean without an
+intensity map); a block needs at least half its pixels valid. The error of a block is the rms of
+its pixels' errors, not reduced by averaging, since pixels within a beam carry correlated noise
+(the fit's pixels-per-beam scaling accounts for correlation on the new grid). Intensity is averaged
+(surface brightness keeps its unit), dispersion is intensity-weighted like the velocity. The WCS
+is sliced with the same step, so binned pixel k covers original pixels f k ... f k + f - 1.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import replace
+
+import numpy as np
+
+from .errors import InputError
+from .maps import VelocityMap, sky_jacobian_from_wcs
+
+__all__ = ["bin_map", "memory_estimate", "available_memory", "check_memory"]
+
+BYTES_PER_VALID_PIXEL = 400
+BYTES_PER_MAP_PIXEL = 150
+
+
+def memory_estimate(vmap: VelocityMap) -> float:
+    """Bytes the fit of ``vmap`` needs beyond the interpreter (module docstring)."""
+    ny, nx = vmap.shape
+    return BYTES_PER_VALID_PIXEL * float(vmap.valid.sum()) + BYTES_PER_MAP_PIXEL * float(ny * nx)
+
+
+def available_memory() -> float | None:
+    """Bytes of memory available to a new allocation (Linux MemAvailable; None where unknown)."""
+    try:
+        with open("/proc/meminfo") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return float(line.split()[1]) * 1024.0
+    except OSError:
+        pass
+    try:
+        return float(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def check_memory(vmap: VelocityMap, available: float | None = None) -> None:
+    """Refuse a map whose fit would not fit in memory, naming the binning factor that would."""
+    available = available_memory() if available is None else available
+    need = memory_estimate(vmap)
+    if available is None or need <= 0.8 * available:
+        return
+    factor = 2
+    while need / factor**2 > 0.8 * available:
+        factor += 1
+    beam = ""
+    if vmap.beam is not None:
+        across = vmap.beam.fwhm / (vmap.pixel_scale * factor)
+        beam = (f"; the beam would then span {across:.1f} binned pixels"
+                + (" (fewer than two: the fit loses resolution)" if across < 2 else ""))
+    raise InputError(
+        f"velocity map {vmap.source} ({vmap.shape[1]}x{vmap.shape[0]}, {int(vmap.valid.sum())} valid pixels) needs "
+        f"about {need / 2**30:.1f} GiB to fit but only {available / 2**30:.1f} GiB of memory is available; bin it "
+        f"with --bin {factor} (bin_map(vmap, {factor}) in Python){beam}"
+    )
+
+
+def _blocks(image, factor):
+    ny, nx = image.shape[0] // factor, image.shape[1] // factor
+    return image[: ny * factor, : nx * factor].reshape(ny, factor, nx, factor)
+
+
+def _weighted_mean(values, weights, factor, enough):
+    v, w = _blocks(values, factor), _blocks(weights, factor)
+    total = w.sum(axis=(1, 3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(w > 0, v * w, 0.0).sum(axis=(1, 3)) / total
+    return np.where(enough & (total > 0), mean, np.nan)
+
+
+def bin_map(vmap: VelocityMap, factor: int) -> VelocityMap:
+    """A new :class:`.maps.VelocityMap` of ``factor`` x ``factor`` block averages (module docstring).
+
+    Rows and columns beyond a whole number of blocks are dropped; ``vmap`` is not modified.
+    """
+    factor = int(factor)
+    if factor < 1:
+        raise InputError(f"binning factor must be a whole number >= 1, got {factor}")
+    if factor == 1:
+        return vmap
+    ny, nx = vmap.shape[0] // factor, vmap.shape[1] // factor
+    if min(ny, nx) < 8:
+        raise InputError(f"binning {vmap.shape[1]}x{vmap.shape[0]} by {factor} leaves only {nx}x{ny} pixels; "
+                         "use a smaller factor")
+    valid = vmap.valid
+    enough = _blocks(valid, factor).sum(axis=(1, 3)) >= 0.5 * factor**2
+    weight = valid.astype(float)
+    if vmap.intensity is not None:
+        weight = weight * np.clip(np.nan_to_num(vmap.intensity), 0.0, None)
+        weight = np.where(valid & (weight <= 0), 1e-12, weight)  # valid pixels without emission still count a little
+    velocity = _weighted_mean(np.nan_to_num(vmap.velocity), weight, factor, enough)
+    out = {"velocity": velocity}
+    if vmap.error is not None:
+        out["error"] = np.sqrt(_weighted_mean(np.nan_to_num(vmap.error) ** 2, valid.astype(float), factor, enough))
+    if vmap.intensity is not None:
+        finite = np.isfinite(vmap.intensity)
+        out["intensity"] = _weighted_mean(np.nan_to_num(vmap.intensity), finite.astype(float), factor,
+                                          _blocks(finite, factor).any(axis=(1, 3)))
+    if vmap.dispersion is not None:
+        out["dispersion"] = _weighted_mean(np.nan_to_num(vmap.dispersion), weight * np.isfinite(vmap.dispersion),
+                                           factor, enough)
+    wcs, jacobian = None, vmap.sky_jacobian * factor
+    if vmap.wcs is not None:
+        wcs = vmap.wcs.slice((slice(0, ny * factor, factor), slice(0, nx * factor, factor)))
+        jacobian = sky_jacobian_from_wcs(wcs, (nx - 1) / 2.0, (ny - 1) / 2.0)
+    note = (f"map binned {factor}x{factor} before fitting ({vmap.shape[1]}x{vmap.shape[0]} -> {nx}x{ny} pixels; "
+            "velocities intensity-weighted block means)")
+    return replace(vmap, sky_jacobian=jacobian, wcs=wcs, notes=list(vmap.notes) + [note], **out)
