@@ -253,10 +253,10 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
     stats[:] = np.array([0.0, 0.0, np.nan, np.nan, 0.0, 0.0])
     last_step = np.zeros(7)
     damping = 0.0
-    settled = False
     n = 0
     cost, h, converged = 0.0, np.zeros((nf, nf)), False
-    for _ in range(geometry_updates if geometry_free else 1):
+    updates = geometry_updates if geometry_free else 1
+    for update in range(updates + 1):
         n, first, last = _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, sel, w_sqrt,
                                  cos_t, sin_t)
         if _reaches_edge(order_radius, lo, hi, first, last, margin):
@@ -265,6 +265,14 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
             params[:] = p
             stats[0], stats[1] = n, _coverage(cos_t, sin_t, n, sin_wedge, side)
             return
+        if update == updates:
+            # not settled: hold the damped geometry and refit the velocities on its own pixel selection
+            if vel.shape[0] > 0:
+                p, cost, h, converged, n = _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, vel, jac,
+                                                         max_iterations, clip)
+            cost, h, _ = normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac)  # all free parameters, for errors
+            converged = True
+            break
         p_new, cost, h, converged, n = _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, fidx, jac,
                                                      max_iterations, clip)
         # settled when no geometry parameter moved by more than 0.02 (deg or pixel) or a tenth of its error
@@ -276,7 +284,6 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
                 moved = True
         if not geometry_free or not moved:
             p = p_new
-            settled = True
             break
         # Fixed-point update of the geometry: the pixel selection depends on the geometry, and a full update
         # can flip between two selections (seen in warped discs), so once a geometry step turns back on the
@@ -289,21 +296,6 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
         for j in GEOMETRY:
             p_new[j] -= damping * last_step[j]
         p = p_new
-    if not settled:
-        # not settled: hold the damped geometry and refit the velocities on its own pixel selection
-        n, first, last = _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, sel, w_sqrt,
-                                 cos_t, sin_t)
-        if _reaches_edge(order_radius, lo, hi, first, last, margin):
-            stats[5] = 1.0
-        if n < need:
-            params[:] = p
-            stats[0], stats[1] = n, _coverage(cos_t, sin_t, n, sin_wedge, side)
-            return
-        if vel.shape[0] > 0:
-            p, cost, h, converged, n = _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, vel, jac,
-                                                     max_iterations, clip)
-        cost, h, _ = normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac)  # all free parameters, for errors
-        converged = True
     chi2_red = cost / max(n - nf, 1)
     scaled = _scaled_errors(h, cost, n, pixels_per_beam)
     if np.isfinite(scaled).all():
