@@ -22,6 +22,7 @@ into v_rotation).
 
 from __future__ import annotations
 
+import time
 import warnings
 from dataclasses import asdict, dataclass, field, replace
 
@@ -255,7 +256,7 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
         return dict(start), {}
     order = np.argsort(rings["radius"])
     radii, v_rot = np.asarray(rings["radius"], float)[order], np.asarray(rings["v_rotation"], float)[order]
-    pa, inc = float(np.median(rings["position_angle"])), float(np.median(rings["inclination"]))
+    pa, inc = float(rings["position_angle"]), float(rings["inclination"])
 
     def residual(q):
         cen = dict(start)
@@ -282,14 +283,11 @@ class _Laps:
     """Wall time of consecutive steps: ``lap(name)`` adds the time since the previous lap to ``laps[name]``."""
 
     def __init__(self):
-        import time
-
-        self._now = time.perf_counter
-        self._last = self._now()
+        self._last = time.perf_counter()
         self.laps = {}
 
     def lap(self, name: str):
-        now = self._now()
+        now = time.perf_counter()
         self.laps[name] = self.laps.get(name, 0.0) + now - self._last
         self._last = now
 
@@ -444,11 +442,9 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     # position angle average must respect the 0/360 wrap
     ref = guess_geom["position_angle"]
     par[:, _INDEX["position_angle"]] = centre_angle(par[:, _INDEX["position_angle"]], ref)
-    held = {"radius": layout.radii[use]}
-    for name in ("position_angle", "inclination", "v_rotation"):
-        k = _INDEX[name]
-        typical = weighted_median(par[use, k], err[use, k])
-        held[name] = par[use, k] if name == "v_rotation" else np.full(use.sum(), typical)
+    held = {"radius": layout.radii[use], "v_rotation": par[use, _INDEX["v_rotation"]]}
+    for name in ("position_angle", "inclination"):
+        held[name] = weighted_median(par[use, _INDEX[name]], err[use, _INDEX[name]])
     centre, centre_err = refine_centre(vmap, pixels, held, layout.edges[-1], centre, fixed) if use.sum() >= 2 else (
         centre, {})
     clock.lap("centre")
