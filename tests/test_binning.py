@@ -79,3 +79,15 @@ def test_cli_bin_writes_outputs_on_the_binned_grid(tmp_path):
     assert run.returncode == 0, run.stderr
     model = fits.getdata(out / "model.fits")
     assert model.shape == (64, 64)
+
+
+def test_batch_row_with_a_bin_column(tmp_path):
+    """A manifest row may ask for binning (column ``bin``), as a map too large for memory would."""
+    from tiltedring.batch import fit_one
+
+    _, field = _field()
+    path = tmp_path / "disc.fits"
+    field.velocity_hdu.writeto(path)
+    entry = fit_one({"name": "binned", "velocity_map": str(path), "bin": 2}, {"resamples": 0}, tmp_path / "out")
+    assert entry["status"] == "ok", entry["error"]
+    assert fits.getdata(tmp_path / "out" / "binned" / "model.fits").shape == (64, 64)

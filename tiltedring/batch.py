@@ -103,6 +103,7 @@ def fit_one(row: dict, shared: dict, out_dir) -> dict:
         values.update({k: v for k, v in row.items() if k not in _INPUT_COLUMNS + _CURVE_COLUMNS + ("name",)})
         inputs = {k: row[k] for k in _INPUT_COLUMNS if k in row}
         read_keys = {k: values.pop(k) for k in ("beam", "pixel_scale", "velocity_unit") if k in values}
+        bin_factor = int(values.pop("bin", 1) or 1)
         report = bool(values.pop("report", False))
         options = FitOptions.from_mapping(values)
         with warnings.catch_warnings():
@@ -110,6 +111,10 @@ def fit_one(row: dict, shared: dict, out_dir) -> dict:
             vmap = read_velocity_map(inputs["velocity_map"], error=inputs.get("error_map"),
                                      intensity=inputs.get("intensity_map"), dispersion=inputs.get("dispersion_map"),
                                      **read_keys)
+            if bin_factor > 1:
+                from .binning import bin_map
+
+                vmap = bin_map(vmap, bin_factor)
             result = fit_velocity_map(vmap, options)
         curve = result.curve(distance=row.get("distance"), redshift=row.get("redshift"))
         result.inputs = {k: {"path": v, "sha256": file_checksum(v)} for k, v in inputs.items()}

@@ -72,7 +72,7 @@ def check_memory(vmap: VelocityMap, available: float | None = None) -> None:
     raise InputError(
         f"velocity map {vmap.source} ({vmap.shape[1]}x{vmap.shape[0]}, {int(vmap.valid.sum())} valid pixels) needs "
         f"about {need / 2**30:.1f} GiB to fit but only {available / 2**30:.1f} GiB of memory is available; bin it "
-        f"with --bin {factor} (bin_map(vmap, {factor}) in Python){beam}"
+        f"with --bin {factor} (a bin column of {factor} in a batch manifest, bin_map(vmap, {factor}) in Python){beam}"
     )
 
 

@@ -246,7 +246,8 @@ BATCH_EXAMPLES = """examples:
   tiltedring batch survey.csv --out survey_fits --scheduler tcp://10.0.0.5:8786 --config run.toml
 
 The manifest has one galaxy per row: velocity_map (path relative to the manifest) and optionally
-name, error_map, intensity_map, dispersion_map, distance, redshift and any fit option by name.
+name, error_map, intensity_map, dispersion_map, distance, redshift, bin (average N x N pixel blocks
+first) and any fit option by name.
 Shared options come from --config ([fit] table) and the flags below; per-row values win.
 Re-running the same command skips finished galaxies and retries failed ones. The catalogue is
 OUT/catalogue.ecsv (status ok or failed, with the error message).
