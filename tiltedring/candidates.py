@@ -74,9 +74,9 @@ def ring_members(sorted_pixels: SortedPixels, rings) -> list:
             radius, cos_t, sin_t = disc_coordinates(x[lo:hi], y[lo:hi], rings[k, _X], rings[k, _Y],
                                                     sorted_pixels.sky_jacobian, rings[k, _PA], rings[k, _INC])
             inside = np.flatnonzero((radius >= sorted_pixels.inner[k]) & (radius < sorted_pixels.outer[k]))
-            r_ref = sorted_pixels.radius
-            at_edge = len(inside) and ((lo > 0 and r_ref[lo + inside[0]] - r_ref[lo] < sorted_pixels.margin)
-                                       or (hi < total and r_ref[hi - 1] - r_ref[lo + inside[-1]] < sorted_pixels.margin))
+            r_ref, margin = sorted_pixels.radius, sorted_pixels.margin
+            at_edge = len(inside) and ((lo > 0 and r_ref[lo + inside[0]] - r_ref[lo] < margin)
+                                       or (hi < total and r_ref[hi - 1] - r_ref[lo + inside[-1]] < margin))
             if not at_edge:
                 break
             spread = hi - lo

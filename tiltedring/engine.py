@@ -97,7 +97,8 @@ def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, 
     order = np.argsort(bounds[:, 0] - bounds[:, 1], kind="stable")
     threads = min(threads or thread_count(), max(m, 1))
     order_radius = np.zeros(len(arrays[0])) if order_radius is None else np.ascontiguousarray(order_radius, float)
-    shared = (*arrays, order_radius, float(margin), np.ascontiguousarray(bounds[:, 0]), np.ascontiguousarray(bounds[:, 1]), starts, free,
+    shared = (*arrays, order_radius, float(margin), np.ascontiguousarray(bounds[:, 0]),
+              np.ascontiguousarray(bounds[:, 1]), starts, free,
               np.ascontiguousarray(sky_jacobian, float), np.ascontiguousarray(np.broadcast_to(inner, m), float),
               np.ascontiguousarray(np.broadcast_to(outer, m), float), WEIGHTINGS[options.weighting],
               float(np.sin(np.radians(options.exclusion_wedge))), SIDES.index(options.side), float(options.clip or 0.0),

@@ -118,13 +118,15 @@ def line_of_sight(x, y, sky_jacobian, **params):
 
 @njit(cache=True, nogil=True)
 def _model_pixels(flat, nx, jac, radii, xc, yc, vsys, pa, inc, vrot, vrad, r_outer, out, lo, hi):
-    """v_los of pixels ``flat[lo:hi]`` (flat indices into rows of ``nx``) on their rings
-    (:func:`.geometry.place_pixel`), parameters interpolated between rings; NaN beyond ``r_outer``."""
+    """v_los of pixels ``flat[lo:hi]`` (flat indices into rows of ``nx``; every pixel when ``flat`` is
+    empty) on their rings (:func:`.geometry.place_pixel`), parameters interpolated between rings; NaN
+    beyond ``r_outer``."""
     last = radii.shape[0] - 1
     sp, cp, ci = ring_trig(pa, inc)
     si = np.sin(inc * DEG)
     for k in range(lo, hi):
-        x, y = float(flat[k] % nx), float(flat[k] // nx)
+        at = flat[k] if flat.shape[0] else k  # no index list: every pixel of the map in order
+        x, y = float(at % nx), float(at // nx)
         pos, _ = place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer)
         if pos < 0.0:
             out[k] = np.nan
@@ -154,16 +156,17 @@ def model_field(shape, sky_jacobian, rings: dict, r_outer: float, mask=None):
     ``r_outer`` (or outside ``mask``) are NaN. The pixels are shared among threads.
     """
     ny, nx = shape
-    flat = np.arange(ny * nx) if mask is None else np.flatnonzero(np.asarray(mask, bool))
+    flat = np.zeros(0, np.int64) if mask is None else np.flatnonzero(np.asarray(mask, bool))
+    count = ny * nx if mask is None else len(flat)
     order = np.argsort(rings["radius"])
     table = {k: np.ascontiguousarray(np.asarray(v, float)[order]) for k, v in rings.items()
              if k in PARAMETERS or k == "radius"}
     table.setdefault("v_radial", np.zeros_like(table["radius"]))
     table["position_angle"] = np.degrees(np.unwrap(np.radians(table["position_angle"])))  # no jump at 0/360
-    values = np.empty(len(flat))
+    values = np.empty(count)
     args = (flat, nx, np.ascontiguousarray(sky_jacobian, float), table["radius"],
             *(table[name] for name in PARAMETERS), float(r_outer), values)
-    edges = np.linspace(0, len(flat), thread_count() + 1).astype(int)
+    edges = np.linspace(0, count, thread_count() + 1).astype(int)
     run_parts(lambda part: _model_pixels(*args, *part), zip(edges[:-1], edges[1:]))
     if mask is None:
         return values.reshape(shape)

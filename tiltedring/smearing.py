@@ -61,27 +61,28 @@ class BeamKernel:
         kx = fft.rfftfreq(self.padded[1])[None, :]
         quad = c_pix[0, 0] * kx**2 + 2 * c_pix[0, 1] * kx * ky + c_pix[1, 1] * ky**2
         self.transfer = np.exp(-2 * np.pi**2 * quad)
-
-        self._last_weight = None
+        self._last_norm = None
 
     def __call__(self, image):
         ny, nx = self.shape
         spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, workers=-1)
-        return fft.irfft2(spectrum * self.transfer, s=self.padded, workers=-1)[:ny, :nx]
+        spectrum *= self.transfer
+        return fft.irfft2(spectrum, s=self.padded, workers=-1)[:ny, :nx].copy()
 
-    def normalisation(self, weight):
-        """G * weight, reused while the weight map stays the same (the disc's footprint rarely changes)."""
-        if self._last_weight is None or not np.array_equal(self._last_weight[0], weight):
-            self._last_weight = (weight.copy(), self(weight))
-        return self._last_weight[1]
+    def normalisation(self, intensity, inside):
+        """G * (I on the modelled pixels), reused while I and the footprint ``inside`` stay the same (the
+        disc's footprint rarely changes between steps of the beam-smearing correction)."""
+        last = self._last_norm
+        if last is None or last[0] is not intensity or not np.array_equal(last[1], inside):
+            self._last_norm = (intensity, inside.copy(), self(np.where(inside, intensity, 0.0)))
+        return self._last_norm[2]
 
 
 def smear(kernel: BeamKernel, field, intensity, v_systemic):
     """v_sys + G*(I (v - v_sys)) / (G*I) on the modelled pixels (NaN elsewhere)."""
     inside = np.isfinite(field)
-    weight = np.where(inside, intensity, 0.0)
-    norm = kernel.normalisation(weight)
-    smeared = kernel(weight * np.where(inside, field - v_systemic, 0.0))
+    norm = kernel.normalisation(intensity, inside)
+    smeared = kernel(np.where(inside, intensity * (field - v_systemic), 0.0))
     ok = inside & (norm > 1e-6 * max(float(norm.max()), 1e-30))
     out = np.full(field.shape, np.nan)
     out[ok] = v_systemic + smeared[ok] / norm[ok]
