@@ -3,8 +3,8 @@
 The fit holds every valid pixel in memory (its position, velocity, error and per-stage copies)
 plus a few full-size maps (model, residual, smeared model, padded FFT planes). Measured on the
 speed benchmark (``benchmarks/speed.py``) the fit needs about ``BYTES_PER_VALID_PIXEL`` per valid
-pixel and ``BYTES_PER_MAP_PIXEL`` per map pixel above the interpreter's own ~0.25 GB (a 1024x1024
-map with 400,000 valid pixels peaks at 0.43 GB in all, a 2048x2048 map at 0.97 GB). A map whose
+pixel and ``BYTES_PER_MAP_PIXEL`` per map pixel above the interpreter's own ~0.23 GB (a 1024x1024
+map with 400,000 valid pixels peaks at 0.39 GB in all, a 2048x2048 map at 0.87 GB). A map whose
 estimate exceeds the memory available is refused before anything is computed, with the binning
 factor that would fit.
 
