@@ -122,6 +122,18 @@ def test_low_inclination_is_reported_not_hidden():
     assert np.all(err[ok] >= 0.5 * v[ok] - 1e-9)
 
 
+def test_position_angle_held_on_the_approaching_side_is_reported(quiet):
+    """A position angle held 180 deg from the receding side gives negative speeds, kept as measured (not
+    silently turned), and a caution that names the angle to hold instead."""
+    truth = DiscTruth(position_angle=40.0)
+    field = make_field(truth, seed=12)
+    res = _fit_hdu(field.velocity_hdu, fixed=("position_angle",), initial={"position_angle": 220.0}, resamples=0)
+    far = res.rings["radius"].value > 24.0
+    assert np.all(res.rings["v_rotation"].value[far] < 0)
+    assert np.allclose(res.rings["position_angle"].value, 220.0)
+    assert any("hold it at 40.0 deg" in c for c in res.cautions)
+
+
 def test_centre_guess_outside_map_is_refused():
     field = make_field(seed=8)
     with pytest.raises(tr.InputError, match="outside the map"):

@@ -59,7 +59,8 @@ def _fit_arctan(q0, free, x, y, v, sigma, jac, scale, pixel_scale):
         q[free] = qf
         return (v - _arctan_model(q, x, y, jac)) / sigma
 
-    lower = np.array([-np.inf, -np.inf, -np.inf, -np.inf, 5.0, 0.0, 0.1 * pixel_scale])[free]
+    # v_flat >= 0 picks the receding side; with the position angle held, the sign is left to the data
+    lower = np.array([-np.inf, -np.inf, -np.inf, -np.inf, 5.0, 0.0 if free[3] else -np.inf, 0.1 * pixel_scale])[free]
     upper = np.array([np.inf, np.inf, np.inf, np.inf, 85.0, np.inf, np.inf])[free]
     start = np.clip(q0[free], lower + 1e-9, upper - 1e-9)
     sol = least_squares(residual, start, bounds=(lower, upper), loss="soft_l1", f_scale=scale / np.median(sigma),
@@ -106,7 +107,7 @@ def first_guess(vmap: VelocityMap, initial: dict | None = None, fixed=(), seed: 
     q = best[0]
     if len(v[few]) < len(v):
         q, _ = _fit_arctan(q, free, x, y, v, sigma, vmap.sky_jacobian, scale, vmap.pixel_scale)
-    if q[5] < 0:
+    if q[5] < 0 and free[3]:
         q[3] += 180.0
         q[5] = -q[5]
     q[3] %= 360.0

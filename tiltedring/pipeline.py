@@ -713,6 +713,11 @@ def _cautions(final, options, vmap, summaries) -> list:
         out.append(f"non-circular motions ({', '.join(nc['kinds'])}) in {len(nc['radii'])} ring(s), up to "
                    f"{nc['max_amplitude']:.0f} km/s in the disc plane: v_rotation there is not the circular speed; "
                    "see flow_model and v_t_<model> columns")
+    speeds = final["v_rotation"].to_value(u.km / u.s)
+    if np.isfinite(speeds).any() and np.nanmedian(speeds) < 0:
+        pa = float(np.nanmedian(final["position_angle"].to_value(u.deg)))
+        out.append(f"v_rotation is negative in most rings: the position angle held at {pa:.1f} deg points to the "
+                   f"approaching side; hold it at {(pa + 180.0) % 360.0:.1f} deg instead, or leave it free")
     inc = float(np.nanmedian(final["inclination"].to_value(u.deg)))
     if inc < options.low_inclination:
         out.append(f"low inclination ({inc:.0f} deg < {options.low_inclination:.0f}): v_rotation and inclination are "
