@@ -68,8 +68,8 @@ class FitResponse:
 
     def __init__(self, vmap, pixels, layout, options, params_b, ok_b, free_b, weights, params_c, ok_c, free_c,
                  adopted, reference_pa):
-        self.x, self.y, self.v = pixels[0], pixels[1], pixels[2]
-        self.ix, self.iy = self.x.astype(int), self.y.astype(int)
+        self.v = pixels[2]
+        self.ix, self.iy = pixels[0].astype(int), pixels[1].astype(int)
         n_pix, n_rings = len(self.v), len(layout)
         jac = vmap.sky_jacobian
         self.names, self.weights = list(weights), weights
@@ -95,13 +95,12 @@ class FitResponse:
         index_parts, coef_parts, ring_parts = [], [], []
         self.coupling = np.zeros((n_rings, len(geometry)))
         for r, index, w_sqrt, deriv in _ring_designs(pixels, jac, params_c, ok_c, layout.inner, layout.outer, options):
-            a_v = deriv[:, speeds] * w_sqrt[:, None]
-            h_inv = np.linalg.pinv(a_v.T @ a_v)
+            rows = _influence(deriv, w_sqrt, speeds)  # H_vv^-1 J_v^T W
             index_parts.append(index)
-            coef_parts.append((h_inv @ (a_v * w_sqrt[:, None]).T)[row])
+            coef_parts.append(rows[row])
             ring_parts.append(np.full(len(index), r))
             if geometry:
-                self.coupling[r] = (h_inv @ (a_v.T @ (deriv[:, geometry] * w_sqrt[:, None])))[row]
+                self.coupling[r] = (rows @ deriv[:, geometry])[row]  # H_vv^-1 H_vg
         self.index = np.concatenate(index_parts) if index_parts else np.zeros(0, int)
         self.coef = np.concatenate(coef_parts) if coef_parts else np.zeros(0)
         self.ring = np.concatenate(ring_parts) if ring_parts else np.zeros(0, int)
