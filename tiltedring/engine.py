@@ -6,9 +6,12 @@ For the pixels whose disc radius falls inside the ring, minimise::
 
 over any subset of the seven ring parameters, with the angular weight W = 1, |cos theta| or
 cos^2 theta (Begeman 1989) and pixels within an exclusion wedge about the minor axis dropped.
-The minimiser is Levenberg-Marquardt with the analytic Jacobian of :func:`.kinematics.ring_model`.
-Pixel membership depends on the geometry, so it is re-selected after each geometry update (at
-most ``geometry_updates`` times), never inside the minimiser's iterations.
+The minimiser is Levenberg-Marquardt with the analytic derivatives of :mod:`.kinematics`, run as
+compiled code (:mod:`.ring_solver`); this module is its interface. Pixel membership depends on the
+geometry, so it is re-selected after each geometry update (at most ``geometry_updates`` times, until
+the geometry moves by less than 0.02 or a tenth of its error), never inside the minimiser's
+iterations. With the position angle held, a negative v_rotation is kept as measured; with it free,
+the position angle turns half a circle instead.
 
 Errors: the formal covariance (J^T W J)^-1 is scaled by the reduced chi-square and by the
 number of pixels per beam, because pixels inside one beam are correlated and the formal errors
@@ -70,7 +73,6 @@ class RingSolution:
     converged: bool
     free: np.ndarray = field(default_factory=lambda: np.zeros(7, bool))
     truncated: bool = False  # the ring reached the edge of its candidate pixels (see :func:`fit_rings`)
-
 
 
 def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, options=RingFitOptions(),

@@ -523,8 +523,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
         beam = _correct_for_beam(vmap, layout, response, starts_c)
         clock.lap("beam smearing")
         for name in beam["summary"]["geometry_corrected"]:
-            if name in beam["corrected"]:
-                geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
+            geometry[name] = (np.full(len(layout), beam["corrected"][name]), geometry[name][1])
 
     # the larger of the global fit's error and the ring-to-ring scatter of stage "free" (1.25 sigma/sqrt(n):
     # error of a median), since beam-smearing residuals make the global fit's formal error optimistic

@@ -3,8 +3,10 @@
 Noise in a moment-1 map is correlated over a beam, and the residual of a fit also carries what the
 model misses. Both are captured by drawing fake residual fields with the *same power spectrum* as
 the measured residual (random phases; the spectrum of a masked field is normalised by the filled
-fraction), adding each to the model, refitting, and taking the scatter of the refitted values —
-a Monte Carlo in the spirit of a block bootstrap over beam-sized blocks, without the block edges.
+fraction), adding each to the model, fitting it again, and taking the scatter of the fitted values
+— a Monte Carlo in the spirit of a block bootstrap over beam-sized blocks, without the block edges.
+The fit of each draw is whatever ``measure`` does; the pipeline passes the fit's first-order
+response (:mod:`.response`), so a draw costs one inverse FFT and one pass of dot products.
 Every draw comes from a seeded generator, so the same inputs give the same errors.
 """
 

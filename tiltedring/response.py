@@ -34,20 +34,20 @@ def _ring_designs(pixels, sky_jacobian, params, ok, inner, outer, options):
     """Yield, ring by ring, (ring, pixel indices, sqrt-weights, d v_los / d p) at ``params`` as the ring fit
     selects them (usable rings only; one ring's Jacobian in memory at a time)."""
     from .engine import SIDES, WEIGHTINGS
+    from .ring_solver import angular_weights
 
     ordered = SortedPixels(pixels, sky_jacobian, params, inner, outer)
-    power = WEIGHTINGS[options.weighting]
-    sin_wedge = np.sin(np.radians(options.exclusion_wedge))
-    side = SIDES.index(options.side)
+    sigma = ordered.pixels[3]
+    rule = (WEIGHTINGS[options.weighting], float(np.sin(np.radians(options.exclusion_wedge))),
+            SIDES.index(options.side))
     for k, (at, cos_t, _) in enumerate(ring_members(ordered, params)):
         if not ok[k]:
             continue
-        keep = np.abs(cos_t) >= sin_wedge
-        keep &= (cos_t < 0) if side == 1 else (cos_t > 0) if side == 2 else True
+        w_sqrt = angular_weights(cos_t, sigma[at], *rule)
+        keep = w_sqrt >= 0.0
         index = ordered.order[at[keep]]
-        w_sqrt = np.abs(cos_t[keep]) ** (0.5 * power) / pixels[3][index]
         _, deriv = ring_model(pixels[0][index], pixels[1][index], params[k], sky_jacobian)
-        yield k, index, w_sqrt, deriv
+        yield k, index, w_sqrt[keep], deriv
 
 
 def _influence(deriv, w_sqrt, columns):

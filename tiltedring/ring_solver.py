@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .geometry import project
+from .geometry import project, ring_trig
 from .kinematics import pixel_velocity, ring_constants
 
 AZIMUTH_BINS = 36
@@ -56,6 +56,24 @@ def _clamp(p):
     p[4] = min(max(p[4], INC_BOUNDS[0]), INC_BOUNDS[1])
 
 
+@njit(cache=True, nogil=True, inline="always")
+def angular_weight(c, sigma, power, sin_wedge, side):
+    """sqrt of a pixel's weight, |cos theta|^(power/2) / sigma, or -1 where the exclusion wedge about the
+    minor axis or the chosen side (0 both, 1 approaching: cos < 0, 2 receding: cos > 0) leaves it out."""
+    if abs(c) < sin_wedge or (side == 1 and not c < 0.0) or (side == 2 and not c > 0.0):
+        return -1.0
+    return abs(c) ** (0.5 * power) / sigma
+
+
+@njit(cache=True)
+def angular_weights(cos_t, sigma, power, sin_wedge, side):
+    """:func:`angular_weight` of each pixel."""
+    out = np.empty(cos_t.shape[0])
+    for j in range(cos_t.shape[0]):
+        out[j] = angular_weight(cos_t[j], sigma[j], power, sin_wedge, side)
+    return out
+
+
 @njit(cache=True, nogil=True)
 def _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, sel, w_sqrt, cos_t, sin_t):
     """Pixels of slice [lo, hi) inside the ring at geometry ``p``; fills the buffers.
@@ -63,7 +81,7 @@ def _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, s
     Returns (count, first, last): ``first``/``last`` are the lowest and highest slice positions
     whose disc radius falls in the ring (wedge and side aside; -1 if none).
     """
-    sp, cp, ci = np.sin(p[3] * np.pi / 180), np.cos(p[3] * np.pi / 180), np.cos(p[4] * np.pi / 180)
+    sp, cp, ci = ring_trig(p[3], p[4])
     n = 0
     first, last = -1, -1
     for k in range(lo, hi):
@@ -75,10 +93,11 @@ def _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, s
             first = k
         last = k
         c, s = (xd / r, yd / r) if r > 0.0 else (1.0, 0.0)
-        if abs(c) < sin_wedge or (side == 1 and not c < 0.0) or (side == 2 and not c > 0.0):
+        weight = angular_weight(c, sigma[k], power, sin_wedge, side)
+        if weight < 0.0:
             continue
         sel[n] = k
-        w_sqrt[n] = abs(c) ** (0.5 * power) / sigma[k]
+        w_sqrt[n] = weight
         cos_t[n] = c
         sin_t[n] = s
         n += 1
@@ -218,8 +237,7 @@ def _coverage(cos_t, sin_t, n, sin_wedge, side):
     usable = 0
     covered = 0
     for b in range(AZIMUTH_BINS):
-        c = np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS)
-        if abs(c) >= sin_wedge and not (side == 1 and not c < 0) and not (side == 2 and not c > 0):
+        if angular_weight(np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS), 1.0, 0, sin_wedge, side) >= 0.0:
             usable += 1
             covered += hit[b]
     return covered / max(usable, 1)
