@@ -8,7 +8,7 @@ first-moment direction, axis ratio of the valid pixels), rings one beam wide; st
 systemic velocity, position angle, inclination and rotation per ring; stage 2 fixes centre and
 systemic velocity to their medians and refits position angle, inclination and rotation.
 
-The ring fit is the same as the tool's (:mod:`tiltedring.engine`): pixels of a ring are those
+The ring fit is the same as the tool's (:mod:`tiltedring.fitting.engine`): pixels of a ring are those
 whose disc radius under the ring's geometry falls inside it, outside a 15 deg wedge about the minor
 axis, weighted by |cos theta|; since membership depends on the geometry being fitted, the pixels
 are selected again after each fit until no geometry parameter moves by more than 0.02 (deg or

@@ -14,8 +14,8 @@ from astropy.io import fits
 from astropy.wcs import WCS
 
 import tiltedring as tr
-from tiltedring.binning import bin_map, check_memory, memory_estimate
 from tiltedring.errors import InputError
+from tiltedring.io.binning import bin_map, check_memory, memory_estimate
 from tiltedring.synthetic import DiscTruth, make_field
 
 

@@ -8,7 +8,7 @@ from astropy.cosmology import Planck18
 from astropy.io import fits
 
 import tiltedring as tr
-from tiltedring.curve import asymmetric_drift, parse_distance
+from tiltedring.products.curve import asymmetric_drift, parse_distance
 from tiltedring.synthetic import DiscTruth, make_field
 
 

@@ -7,14 +7,14 @@ beside each test; tolerances are ours and stated.
 
 import numpy as np
 import pytest
+from independent_fields import draw_field
 from scipy.spatial.transform import Rotation
 
 import tiltedring as tr
-from independent_fields import draw_field
-from tiltedring.flows import fit_flows
-from tiltedring.harmonics import chi2_survival, ring_harmonics
+from tiltedring.diagnostics.flows import fit_flows
+from tiltedring.diagnostics.harmonics import chi2_survival, ring_harmonics
+from tiltedring.diagnostics.warp import tilt_and_line_of_nodes
 from tiltedring.synthetic import DiscTruth, make_field
-from tiltedring.warp import tilt_and_line_of_nodes
 
 NON_CIRCULAR = ("radial_flow", "bisymmetric_flow", "strong_harmonics")
 

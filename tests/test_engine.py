@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from tiltedring.engine import RingFitOptions, fit_ring
 from tiltedring.errors import InputError
-from tiltedring.kinematics import ring_model
+from tiltedring.fitting.engine import RingFitOptions, fit_ring
+from tiltedring.fitting.kinematics import ring_model
 
 JAC = np.array([[-1.6, 0.5], [0.4, 1.7]])
 

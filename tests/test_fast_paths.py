@@ -11,12 +11,12 @@ import numpy as np
 import pytest
 
 import tiltedring as tr
-from tiltedring.candidates import SortedPixels, ring_members
-from tiltedring.engine import RingFitOptions, fit_ring
-from tiltedring.geometry import disc_coordinates
-from tiltedring.kinematics import PARAMETERS
-from tiltedring.leastsq import weighted_least_squares
-from tiltedring.pipeline import FitOptions, _fit_response, _run_stage
+from tiltedring.fitting.candidates import SortedPixels, ring_members
+from tiltedring.fitting.engine import RingFitOptions, fit_ring
+from tiltedring.fitting.geometry import disc_coordinates
+from tiltedring.fitting.kinematics import PARAMETERS
+from tiltedring.fitting.leastsq import weighted_least_squares
+from tiltedring.pipeline.staged import FitOptions, _fit_response, _run_stage
 from tiltedring.synthetic import DiscTruth, make_field
 
 JAC = np.array([[-1.6, 0.5], [0.4, 1.7]])

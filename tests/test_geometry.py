@@ -3,11 +3,11 @@
 import numpy as np
 import pytest
 from astropy import units as u
-
 from independent_fields import grid_wcs, particle_sky
-from tiltedring.geometry import assign_to_rings, disc_coordinates, sky_from_disc
-from tiltedring.kinematics import line_of_sight, model_field
-from tiltedring.maps import sky_jacobian_from_wcs
+
+from tiltedring.fitting.geometry import assign_to_rings, disc_coordinates, sky_from_disc
+from tiltedring.fitting.kinematics import line_of_sight, model_field
+from tiltedring.io.maps import sky_jacobian_from_wcs
 
 
 @pytest.mark.parametrize("pa,inc,grid_rotation", [(30.0, 60.0, 0.0), (215.0, 40.0, 25.0), (350.0, 75.0, -70.0),

@@ -4,10 +4,10 @@ import numpy as np
 import pytest
 from astropy import units as u
 from astropy.io import fits
-
 from independent_fields import grid_wcs
+
 from tiltedring.errors import FitCaution, InputError
-from tiltedring.maps import Beam, parse_velocity_unit, read_velocity_map
+from tiltedring.io.maps import Beam, parse_velocity_unit, read_velocity_map
 
 
 def _hdu(data=None, unit="km/s", rotation=0.0, shape=(40, 50), scale=2.0):

@@ -5,8 +5,21 @@ import pytest
 from astropy import constants as const
 from astropy import units as u
 
-from tiltedring.massmodel import (NFW, Baryons, Burkert, CurveData, Einasto, ExponentialDisc, MassModelSettings,
-                                  PseudoIsothermal, ThinDisc, fit_mass_model, fit_btfr, fit_rar, read_sparc_rotmod)
+from tiltedring.massmodel import (
+    NFW,
+    Baryons,
+    Burkert,
+    CurveData,
+    Einasto,
+    ExponentialDisc,
+    MassModelSettings,
+    PseudoIsothermal,
+    ThinDisc,
+    fit_btfr,
+    fit_mass_model,
+    fit_rar,
+    read_sparc_rotmod,
+)
 from tiltedring.massmodel.components import G, PointMass
 from tiltedring.massmodel.relations import acceleration, mond_speed
 
@@ -213,7 +226,7 @@ def test_posterior_sampling_agrees_with_least_squares():
 def test_hi_column_density_formula():
     """N_HI = 1.823e18 int T_B dv (standard radio astronomy, e.g. Walter et al. 2008); 1 M_sun/pc^2 of
     hydrogen atoms = 1.25e20 cm^-2 (astropy constants)."""
-    from tiltedring.maps import Beam
+    from tiltedring.io.maps import Beam
     from tiltedring.massmodel.gas import _N_PER_MSUN_PC2, column_density
 
     assert column_density(10.0, "K km/s") == pytest.approx(1.823e19)

@@ -8,9 +8,9 @@ km/s, rotated grids, a warp) and the independent particle generator in ``indepen
 import numpy as np
 import pytest
 from astropy.io import fits
+from independent_fields import draw_field
 
 import tiltedring as tr
-from independent_fields import draw_field
 from tiltedring.synthetic import DiscTruth, make_field
 
 

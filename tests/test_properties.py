@@ -7,9 +7,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import tiltedring as tr
-from tiltedring.geometry import disc_coordinates, sky_from_disc, wrap_angle
-from tiltedring.kinematics import line_of_sight
-from tiltedring.rings import RingLayout
+from tiltedring.fitting.geometry import disc_coordinates, sky_from_disc, wrap_angle
+from tiltedring.fitting.kinematics import line_of_sight
+from tiltedring.fitting.rings import RingLayout
 from tiltedring.synthetic import DiscTruth, make_field
 
 angles = st.floats(-1e4, 1e4, allow_nan=False)

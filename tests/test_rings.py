@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from tiltedring.errors import InputError
-from tiltedring.rings import RingLayout, parse_width
+from tiltedring.fitting.rings import RingLayout, parse_width
 
 
 def test_parse_width_units():

@@ -2,12 +2,12 @@
 
 import numpy as np
 import pytest
+from independent_fields import draw_field
 from scipy.ndimage import gaussian_filter
 
 import tiltedring as tr
-from independent_fields import draw_field
-from tiltedring.maps import Beam
-from tiltedring.smearing import BeamKernel
+from tiltedring.fitting.smearing import BeamKernel
+from tiltedring.io.maps import Beam
 
 
 def test_beam_kernel_matches_scipy_gaussian_filter():

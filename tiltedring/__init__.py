@@ -16,9 +16,9 @@ from importlib import import_module
 __version__ = "0.1.0"
 
 _EXPORTS = {
-    "VelocityMap": "maps", "Beam": "maps", "read_velocity_map": "maps",
-    "RingLayout": "rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
-    "FitResult": "result", "InputError": "errors", "FitCaution": "errors",
+    "VelocityMap": "io.maps", "Beam": "io.maps", "read_velocity_map": "io.maps",
+    "RingLayout": "fitting.rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
+    "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

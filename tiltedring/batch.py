@@ -91,9 +91,9 @@ def fit_one(row: dict, shared: dict, out_dir) -> dict:
     import warnings
 
     from .errors import FitCaution
-    from .maps import read_velocity_map
-    from .pipeline import FitOptions, fit_velocity_map
-    from .result import file_checksum
+    from .io.maps import read_velocity_map
+    from .pipeline.staged import FitOptions, fit_velocity_map
+    from .products.result import file_checksum
 
     start = time.perf_counter()
     name = row["name"]
@@ -112,7 +112,7 @@ def fit_one(row: dict, shared: dict, out_dir) -> dict:
                                      intensity=inputs.get("intensity_map"), dispersion=inputs.get("dispersion_map"),
                                      **read_keys)
             if bin_factor > 1:
-                from .binning import bin_map
+                from .io.binning import bin_map
 
                 vmap = bin_map(vmap, bin_factor)
             result = fit_velocity_map(vmap, options)
@@ -162,7 +162,7 @@ def _finished(row, shared, out_dir):
 def _write_catalogue(out_dir, entries):
     from astropy.table import Table
 
-    from ._io import atomic_path
+    from .io.atomic import atomic_path
 
     columns = ("name", "status", "x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
                "inclination", "v_flat", "warp", "non_circular", "flags", "seconds", "error")
@@ -182,7 +182,7 @@ def _write_catalogue(out_dir, entries):
 
 class _Counter:
     def __init__(self, total, quiet):
-        from .resampling import Progress
+        from .fitting.resampling import Progress
 
         self.progress = Progress("galaxies", total, quiet=quiet, delay=0.0)
         self.done = self.failed = 0

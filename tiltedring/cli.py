@@ -152,8 +152,14 @@ def _mass_parser(sub):
 
 def run_massmodel(args) -> int:
     from .errors import InputError
-    from .massmodel import (MassModelSettings, fit_mass_model, read_components, read_curve, read_sparc_rotmod,
-                            write_results)
+    from .massmodel import (
+        MassModelSettings,
+        fit_mass_model,
+        read_components,
+        read_curve,
+        read_sparc_rotmod,
+        write_results,
+    )
 
     if args.curve.endswith(".dat") and args.radius_column is None:
         curve, baryons = read_sparc_rotmod(args.curve)
@@ -222,7 +228,7 @@ def _compare_parser(sub):
 def run_compare(args) -> int:
     import numpy as np
 
-    from .compare import compare_maps
+    from .products.compare import compare_maps
 
     names = args.names.split(",") if args.names else None
     result = compare_maps(args.maps, names=names, grid=args.grid, rings=args.rings, flux=args.flux,
@@ -367,9 +373,9 @@ def _write_gas(result, curve, args):
     distance = (curve.meta.get("distance") or {}).get("value_mpc")
     if result.vmap.intensity is None or distance is None:
         return
-    from ._io import atomic_path
+    from .io.atomic import atomic_path
     from .massmodel.gas import gas_table
-    from .result import plain_table
+    from .products.result import plain_table
 
     try:
         table = gas_table(result, distance)
@@ -383,9 +389,9 @@ def _write_gas(result, curve, args):
 
 def run_fit(args) -> int:
     from .errors import FitCaution
-    from .maps import read_velocity_map
-    from .pipeline import FitOptions, fit_velocity_map
-    from .result import file_checksum
+    from .io.maps import read_velocity_map
+    from .pipeline.staged import FitOptions, fit_velocity_map
+    from .products.result import file_checksum
 
     inputs, fit_values = _gather(args)
     fit_values.setdefault("quiet", bool(args.quiet))
@@ -396,7 +402,7 @@ def run_fit(args) -> int:
                                  dispersion=inputs.get("dispersion_map"), beam=inputs.get("beam"),
                                  pixel_scale=inputs.get("pixel_scale"), velocity_unit=inputs.get("velocity_unit"))
         if inputs.get("bin"):
-            from .binning import bin_map
+            from .io.binning import bin_map
 
             vmap = bin_map(vmap, inputs["bin"])
         result = fit_velocity_map(vmap, options)

@@ -15,8 +15,8 @@ import numpy as np
 from astropy.io import fits
 from astropy.wcs import WCS
 
-from .kinematics import model_field
-from .maps import Beam, VelocityMap, sky_jacobian_from_wcs
+from .fitting.kinematics import model_field
+from .io.maps import Beam, VelocityMap, sky_jacobian_from_wcs
 
 __all__ = ["DiscTruth", "SyntheticField", "make_field", "sky_wcs"]
 
@@ -126,7 +126,7 @@ def make_field(truth: DiscTruth = DiscTruth(), shape=(128, 128), pixel_scale: fl
     rings = truth.table(radii)
     velocity = model_field(shape, jac, rings, r_outer=radii[-1])
     yy, xx = np.mgrid[0:ny, 0:nx]
-    from .geometry import assign_to_rings
+    from .fitting.geometry import assign_to_rings
 
     _, radius = assign_to_rings(xx.ravel(), yy.ravel(), jac, radii, rings["x_center"], rings["y_center"],
                                 rings["position_angle"], rings["inclination"], radii[-1])

@@ -6,8 +6,21 @@
     result = fit_mass_model(curve, baryons, MassModelSettings(model="burkert"))
 """
 
-from .components import ExponentialDisc, HernquistBulge, PointMass, TabulatedSpeed, ThinDisc
-from .fitting import MODELS, Baryons, CurveData, MassModelResult, MassModelSettings, fit_mass_model
+from .components import (
+           ExponentialDisc,
+           HernquistBulge,
+           PointMass,
+           TabulatedSpeed,
+           ThinDisc,
+)
+from .fitting import (
+           MODELS,
+           Baryons,
+           CurveData,
+           MassModelResult,
+           MassModelSettings,
+           fit_mass_model,
+)
 from .halos import NFW, Burkert, Einasto, PseudoIsothermal, concentration_prior
 from .io import read_components, read_curve, read_sparc_rotmod, write_results
 from .relations import fit_btfr, fit_rar, mond_speed, rar

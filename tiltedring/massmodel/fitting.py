@@ -273,7 +273,7 @@ def _sample(residuals, q, err, lower, upper, n_walkers, n_steps, seed, quiet):
         import emcee
     except ImportError:
         raise InputError("posterior sampling needs emcee: pip install emcee") from None
-    from ..resampling import Progress
+    from ..fitting.resampling import Progress
 
     lower, upper = np.asarray(lower), np.asarray(upper)
 

@@ -18,8 +18,8 @@ import numpy as np
 from astropy import constants as const
 from astropy import units as u
 
-from ..curve import ring_statistic
 from ..errors import InputError
+from ..products.curve import ring_statistic
 
 __all__ = ["hi_surface_density", "column_density", "gas_table", "HI_FREQUENCY_GHZ"]
 

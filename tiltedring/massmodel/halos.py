@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from .components import G, Component
+from .components import Component, G
 
 __all__ = ["PseudoIsothermal", "NFW", "Burkert", "Einasto", "HALOS", "concentration_prior", "H0_KM_S_KPC"]
 

@@ -87,7 +87,7 @@ def read_components(path, radius_column="radius_kpc", gas_column="v_gas", disc_c
 
 def write_results(folder, results: dict, curve: CurveData, overwrite: bool = False) -> Path:
     """Write ``models.ecsv`` (comparison), ``parameters.ecsv``, ``components_<model>.ecsv`` and ``massmodel.json``."""
-    from .._io import atomic_folder, write_json
+    from ..io.atomic import atomic_folder, write_json
 
     with atomic_folder(folder, overwrite=overwrite) as tmp:
         comparison = QTable()

@@ -22,8 +22,8 @@ import numpy as np
 from astropy import units as u
 from astropy.table import QTable
 
-from . import flags as ringflags
-from .kinematics import PARAMETERS, UNITS
+from ..diagnostics import flags as ringflags
+from ..fitting.kinematics import PARAMETERS, UNITS
 
 __all__ = ["FitResult", "stage_table", "ERROR_COLUMNS"]
 
@@ -128,10 +128,11 @@ class FitResult:
 
     def record(self) -> dict:
         """The run record written as ``fit.json``."""
-        from . import __version__
         import astropy
         import numba
         import scipy
+
+        from .. import __version__
 
         stage_summaries = {}
         for name, table in self.stages.items():
@@ -237,8 +238,8 @@ class FitResult:
         ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a distance).
         ``report``: also write ``report.pdf`` (and ``report_*.png`` with ``png``).
         """
-        from ._io import atomic_folder, write_json
-        from .maps import write_map
+        from ..io.atomic import atomic_folder, write_json
+        from ..io.maps import write_map
 
         folder = Path(folder)
         with atomic_folder(folder, overwrite=overwrite) as tmp:
@@ -266,7 +267,7 @@ def plain_table(table: QTable):
 
 
 def _write_table(table: QTable, path) -> None:
-    from ._io import atomic_path
+    from ..io.atomic import atomic_path
 
     out = plain_table(table)
     out.meta["comment"] = ["written by tiltedring; conventions in fit.json",

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .candidates import gather_rings
+from ..fitting.candidates import gather_rings
 from .flows import FlowTest, fit_flows
 from .harmonics import HARMONIC_NAMES, ring_harmonics
 

@@ -21,8 +21,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from .candidates import gather_rings
-from .leastsq import weighted_least_squares
+
+from ..fitting.candidates import gather_rings
+from ..fitting.leastsq import weighted_least_squares
 
 __all__ = ["HARMONIC_NAMES", "NON_CIRCULAR", "ring_harmonics"]
 

@@ -25,8 +25,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .geometry import centre_angle, wrap_angle
-from .leastsq import weighted_least_squares
+from ..fitting.geometry import centre_angle, wrap_angle
+from ..fitting.leastsq import weighted_least_squares
 
 __all__ = ["WarpTest", "GeometryProfile", "geometry_profile", "tilt_and_line_of_nodes", "disc_normal"]
 

@@ -29,8 +29,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .candidates import gather_rings
-from .leastsq import weighted_least_squares
+from ..fitting.candidates import gather_rings
+from ..fitting.leastsq import weighted_least_squares
 
 __all__ = ["FlowTest", "fit_flows", "MODELS"]
 

@@ -48,7 +48,7 @@ class RingFitOptions:
     geometry_updates: int = 10
 
     def __post_init__(self):
-        from .errors import InputError
+        from ..errors import InputError
 
         if self.weighting not in WEIGHTINGS:
             raise InputError(f"weighting {self.weighting!r} unknown; choose one of {', '.join(WEIGHTINGS)}")

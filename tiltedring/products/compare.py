@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 from astropy.table import QTable, Table
 
-from .errors import InputError
-from .geometry import disc_coordinates
-from .maps import _velocity_factor, load_image, read_velocity_map, regrid
+from ..errors import InputError
+from ..fitting.geometry import disc_coordinates
+from ..io.maps import _velocity_factor, load_image, read_velocity_map, regrid
 
 __all__ = ["MapComparison", "compare_maps"]
 
@@ -41,8 +41,8 @@ class MapComparison:
 
     def write(self, folder, overwrite: bool = False) -> Path:
         """``difference_<k>.fits``, ``statistics.ecsv`` and ``comparison.png`` into ``folder``."""
-        from ._io import atomic_folder
-        from .maps import write_map
+        from ..io.atomic import atomic_folder
+        from ..io.maps import write_map
         from .result import plain_table
 
         with atomic_folder(folder, overwrite=overwrite) as tmp:

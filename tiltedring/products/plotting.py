@@ -54,7 +54,7 @@ def _value(column):
 
 
 def _ellipse_points(result, k, n=181):
-    from .geometry import sky_from_disc
+    from ..fitting.geometry import sky_from_disc
 
     t = result.rings
     az = np.linspace(0, 360, n)
@@ -337,7 +337,7 @@ def write_report(result, path, png_folder=None) -> list:
     plt = _plt()
     from matplotlib.backends.backend_pdf import PdfPages
 
-    from ._io import atomic_path
+    from ..io.atomic import atomic_path
 
     pages = [("summary", _summary_page(result, plt)), ("maps", plot_maps(result))]
     fig = plt.figure(figsize=(PAGE, PAGE * 0.8), layout="constrained")

@@ -52,7 +52,7 @@ def atomic_folder(folder, overwrite: bool = False):
     """
     folder = Path(folder)
     if folder.exists() and any(folder.iterdir()) and not overwrite:
-        from .errors import InputError
+        from ..errors import InputError
 
         raise InputError(
             f"output folder {folder} already exists and is not empty; "

@@ -26,7 +26,7 @@ from astropy import units as u
 from astropy.io import fits
 from astropy.wcs import WCS, FITSFixedWarning
 
-from .errors import FitCaution, InputError
+from ..errors import FitCaution, InputError
 
 __all__ = ["Beam", "VelocityMap", "read_velocity_map", "load_image", "parse_velocity_unit"]
 
@@ -440,7 +440,7 @@ def read_velocity_map(
 
 def write_map(path, data: np.ndarray, vmap: VelocityMap, bunit: str = "km/s", extra: dict | None = None) -> None:
     """Write a map on ``vmap``'s grid as FITS, atomically (temporary name, then rename)."""
-    from ._io import atomic_path
+    from .atomic import atomic_path
 
     hdr = vmap.output_header(bunit)
     for key, value in (extra or {}).items():

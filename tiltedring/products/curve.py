@@ -30,8 +30,8 @@ from astropy import constants as const
 from astropy import units as u
 from astropy.table import QTable
 
-from .errors import InputError
-from .geometry import disc_coordinates
+from ..errors import InputError
+from ..fitting.geometry import disc_coordinates
 
 __all__ = ["RotationCurve", "parse_distance", "asymmetric_drift", "ring_statistic"]
 
@@ -168,7 +168,7 @@ class RotationCurve:
 
     def write(self, path) -> None:
         """Write ``curve.ecsv`` atomically, with ``meta`` in the header."""
-        from ._io import atomic_path
+        from ..io.atomic import atomic_path
         from .result import plain_table
 
         out = plain_table(self.table)

@@ -24,98 +24,28 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import replace
 
 import numpy as np
 from astropy import units as u
 
-from . import flags as ringflags
-from .candidates import SortedPixels
-from .engine import RingFitOptions, fit_rings
-from .errors import FitCaution, InputError
-from .first_guess import first_guess, guess_rotation
-from .geometry import centre_angle, disc_coordinates, wrap_angle
-from .kinematics import PARAMETERS, UNITS, model_field
-from .maps import VelocityMap
-from .resampling import resample
-from .rings import RingLayout, parse_width
-from .warp import geometry_profile
+from ..diagnostics import flags as ringflags
+from ..diagnostics.warp import geometry_profile
+from ..errors import FitCaution, InputError
+from ..fitting.candidates import SortedPixels
+from ..fitting.engine import fit_rings
+from ..fitting.first_guess import first_guess, guess_rotation
+from ..fitting.geometry import centre_angle, disc_coordinates, wrap_angle
+from ..fitting.kinematics import PARAMETERS, UNITS, model_field
+from ..fitting.resampling import resample
+from ..fitting.rings import RingLayout, parse_width
+from ..io.maps import VelocityMap
+from .options import FitOptions
 
 __all__ = ["FitOptions", "fit_velocity_map"]
 
+
 _INDEX = {name: k for k, name in enumerate(PARAMETERS)}
-
-
-@dataclass
-class FitOptions:
-    """Everything that steers a fit. Lengths accept numbers (arcsec) or strings like ``4pix``.
-
-    ring_width: ring width (default one beam FWHM, or two pixels without a beam).
-    spacing: ``uniform`` or ``logarithmic`` (first ring ``ring_width`` wide, growing by ``growth``).
-    ring_edges: explicit ring edges in arcsec (overrides width and spacing).
-    first_radius, max_radius: the radial range (default 0 to the edge of the valid data).
-    weighting, exclusion_wedge, side, clip: see :class:`.engine.RingFitOptions`.
-    fixed: parameter names held fixed in every stage (at ``initial`` or the first guess).
-    initial: starting values by parameter name (``x_center``/``y_center`` in pixels, or
-    ``ra_center``/``dec_center`` in deg; ``v_rotation`` sets the first-guess flat speed).
-    fit_radial: also fit v_radial per ring.
-    low_inclination: below this inclination (deg) results carry the low-inclination flag.
-    """
-
-    ring_width: object = None
-    spacing: str = "uniform"
-    growth: float = 1.2
-    ring_edges: tuple | None = None
-    first_radius: object = 0.0
-    max_radius: object = None
-    weighting: str = "cos"
-    exclusion_wedge: float = 15.0
-    side: str = "both"
-    clip: float | None = None
-    fixed: tuple = ()
-    initial: dict = field(default_factory=dict)
-    fit_radial: bool = False
-    seed: int = 0
-    low_inclination: float = 30.0
-    min_beams_per_ring: float = 4.0
-    min_coverage: float = 0.5
-    diagnostics: bool = True
-    bar_range: tuple | None = None
-    beam_correction: bool = True
-    resamples: int = 20
-    quiet: bool = True
-
-    def __post_init__(self):
-        self.fixed = tuple(self.fixed)
-        unknown = set(self.fixed) - set(PARAMETERS)
-        if unknown:
-            raise InputError(f"cannot fix unknown parameter(s) {sorted(unknown)}; choose from {', '.join(PARAMETERS)}")
-        known = set(PARAMETERS) | {"ra_center", "dec_center"}
-        bad = set(self.initial) - known
-        if bad:
-            raise InputError(f"unknown initial value(s) {sorted(bad)}; choose from {', '.join(sorted(known))}")
-        if self.spacing not in ("uniform", "logarithmic"):
-            raise InputError(f"ring spacing {self.spacing!r} unknown; choose uniform or logarithmic")
-        self.ring_options()  # validates weighting, wedge, side, clip
-
-    def ring_options(self, side: str | None = None) -> RingFitOptions:
-        return RingFitOptions(weighting=self.weighting, exclusion_wedge=self.exclusion_wedge,
-                              side=side or self.side, clip=self.clip)
-
-    @classmethod
-    def from_mapping(cls, values: dict) -> "FitOptions":
-        """From a dict such as a TOML run file's ``[fit]`` table (dashes or underscores)."""
-        clean = {str(k).replace("-", "_"): v for k, v in values.items()}
-        names = {f for f in cls.__dataclass_fields__}
-        unknown = set(clean) - names
-        if unknown:
-            raise InputError(f"unknown fit option(s) {sorted(unknown)}; known: {', '.join(sorted(names))}")
-        if clean.get("ring_edges") is not None:
-            clean["ring_edges"] = tuple(clean["ring_edges"])
-        return cls(**clean)
-
-    def to_dict(self) -> dict:
-        return asdict(self)
 
 
 # --------------------------------------------------------------------------- helpers
@@ -319,7 +249,7 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
         options = FitOptions(**option_values)
     elif option_values:
         raise TypeError("give either a FitOptions or keyword options, not both")
-    from .binning import check_memory
+    from ..io.binning import check_memory
 
     check_memory(vmap)
     result = _fit_once(vmap, options)
@@ -374,7 +304,7 @@ def compare_radial(circular, radial, pixels_per_beam: float, min_delta_bic: floa
 
 def _fit_once(vmap: VelocityMap, options: FitOptions):
     """One full staged fit (module docstring) with the given options."""
-    from .result import FitResult, stage_table
+    from ..products.result import FitResult, stage_table
 
     cautions = list(vmap.notes)
     initial = _resolve_initial(vmap, options)
@@ -474,7 +404,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     if options.diagnostics:
         # Rings whose velocities are not circular even at their own best geometry (bars, streaming) would
         # drag the disc's geometry and fake a warp: they take no part in the geometry decision.
-        from .diagnostics import diagnose
+        from ..diagnostics.diagnose import diagnose
 
         own = {"x_center": par_b[:, _INDEX["x_center"]], "y_center": par_b[:, _INDEX["y_center"]],
                "position_angle": par_b[:, kp], "inclination": par_b[:, ki]}
@@ -575,7 +505,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
             "method": "noise fields with the power spectrum and rms of the residual map, added to the model and "
                       "refitted to first order about the data's fit (stage centred geometry and stage final speeds)"}
     _finish_velocity_errors(final, side_sols, options)
-    from .result import add_sky_centre
+    from ..products.result import add_sky_centre
 
     add_sky_centre(final, vmap)
     final["warp_tilt"] = profile.tilt * u.deg
@@ -596,7 +526,7 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
 
 def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
     """Harmonics, flow models and asymmetry at the final geometry; adds columns and flags to ``final``."""
-    from .diagnostics import asymmetry_summary, diagnose
+    from ..diagnostics.diagnose import asymmetry_summary, diagnose
 
     rings = {name: np.asarray(final[name].value, float) for name in ("x_center", "y_center", "position_angle",
                                                                      "inclination")}
@@ -622,7 +552,7 @@ def _fit_response(vmap, pixels, layout, opts, sols_b, free_b, sols_c, free_c, er
                   adopted):
     """:class:`.response.FitResponse` of stage ``final`` speeds and, for each name in ``constant``, the
     error-weighted mean of stage ``centred`` over the rings ``used`` (weights from the data's errors)."""
-    from .response import FitResponse
+    from ..fitting.response import FitResponse
 
     weights = {}
     for name in constant:
@@ -644,7 +574,7 @@ def _correct_for_beam(vmap, layout, response, starts_c):
     What the data gave is reproduced by the fit (``response``) of the smeared model of a trial disc,
     and the trial is corrected until they agree (:func:`.smearing.correct_beam_smearing`).
     """
-    from .smearing import BeamKernel, correct_beam_smearing
+    from ..fitting.smearing import BeamKernel, correct_beam_smearing
 
     observed = response.observed()
     constant = [n for n in observed if n != "v_rotation"]

@@ -16,8 +16,8 @@ from __future__ import annotations
 import numpy as np
 from scipy.optimize import least_squares
 
+from ..io.maps import VelocityMap
 from .geometry import disc_coordinates
-from .maps import VelocityMap
 
 __all__ = ["first_guess", "FIRST_GUESS_PARAMETERS"]
 

@@ -25,7 +25,7 @@ from dataclasses import replace
 
 import numpy as np
 
-from .errors import InputError
+from ..errors import InputError
 from .maps import VelocityMap, sky_jacobian_from_wcs
 
 __all__ = ["bin_map", "memory_estimate", "available_memory", "check_memory"]

@@ -1,0 +1,1 @@
+"""Reading maps into :class:`.maps.VelocityMap`, binning, and atomic writing of outputs."""
