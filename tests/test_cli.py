@@ -76,14 +76,14 @@ def test_bad_input_exit_code_and_message(tmp_path, capsys):
 
 def test_options_from_run_file_and_command_line(tmp_path, demo_fields):
     cfg = tmp_path / "run.toml"
-    cfg.write_text('[fit]\nring_width = "6pix"\nweighting = "cos2"\n[fit.initial]\nv_systemic = 1450.0\n')
+    cfg.write_text('[fit]\nring_width = "6pix"\nazimuth_weight = "cos-squared"\n[fit.initial]\nv_systemic = 1450.0\n')
     out = tmp_path / "o"
-    code = main(["fit", str(demo_fields / "ashgrove_velocity.fits"), "--config", str(cfg), "--weighting", "uniform",
+    code = main(["fit", str(demo_fields / "ashgrove_velocity.fits"), "--config", str(cfg), "--azimuth-weight", "none",
                  "--fix", "v_systemic", "--out", str(out), "-q"])
     assert code == 0
     record = json.loads((out / "fit.json").read_text())
     assert record["options"]["ring_width"] == "6pix"
-    assert record["options"]["weighting"] == "uniform"  # the command line wins
+    assert record["options"]["azimuth_weight"] == "none"  # the command line wins
     rings = Table.read(out / "rings.ecsv")
     np.testing.assert_allclose(np.diff(rings["radius"]), 12.0)
     np.testing.assert_allclose(rings["v_systemic"], 1450.0)

@@ -30,25 +30,25 @@ def test_analytic_jacobian_matches_central_differences():
         np.testing.assert_allclose(d[:, k], fd, atol=1e-5 * max(1.0, np.abs(fd).max()))
 
 
-@pytest.mark.parametrize("weighting", ["uniform", "cos", "cos2"])
-def test_exact_model_recovered_from_offset_start(weighting):
+@pytest.mark.parametrize("azimuth_weight", ["none", "abs-cos", "cos-squared"])
+def test_exact_model_recovered_from_offset_start(azimuth_weight):
     truth = np.array([60.3, 58.8, 1200.0, 215.0, 62.0, 180.0, 0.0])
     x, y, v = _ring_pixels(truth, 0, 0)
     start = truth + np.array([1.5, -1.2, 8.0, -7.0, 6.0, -30.0, 0.0])
     free = np.array([True] * 6 + [False])
-    sol = fit_ring(x, y, v, np.ones_like(v), start, free, JAC, 20.0, 30.0, RingFitOptions(weighting=weighting))
+    sol = fit_ring(x, y, v, np.ones_like(v), start, free, JAC, 20.0, 30.0, RingFitOptions(azimuth_weight=azimuth_weight))
     assert sol.converged
     np.testing.assert_allclose(sol.params[:6], truth[:6], atol=1e-4)
 
 
-def test_sides_and_wedge_select_pixels():
+def test_halves_and_minor_axis_gap_select_pixels():
     truth = np.array([60.0, 60.0, 0.0, 30.0, 50.0, 100.0, 0.0])
     x, y, v = _ring_pixels(truth, 0, 0)
     free = np.array([False] * 5 + [True, False])
-    both = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(exclusion_wedge=0))
-    rec = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(side="receding",
-                                                                                        exclusion_wedge=0))
-    wedge = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(exclusion_wedge=30))
+    both = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(minor_axis_gap=0))
+    rec = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(half="receding",
+                                                                                        minor_axis_gap=0))
+    wedge = fit_ring(x, y, v, np.ones_like(v), truth, free, JAC, 20.0, 30.0, RingFitOptions(minor_axis_gap=30))
     assert abs(rec.n_pixels - both.n_pixels / 2) < 0.1 * both.n_pixels
     assert wedge.n_pixels < both.n_pixels
     assert rec.params[5] == pytest.approx(100.0) and wedge.params[5] == pytest.approx(100.0)
@@ -76,10 +76,10 @@ def test_too_few_pixels_returns_unfitted_ring():
 
 
 def test_bad_options_are_explained():
-    with pytest.raises(InputError, match="weighting"):
-        RingFitOptions(weighting="sine")
-    with pytest.raises(InputError, match="side"):
-        RingFitOptions(side="left")
+    with pytest.raises(InputError, match="azimuth weight"):
+        RingFitOptions(azimuth_weight="sine")
+    with pytest.raises(InputError, match="half"):
+        RingFitOptions(half="left")
 
 
 def test_sign_of_v_rotation_is_kept_when_the_position_angle_is_held():

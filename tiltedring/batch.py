@@ -3,7 +3,7 @@
 The manifest (CSV or ECSV) has one galaxy per row: a required ``velocity_map`` column (a path
 relative to the manifest's folder) and optional ``name``, ``error_map``, ``intensity_map``,
 ``dispersion_map``, ``distance``, ``redshift`` and any fit option by its name (``ring_width``,
-``weighting``...); shared options come from the caller (command line or TOML run file), per-row
+``azimuth_weight``...); shared options come from the caller (command line or TOML run file), per-row
 values win.
 
 Each galaxy is fitted exactly as ``tiltedring fit`` would and written into ``OUT/<name>/``

@@ -17,7 +17,7 @@ FIT_EXAMPLES = """examples:
   tiltedring fit demo_fields/ashgrove_velocity.fits --out ashgrove_fit
   tiltedring fit map.fits --intensity-map mom0.fits --error-map emap.fits --ring-width 0.5beam --out fit1
   tiltedring fit map.fits --ring-width 4pix --spacing logarithmic --max-radius 3arcmin --out fit2
-  tiltedring fit map.fits --inclination 62 --fix inclination --side receding --out fit3
+  tiltedring fit map.fits --inclination 62 --fix inclination --half receding --out fit3
   tiltedring fit map.fits --config run.toml --out fit4
 
 A TOML run file holds the same options (underscores or dashes) in a [fit] table, starting
@@ -27,7 +27,7 @@ values in [fit.initial], and input maps in [inputs]:
   intensity_map = "mom0.fits"
   [fit]
   ring_width = "0.5beam"
-  weighting = "cos2"
+  azimuth_weight = "cos-squared"
   fixed = ["v_systemic"]
   [fit.initial]
   v_systemic = 1450.0
@@ -77,10 +77,13 @@ def _fit_parser(sub):
     g.add_argument("--first-radius", help="inner edge of the first ring (default 0)")
     g.add_argument("--max-radius", help="outer edge of the last ring (default: edge of the valid data)")
     g = p.add_argument_group("fitting")
-    g.add_argument("--weighting", choices=("uniform", "cos", "cos2"), help="angular weight (default cos)")
-    g.add_argument("--wedge", type=float, dest="exclusion_wedge",
-                   help="half-opening in deg of the excluded wedge about the minor axis (default 15)")
-    g.add_argument("--side", choices=("both", "approaching", "receding"), help="which half of the disc to fit")
+    g.add_argument("--azimuth-weight", choices=("none", "abs-cos", "cos-squared"),
+                   help="weight of a pixel by its disc azimuth theta from the major axis: none, |cos theta| "
+                        "(abs-cos, the default) or cos^2 theta")
+    g.add_argument("--minor-axis-gap", type=float,
+                   help="half-opening in deg of the sector about the minor axis left out of the fit (default 15)")
+    g.add_argument("--half", choices=("whole", "approaching", "receding"),
+                   help="fit the whole disc (default) or only its approaching or receding half")
     g.add_argument("--clip", type=float, help="clip pixels beyond this many robust sigma and refit")
     g.add_argument("--fix", action="append", default=None, metavar="NAME[,NAME]",
                    help="hold parameters fixed: x_center y_center v_systemic position_angle inclination "
@@ -349,8 +352,8 @@ def _gather(args) -> tuple:
             inputs[key] = getattr(args, key)
     fit = {k.replace("-", "_"): v for k, v in config.get("fit", {}).items()}
     fit["initial"] = dict(fit.get("initial", {}))
-    for key in ("ring_width", "spacing", "growth", "first_radius", "max_radius", "weighting", "exclusion_wedge",
-                "side", "clip", "fit_radial", "low_inclination", "seed", "resamples", "beam_correction"):
+    for key in ("ring_width", "spacing", "growth", "first_radius", "max_radius", "azimuth_weight", "minor_axis_gap",
+                "half", "clip", "fit_radial", "low_inclination", "seed", "resamples", "beam_correction"):
         if getattr(args, key) is not None:
             fit[key] = getattr(args, key)
     if args.ring_edges is not None:

@@ -5,7 +5,7 @@ For the pixels whose disc radius falls inside the ring, minimise::
     chi^2 = sum_k  w_k [v_k - v_los(p; x_k, y_k)]^2,    w_k = W(theta_k) / sigma_k^2
 
 over any subset of the seven ring parameters, with the angular weight W = 1, |cos theta| or
-cos^2 theta (Begeman 1989) and pixels within an exclusion wedge about the minor axis dropped.
+cos^2 theta (Begeman 1989) and pixels within a gap of the given half-opening about the minor axis dropped.
 The minimiser is Levenberg-Marquardt with the analytic derivatives of :mod:`.kinematics`, run as
 compiled code (:mod:`.ring_solver`); this module is its interface. Pixel membership depends on the
 geometry, so it is re-selected after each geometry update (at most ``geometry_updates`` times, until
@@ -24,25 +24,25 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "fit_rings", "WEIGHTINGS", "SIDES"]
+__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "fit_rings", "AZIMUTH_WEIGHTS", "HALVES"]
 
-WEIGHTINGS = {"uniform": 0, "cos": 1, "cos2": 2}
-SIDES = ("both", "approaching", "receding")
+AZIMUTH_WEIGHTS = {"none": 0, "abs-cos": 1, "cos-squared": 2}  # name -> power p of |cos theta|^p
+HALVES = ("whole", "approaching", "receding")
 
 
 @dataclass(frozen=True)
 class RingFitOptions:
     """How a ring is fitted.
 
-    weighting: ``uniform``, ``cos`` (|cos theta|) or ``cos2`` (cos^2 theta).
-    exclusion_wedge: half-opening in deg of the wedge about the minor axis whose pixels are dropped.
-    side: ``both``, ``approaching`` (cos theta < 0) or ``receding`` (cos theta > 0).
+    azimuth_weight: ``none`` (1), ``abs-cos`` (|cos theta|) or ``cos-squared`` (cos^2 theta).
+    minor_axis_gap: half-opening in deg of the sector about the minor axis whose pixels are dropped.
+    half: ``whole``, ``approaching`` (cos theta < 0) or ``receding`` (cos theta > 0) half of the disc.
     clip: drop pixels whose residual exceeds ``clip`` robust standard deviations and refit (None: off).
     """
 
-    weighting: str = "cos"
-    exclusion_wedge: float = 15.0
-    side: str = "both"
+    azimuth_weight: str = "abs-cos"
+    minor_axis_gap: float = 15.0
+    half: str = "whole"
     clip: float | None = None
     max_iterations: int = 40
     geometry_updates: int = 10
@@ -50,12 +50,12 @@ class RingFitOptions:
     def __post_init__(self):
         from ..errors import InputError
 
-        if self.weighting not in WEIGHTINGS:
-            raise InputError(f"weighting {self.weighting!r} unknown; choose one of {', '.join(WEIGHTINGS)}")
-        if self.side not in SIDES:
-            raise InputError(f"side {self.side!r} unknown; choose one of {', '.join(SIDES)}")
-        if not 0 <= self.exclusion_wedge < 90:
-            raise InputError(f"exclusion wedge must be in [0, 90) deg, got {self.exclusion_wedge}")
+        if self.azimuth_weight not in AZIMUTH_WEIGHTS:
+            raise InputError(f"azimuth weight {self.azimuth_weight!r} unknown; choose one of {', '.join(AZIMUTH_WEIGHTS)}")
+        if self.half not in HALVES:
+            raise InputError(f"half {self.half!r} unknown; choose one of {', '.join(HALVES)}")
+        if not 0 <= self.minor_axis_gap < 90:
+            raise InputError(f"minor-axis gap must be in [0, 90) deg, got {self.minor_axis_gap}")
         if self.clip is not None and self.clip <= 0:
             raise InputError(f"clip level must be positive, got {self.clip}")
 
@@ -102,8 +102,8 @@ def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, 
     shared = (*arrays, order_radius, float(margin), np.ascontiguousarray(bounds[:, 0]),
               np.ascontiguousarray(bounds[:, 1]), starts, free,
               np.ascontiguousarray(sky_jacobian, float), np.ascontiguousarray(np.broadcast_to(inner, m), float),
-              np.ascontiguousarray(np.broadcast_to(outer, m), float), WEIGHTINGS[options.weighting],
-              float(np.sin(np.radians(options.exclusion_wedge))), SIDES.index(options.side), float(options.clip or 0.0),
+              np.ascontiguousarray(np.broadcast_to(outer, m), float), AZIMUTH_WEIGHTS[options.azimuth_weight],
+              float(np.sin(np.radians(options.minor_axis_gap))), HALVES.index(options.half), float(options.clip or 0.0),
               options.max_iterations, options.geometry_updates, int(min_pixels), float(pixels_per_beam),
               params, errors, stats)
 

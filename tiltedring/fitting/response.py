@@ -33,13 +33,13 @@ _INDEX = {name: k for k, name in enumerate(PARAMETERS)}
 def _ring_designs(pixels, sky_jacobian, params, ok, inner, outer, options):
     """Yield, ring by ring, (ring, pixel indices, sqrt-weights, d v_los / d p) at ``params`` as the ring fit
     selects them (usable rings only; one ring's Jacobian in memory at a time)."""
-    from .engine import SIDES, WEIGHTINGS
+    from .engine import AZIMUTH_WEIGHTS, HALVES
     from .ring_solver import angular_weights
 
     ordered = SortedPixels(pixels, sky_jacobian, params, inner, outer)
     sigma = ordered.pixels[3]
-    rule = (WEIGHTINGS[options.weighting], float(np.sin(np.radians(options.exclusion_wedge))),
-            SIDES.index(options.side))
+    rule = (AZIMUTH_WEIGHTS[options.azimuth_weight], float(np.sin(np.radians(options.minor_axis_gap))),
+            HALVES.index(options.half))
     for k, (at, cos_t, _) in enumerate(ring_members(ordered, params)):
         if not ok[k]:
             continue

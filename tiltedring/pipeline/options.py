@@ -19,7 +19,7 @@ class FitOptions:
     spacing: ``uniform`` or ``logarithmic`` (first ring ``ring_width`` wide, growing by ``growth``).
     ring_edges: explicit ring edges in arcsec (overrides width and spacing).
     first_radius, max_radius: the radial range (default 0 to the edge of the valid data).
-    weighting, exclusion_wedge, side, clip: see :class:`.engine.RingFitOptions`.
+    azimuth_weight, minor_axis_gap, half, clip: see :class:`..fitting.engine.RingFitOptions`.
     fixed: parameter names held fixed in every stage (at ``initial`` or the first guess).
     initial: starting values by parameter name (``x_center``/``y_center`` in pixels, or
     ``ra_center``/``dec_center`` in deg; ``v_rotation`` sets the first-guess flat speed).
@@ -33,9 +33,9 @@ class FitOptions:
     ring_edges: tuple | None = None
     first_radius: object = 0.0
     max_radius: object = None
-    weighting: str = "cos"
-    exclusion_wedge: float = 15.0
-    side: str = "both"
+    azimuth_weight: str = "abs-cos"
+    minor_axis_gap: float = 15.0
+    half: str = "whole"
     clip: float | None = None
     fixed: tuple = ()
     initial: dict = field(default_factory=dict)
@@ -61,11 +61,11 @@ class FitOptions:
             raise InputError(f"unknown initial value(s) {sorted(bad)}; choose from {', '.join(sorted(known))}")
         if self.spacing not in ("uniform", "logarithmic"):
             raise InputError(f"ring spacing {self.spacing!r} unknown; choose uniform or logarithmic")
-        self.ring_options()  # validates weighting, wedge, side, clip
+        self.ring_options()  # validates azimuth_weight, minor_axis_gap, half, clip
 
-    def ring_options(self, side: str | None = None) -> RingFitOptions:
-        return RingFitOptions(weighting=self.weighting, exclusion_wedge=self.exclusion_wedge,
-                              side=side or self.side, clip=self.clip)
+    def ring_options(self, half: str | None = None) -> RingFitOptions:
+        return RingFitOptions(azimuth_weight=self.azimuth_weight, minor_axis_gap=self.minor_axis_gap,
+                              half=half or self.half, clip=self.clip)
 
     @classmethod
     def from_mapping(cls, values: dict) -> "FitOptions":

@@ -435,9 +435,9 @@ def _fit_once(vmap: VelocityMap, options: FitOptions):
     sorted_c = SortedPixels(pixels, vmap.sky_jacobian, starts_c, layout.inner, layout.outer)
     sols_c = _run_stage(vmap, sorted_c, layout, starts_c, free_c, opts)
     side_sols = {}
-    if options.side == "both" and free_c.any():
-        for side in ("approaching", "receding"):
-            side_sols[side] = _run_stage(vmap, sorted_c, layout, starts_c, free_c, options.ring_options(side))
+    if options.half == "whole" and free_c.any():
+        for half in ("approaching", "receding"):
+            side_sols[half] = _run_stage(vmap, sorted_c, layout, starts_c, free_c, options.ring_options(half))
     flags_c = [_ring_flags(s, options, vmap, min_pixels, r) for s, r in zip(sols_c, layout.radii)]
     clock.lap("stage final")
     stages["final"] = (sols_c, flags_c)
