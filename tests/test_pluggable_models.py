@@ -12,7 +12,6 @@ import json
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import SkyCoord
 from astropy.table import QTable, Table
 
 import tiltedring as tr
