@@ -98,6 +98,7 @@ class VelocityMap:
     intensity_unit: str | None = None
     source: str = "array"
     notes: list = field(default_factory=list)
+    object_name: str | None = None  # the header's OBJECT card, when there is one
 
     @property
     def shape(self) -> tuple:
@@ -415,7 +416,8 @@ def read_velocity_map(
     if isinstance(beam, str):
         beam = Beam.parse(beam)
     beam = beam if beam is not None else Beam.from_header(header)
-    vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes)
+    vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes,
+                       object_name=str(header.get("OBJECT", "")).strip() or None)
 
     if error is not None:
         edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
