@@ -14,15 +14,26 @@ selection reaches either end of its slice is looked at again through a wider one
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 
 from .geometry import centre_angle, disc_coordinates
 from .parameters import CENTRE, GEOMETRY
 from .parameters import Parameter as P
 
-__all__ = ["SortedPixels", "ring_members", "gather_rings"]
+__all__ = ["Pixels", "SortedPixels", "ring_members", "gather_rings"]
 
 _ENOUGH = max(GEOMETRY) + 1  # a ring table needs the columns up to the last geometry parameter
+
+
+class Pixels(NamedTuple):
+    """Valid pixels of a map: positions (0-based pixels), velocities and their errors (km/s)."""
+
+    x: np.ndarray
+    y: np.ndarray
+    v: np.ndarray
+    sigma: np.ndarray
 
 
 class SortedPixels:
@@ -45,7 +56,7 @@ class SortedPixels:
                                         ref[P.position_angle], ref[P.inclination])
         self.order = np.argsort(radius)
         self.radius = radius[self.order]
-        self.pixels = tuple(np.ascontiguousarray(np.asarray(a)[self.order]) for a in pixels)
+        self.pixels = Pixels(*(np.ascontiguousarray(np.asarray(a)[self.order]) for a in pixels))
         d_pa = np.radians(np.abs(centre_angle(pa, ref[P.position_angle]) - ref[P.position_angle]))
         cos_ref, cos_k = np.cos(np.radians(ref[P.inclination])), np.cos(np.radians(inc))
         self._stretch = np.maximum(cos_ref, cos_k) / np.maximum(np.minimum(cos_ref, cos_k), 1e-3)
