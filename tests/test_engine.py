@@ -42,7 +42,8 @@ def test_exact_model_recovered_from_offset_start(azimuth_weight):
     start = truth + vector({"x_center": 1.5, "y_center": -1.2, "v_systemic": 8.0, "position_angle": -7.0,
                             "inclination": 6.0, "v_rotation": -30.0})
     free = ~mask([P.v_radial])
-    sol = fit_ring(x, y, v, np.ones_like(v), start, free, JAC, 20.0, 30.0, RingFitOptions(azimuth_weight=azimuth_weight))
+    options = RingFitOptions(azimuth_weight=azimuth_weight)
+    sol = fit_ring(x, y, v, np.ones_like(v), start, free, JAC, 20.0, 30.0, options)
     assert sol.converged
     np.testing.assert_allclose(sol.params[free], truth[free], atol=1e-4)
 

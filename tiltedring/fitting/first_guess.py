@@ -104,7 +104,8 @@ def first_guess(vmap: VelocityMap, initial: dict | None = None, fixed=(), seed: 
     best = None
     for inc in inclinations:
         vflat = initial.get("v_rotation", mom["half_range"] / max(np.sin(np.radians(inc)), 0.2))
-        start = dict(base, inclination=inc, v_flat=max(vflat, 5.0), r_turn=max(0.2 * mom["extent"], 2 * vmap.pixel_scale))
+        r_turn = max(0.2 * mom["extent"], 2 * vmap.pixel_scale)
+        start = dict(base, inclination=inc, v_flat=max(vflat, 5.0), r_turn=r_turn)
         q0 = np.array([start[name] for name in FIRST_GUESS_PARAMETERS])
         q, cost = _fit_arctan(q0, free, x[few], y[few], v[few], sigma[few], vmap.sky_jacobian, scale, vmap.pixel_scale)
         if best is None or cost < best[1]:
