@@ -8,6 +8,10 @@ Read a moment-1 map, fit it ring by ring, get the ring table, model and residual
     result.rings            # astropy QTable, one row per ring
     result.write("galaxy_fit")
 
+or run the whole job (read, bin, fit, curve, gas, report, write) as the command line does::
+
+    outcome = tr.run_job(tr.Job.from_values("galaxy_velocity.fits", {"distance": 9.5}), "galaxy_fit")
+
 Heavy parts are imported on first use so that ``import tiltedring`` stays quick.
 """
 
@@ -19,6 +23,7 @@ _EXPORTS = {
     "VelocityMap": "io.maps", "Beam": "io.maps", "read_velocity_map": "io.maps",
     "RingLayout": "fitting.rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
     "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
+    "Job": "jobs", "run_job": "jobs",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

@@ -9,15 +9,14 @@ never by bare position.
 
 Numba kernels read the members and the groups as compile-time constants. Their on-disk caches do
 not notice a change of this module, so the order must never change (a new parameter goes last,
-and the caches are then cleared).
+and the caches are then cleared). The module imports no numerics, so the command line can take
+the parameter names from here cheaply.
 """
 
 from __future__ import annotations
 
 from enum import IntEnum
 from typing import NamedTuple
-
-import numpy as np
 
 __all__ = ["Parameter", "PARAMETERS", "UNITS", "COUNT", "CENTRE", "CENTRE_AND_SYSTEMIC", "ORIENTATION",
            "GEOMETRY", "SPEEDS", "LINEAR", "mask", "vector", "ParameterColumns", "GuessParameter"]
@@ -59,21 +58,25 @@ SPEEDS = (Parameter.v_rotation, Parameter.v_radial)
 LINEAR = (Parameter.v_systemic, Parameter.v_rotation, Parameter.v_radial)
 
 
-def mask(members) -> np.ndarray:
+def mask(members):
     """Boolean vector over the parameters, True at ``members`` (members or names)."""
+    import numpy as np
+
     out = np.zeros(COUNT, bool)
     for member in members:
         out[Parameter[member] if isinstance(member, str) else member] = True
     return out
 
 
-def vector(values: dict, default: float = 0.0) -> np.ndarray:
-    """Parameter vector from a dict by name (missing names take ``default``)."""
+def vector(values: dict, default: float = 0.0):
+    """Parameter vector (a numpy array) from a dict by name (missing names take ``default``)."""
+    import numpy as np
+
     return np.array([float(values.get(p.name, default)) for p in Parameter])
 
 
 #: one array per parameter, by name (the compiled model builders take their ring tables in this form)
-ParameterColumns = NamedTuple("ParameterColumns", [(p.name, np.ndarray) for p in Parameter])
+ParameterColumns = NamedTuple("ParameterColumns", [(p.name, "numpy.ndarray") for p in Parameter])
 
 
 class GuessParameter(IntEnum):

@@ -15,9 +15,6 @@ from .state import Additions
 
 __all__ = ["diagnostics", "warp_columns", "non_circular_columns"]
 
-_KMS = u.km / u.s
-
-
 def warp_columns(state) -> tuple:
     """(columns, flags): tilt and line of nodes per ring, and ``warp`` beyond a detected onset."""
     profile, decision = state.geometry.profile, state.geometry
@@ -37,14 +34,7 @@ def non_circular_columns(state) -> tuple:
     rings = {p.name: np.asarray(table[p.name].value, float) for p in GEOMETRY}
     found, flags, summary = diagnose(state.inputs.pixels, vmap.sky_jacobian, rings, layout.inner, layout.outer,
                                      vmap.pixels_per_beam, bar_range=state.options.bar_range)
-    columns = {}
-    for name, values in found.items():
-        if name == "flow_model":
-            columns[name] = [str(v) for v in values]
-        elif name.startswith(("harmonic_c", "harmonic_s", "noncircular_amplitude", "noncircular_in_plane", "v_")):
-            columns[name] = np.asarray(values, float) * _KMS
-        else:
-            columns[name] = np.asarray(values, float)
+    columns = dict(found)  # each column carries its unit already
     if "v_rotation_approaching" in table.colnames:
         columns["v_rotation_difference"] = table["v_rotation_receding"] - table["v_rotation_approaching"]
         summary["asymmetry"] = asymmetry_summary(table["v_rotation_approaching"].value,
