@@ -118,8 +118,9 @@ MASS_EXAMPLES = """examples:
 The curve is the fit's curve.ecsv (run the fit with --distance so radii are in kpc), any table with
 radius (kpc), speed and error columns you name, or a SPARC *_rotmod.dat file (which carries its own
 baryonic curves). --components names a table of baryonic speed curves for M/L = 1 (columns v_gas with
-helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv,
-components_<model>.ecsv and massmodel.json.
+helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv
+(value, error and unit of each parameter), components_<model>.ecsv (kpc, km/s), massmodel.json and
+decomposition_<model>.png (the curve, each component, halo and total, residuals underneath).
 """
 
 
@@ -205,7 +206,8 @@ def run_massmodel(args) -> int:
             print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
         if all(r.parameters == {} for r in results.values()) and baryons.disc is None and baryons.gas is None:
             print("caution: no baryonic components given: the halo alone carries the curve")
-        print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, massmodel.json")
+        print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, decomposition_<model>.png, "
+              "massmodel.json")
     return EXIT_OK
 
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .plot_style import (COLUMN, COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, mark_outside, robust_limits,
+from .plot_style import (COLUMN, COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, TITLE_PT, mark_outside, robust_limits,
                          style_axes)
 
 __all__ = ["plot_major_axis_slice", "plot_minor_axis_slice", "plot_harmonics", "plot_warp", "plot_sides", "slice_samples"]
@@ -93,7 +93,7 @@ def _slice(result, ax, angle, title, width_beams, intrinsic: bool):
     mark_outside(ax, s["offset"], s["data"], limits, colour=GREY)
     ax.set_xlabel("offset along the slice (arcsec)")
     ax.set_ylabel("line-of-sight velocity (km/s)")
-    ax.set_title(title, loc="left")
+    ax.set_title(title, loc="left", fontsize=TITLE_PT)
     _legend(ax, loc="upper left" if np.nanmean(_value(t["v_rotation"])) >= 0 else "lower left")
     style_axes(ax)
 

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .plot_style import COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, mark_outside, robust_limits, style_axes
+from .plot_style import COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, TITLE_PT, mark_outside, robust_limits, style_axes
 
 __all__ = ["plot_mass_model", "plot_comparison", "map_kind"]
 
@@ -56,7 +56,7 @@ def plot_mass_model(mass_result, axes=None):
     ax.set_ylabel("circular speed (km/s)")
     title = (f"{mass_result.model}: reduced \N{GREEK SMALL LETTER CHI}\N{SUPERSCRIPT TWO} = "
              f"{mass_result.reduced_chi2:.2f}, BIC = {mass_result.bic:.1f}")
-    ax.set_title(title, loc="left")
+    ax.set_title(title, loc="left", fontsize=TITLE_PT)
     ax.legend(fontsize=NOTE_PT, frameon=False, ncol=2, loc="lower right", handlelength=2.2)
     style_axes(ax)
     residual = v - np.asarray(c["v_model"], float)

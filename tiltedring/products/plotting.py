@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .plot_style import (COLUMN, COPPER, GREY, INK, LABEL_PT, NOTE_PT, SLATE, TEAL, mark_outside, panel_caption,
+from .plot_style import (COLUMN, COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, mark_outside, panel_caption,
                          robust_limits, style_axes)
 from .plot_kinematics import plot_harmonics, plot_major_axis_slice, plot_minor_axis_slice, plot_warp
 from .plot_products import plot_comparison, plot_mass_model
