@@ -1,5 +1,6 @@
-"""What the eye checks: the report as one document, comparison figures that show the rotation, the
-mass-model figure, and the command line's manners.
+"""What the eye checks: the report as one document, the comparison's refusal of maps that do not
+overlap (its figure is checked in test_compare_and_report.py), the mass-model figure, and the
+command line's manners.
 
 Checks against things outside the figure code: the PDF's own page boxes (parsed from the file),
 astropy's WCS and SkyCoord for the direction of north, astropy units for the tables, and the
@@ -119,54 +120,6 @@ def test_decisions_name_new_sections_and_fallbacks():
     assert "disagreed in x_center" in lines["centre and v_systemic"]
     assert lines["a later step"] == "detected: yes; something to read"
     assert plural(1, "galaxy") == "1 galaxy" and plural(2, "galaxy") == "2 galaxies" and plural(0, "ring") == "0 rings"
-
-
-def _panel_pixels(png, ax):
-    """RGB pixels of the PNG inside ``ax``'s drawn box (figure fraction -> pixel rows from the top)."""
-    h, w = png.shape[:2]
-    box = ax.get_position()
-    rows = slice(int((1 - box.y1) * h) + 2, int((1 - box.y0) * h) - 2)
-    cols = slice(int(box.x0 * w) + 2, int(box.x1 * w) - 2)
-    return png[rows, cols, :3]
-
-
-def test_compare_velocity_maps_on_two_grids_shows_the_rotation(tmp_path):
-    """One invented galaxy on a 2-arcsec north-up grid and a 3-arcsec grid rotated by 25 deg, both velocity
-    maps (v_sys 1450 km/s): each velocity panel must show an approaching (blue) and a receding (copper) half,
-    and the difference panel must not be one flat colour (on the old shared scale of +/-1500 km/s all three
-    were flat)."""
-    from dataclasses import replace
-
-    import matplotlib.image
-
-    from tiltedring.products.compare import compare_maps
-
-    truth = DiscTruth(name="Dunmere Disc", x_center=63.5, y_center=63.5)
-    a = make_field(truth, shape=(128, 128), pixel_scale=2.0, noise=2.0, seed=1)
-    b = make_field(replace(truth, x_center=44.5, y_center=44.5), shape=(90, 90), pixel_scale=3.0, noise=2.0, seed=2,
-                   rotation=25.0, velocity_unit="m/s")
-    pa, pb = tmp_path / "a.fits", tmp_path / "b.fits"
-    a.velocity_hdu.writeto(pa)
-    b.velocity_hdu.writeto(pb)
-    out = tmp_path / "cmp"
-    assert main(["compare", str(pa), str(pb), "--names", "fine,coarse", "--out", str(out), "-q"]) == 0
-    png = matplotlib.image.imread(out / "comparison.png")
-    layout = compare_maps([pa, pb], names=["fine", "coarse"]).plot()
-    layout.savefig(__import__("io").BytesIO(), dpi=130)  # the same layout, drawn, gives the panels' boxes
-    panels = [ax for ax in layout.axes if hasattr(ax, "coords")]
-    assert len(panels) == 3
-    for k, ax in enumerate(panels):
-        rgb = _panel_pixels(png, ax)
-        assert rgb.std(axis=(0, 1)).max() > 0.08, k  # not flat
-        if k < 2:  # velocity maps: both halves of the rotation are there
-            blue = (rgb[..., 2] - rgb[..., 0]) > 0.15
-            copper = (rgb[..., 0] - rgb[..., 2]) > 0.15
-            assert blue.mean() > 0.05 and copper.mean() > 0.05, k
-    stats = Table.read(out / "statistics.ecsv")
-    assert set(stats["difference"]) == {"coarse - fine"}
-    assert set(stats["map"]) == {"coarse"} and set(stats["reference"]) == {"fine"}
-    assert stats["rms"].unit == u.km / u.s
-    assert stats.meta["kinds"] == {"fine": "velocity", "coarse": "velocity"}
 
 
 def test_maps_that_do_not_overlap_are_refused(tmp_path, capsys):

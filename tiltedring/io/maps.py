@@ -362,7 +362,9 @@ def regrid(data, header, target: "VelocityMap", role, name, notes, flux: bool = 
 def _finite_check(data, role, name, notes) -> np.ndarray:
     inf = np.isinf(data)
     if inf.any():
-        msg = f"{role} {name} has {int(inf.sum())} infinite pixel(s); they are treated as blank"
+        n = int(inf.sum())
+        msg = (f"{role} {name} has {n} infinite pixel{'' if n == 1 else 's'}; "
+               f"{'it is' if n == 1 else 'they are'} treated as blank")
         notes.append(msg)
         warnings.warn(msg, FitCaution, stacklevel=3)
         data = np.where(inf, np.nan, data)
@@ -424,7 +426,8 @@ def read_velocity_map(
         bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
         if bad.any():
             raise InputError(
-                f"error map {ename} has {int(bad.sum())} zero or negative value(s) where the velocity map is "
+                f"error map {ename} has {int(bad.sum())} zero or negative value{'' if bad.sum() == 1 else 's'} where "
+                "the velocity map is "
                 "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
             )
         vmap.error = edata

@@ -27,6 +27,19 @@ def _axes(ax, figsize):
     return fig, fig.add_subplot(111)
 
 
+def _radial_panel(ax, size, ylabel, needed: str, table, missing: str):
+    """(figure, axes, whether ``needed`` is a column of ``table``): a styled panel against radius that
+    says ``missing`` in words when the column is absent."""
+    fig, ax = _axes(ax, size)
+    style_axes(ax)
+    ax.set_xlabel("radius (arcsec)")
+    ax.set_ylabel(ylabel)
+    if needed not in table.colnames:
+        ax.text(0.5, 0.5, missing, ha="center", va="center", transform=ax.transAxes, fontsize=NOTE_PT)
+        return fig, ax, False
+    return fig, ax, True
+
+
 def _legend(ax, **kwargs):
     options = dict(fontsize=NOTE_PT, frameon=False, handlelength=1.8, borderaxespad=0.3)
     options.update(kwargs)
@@ -126,14 +139,10 @@ _HARMONICS = (("s1", "o", SLATE), ("c2", "s", TEAL), ("s2", "D", "#5b7f3a"), ("c
 def plot_harmonics(result, ax=None):
     """Harmonic amplitudes against radius, in the disc plane (divided by sin i), with the non-circular
     total; the axis follows the bulk of the values (at least 0-15 km/s), far values sit on the top edge."""
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.8))
     t = result.rings
-    style_axes(ax)
-    ax.set_xlabel("radius (arcsec)")
-    ax.set_ylabel("amplitude in the disc plane (km/s)")
-    if "harmonic_s1" not in t.colnames:
-        ax.text(0.5, 0.5, "no diagnostics in this fit\n(run without --no-diagnostics)", ha="center", va="center",
-                transform=ax.transAxes, fontsize=NOTE_PT)
+    fig, ax, ok = _radial_panel(ax, (COLUMN, COLUMN * 0.8), "amplitude in the disc plane (km/s)", "harmonic_s1", t,
+                                "no diagnostics in this fit\n(run without --no-diagnostics)")
+    if not ok:
         return fig
     r = _value(t["radius"])
     sin_i = np.sin(np.radians(_value(t["inclination"])))
@@ -211,14 +220,10 @@ def plot_warp(result, ax=None):
 def plot_sides(result, ax=None):
     """Receding minus approaching v_rotation against radius with its error (formal and noise terms of
     both sides); rings flagged ``asymmetric`` drawn filled in copper."""
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.7))
     t = result.rings
-    style_axes(ax)
-    ax.set_xlabel("radius (arcsec)")
-    ax.set_ylabel("receding \N{MINUS SIGN} approaching (km/s)")
-    if "v_rotation_receding" not in t.colnames:
-        ax.text(0.5, 0.5, "the sides were not fitted apart", ha="center", va="center", transform=ax.transAxes,
-                fontsize=NOTE_PT)
+    fig, ax, ok = _radial_panel(ax, (COLUMN, COLUMN * 0.7), "receding \N{MINUS SIGN} approaching (km/s)",
+                                "v_rotation_receding", t, "the sides were not fitted apart")
+    if not ok:
         return fig
     r = _value(t["radius"])
     d = _value(t["v_rotation_receding"]) - _value(t["v_rotation_approaching"])

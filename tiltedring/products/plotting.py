@@ -51,6 +51,12 @@ def _value(column):
     return np.asarray(getattr(column, "value", column), float)
 
 
+def _median(column) -> float:
+    """Median of the finite values of ``column`` (NaN when there is none, e.g. the error of a held value)."""
+    v = _value(column)
+    return float(np.median(v[np.isfinite(v)])) if np.isfinite(v).any() else float("nan")
+
+
 def _legend(ax, **kwargs):
     options = dict(fontsize=NOTE_PT, frameon=False, handlelength=1.8, borderaxespad=0.3)
     options.update(kwargs)
@@ -204,19 +210,19 @@ def plot_rotation_curve(result, ax=None, components: bool = True):
         ax2 = None
     v, e = _value(t["v_rotation"]), np.abs(np.nan_to_num(_value(t["v_rotation_err"])))
     warned = _warned(t)
-    for sel, face, label in ((~warned, INK, "v_rotation"), (warned, "white", "v_rotation (flagged ring)")):
+    for sel, face, label in ((~warned, INK, "v_rotation"), (warned, "white", "flagged ring")):
         if sel.any():
             ax.errorbar(r[sel], v[sel], yerr=e[sel], ls="none", color=INK, marker="o", ms=3.5, mfc=face, lw=0.9,
                         capsize=1.5, label=label, zorder=5)
     ax.plot(r, v, color=INK, lw=0.7, zorder=4)
     extra = []
     if "v_rotation_smeared" in t.colnames:
-        ax.plot(r, _value(t["v_rotation_smeared"]), ls="--", color=GREY, lw=1.0, label="before beam correction")
+        ax.plot(r, _value(t["v_rotation_smeared"]), ls="--", color=GREY, lw=1.0, label="before beam corr.")
         extra.append(_value(t["v_rotation_smeared"]))
     for side, colour, marker in (("approaching", SLATE, "v"), ("receding", COPPER, "^")):
         if f"v_rotation_{side}" in t.colnames:
             y = _value(t[f"v_rotation_{side}"])
-            ax.plot(r, y, ls="none", marker=marker, ms=3, color=colour, label=f"{side} side")
+            ax.plot(r, y, ls="none", marker=marker, ms=3, color=colour, label=side)
             extra.append(y)
     limits = robust_limits(np.concatenate([v] + extra), e, include=[0.0], low=5, high=95, spread=0.15,
                            min_span=20.0)
@@ -225,7 +231,7 @@ def plot_rotation_curve(result, ax=None, components: bool = True):
     mark_outside(ax, r, v, limits)
     ax.set_xlim(0, _value(t["radius_outer"])[-1])
     ax.set_ylabel("rotation speed (km/s)")
-    _legend(ax, loc="lower right")
+    _legend(ax, loc="lower right", ncol=2, columnspacing=0.8, handlelength=1.5)
     style_axes(ax)
     if ax2 is not None:
         plot_error_budget(result, ax2)
@@ -250,12 +256,13 @@ def plot_error_budget(result, ax=None):
     total = _value(t["v_rotation_err"])
     ax.plot(r, total, color=INK, lw=1.4, label="total")
     limits = robust_limits(np.concatenate(drawn + [total]), include=[0.0], low=0, high=90, spread=0.3, min_span=2.0)
-    limits = (0.0, limits[1] * 1.45)  # head room for the legend
+    limits = (0.0, limits[1] * (1.45 if ax.figure.get_figwidth() * ax.get_position().width > 5.0 else 1.8))
     ax.set_ylim(*limits)
     mark_outside(ax, r, total, limits)
     ax.set_ylabel("error (km/s)")
     ax.set_xlabel("radius (arcsec)")
-    _legend(ax, ncol=len(drawn) + 1, loc="upper center", columnspacing=1.0, handlelength=2.2)
+    wide = ax.figure.get_figwidth() * ax.get_position().width > 5.0
+    _legend(ax, ncol=len(drawn) + 1 if wide else 3, loc="upper center", columnspacing=1.0, handlelength=2.2)
     style_axes(ax)
     return fig
 
@@ -275,9 +282,10 @@ def plot_centre(result, axes=None):
     ax_v, ax_c = axes
     t, free = result.rings, result.stages.get("free", result.rings)
     r = _value(free["radius"])
-    v0, v_err = float(np.nanmedian(_value(t["v_systemic"]))), float(np.nanmedian(_value(t["v_systemic_err"])))
+    v0, v_err = _median(t["v_systemic"]), _median(t["v_systemic_err"])
     v = _value(free["v_systemic"])
-    ax_v.axhspan(v0 - v_err, v0 + v_err, color="0.86", lw=0)
+    if np.isfinite(v_err):
+        ax_v.axhspan(v0 - v_err, v0 + v_err, color="0.86", lw=0)
     ax_v.axhline(v0, color=INK, lw=1.3, label="adopted")
     ax_v.errorbar(r, v, yerr=np.abs(np.nan_to_num(_value(free["v_systemic_err"]))), elinewidth=0.5,
                   **STAGE_STYLE["free"])
@@ -287,7 +295,7 @@ def plot_centre(result, axes=None):
     ax_v.set_ylabel("v_systemic (km/s)")
     _legend(ax_v, loc="best", ncol=2)
     style_axes(ax_v)
-    x0, y0 = float(np.nanmedian(_value(t["x_center"]))), float(np.nanmedian(_value(t["y_center"])))
+    x0, y0 = _median(t["x_center"]), _median(t["y_center"])
     east, north = result.vmap.sky_offsets(_value(free["x_center"]), _value(free["y_center"]), x0, y0)
     ax_c.axhline(0.0, color=INK, lw=1.3)
     ax_c.plot(r, east, ls="none", marker="o", mfc="none", ms=3.5, color=SLATE, label="east offset")

@@ -262,13 +262,12 @@ def _command_text(result) -> str:
         return command
     options = getattr(result, "options", None)
     if options is None or not hasattr(options, "to_dict"):
-        return "(fitted from Python)"
+        return "fit options not recorded"
     defaults = type(options)().to_dict()
     changed = {k: v for k, v in options.to_dict().items() if defaults.get(k) != v}
     if not changed:
-        return "fit from Python with the default options"
-    return "fit from Python; options differing from the defaults: " + ", ".join(
-        f"{k} = {v}" for k, v in changed.items())
+        return "fit with every option at its default"
+    return "fit options that differ from the defaults: " + ", ".join(f"{k} = {v}" for k, v in changed.items())
 
 
 class _Cursor:
@@ -290,7 +289,7 @@ class _Cursor:
                   label_width: float = 0.0, family=None, colour=INK) -> bool:
         em = 0.61 if family == "monospace" else 0.52  # average character width in units of the font size
         chars = int((self.width - indent - label_width) * 72 / (em * size))
-        lines = textwrap.wrap(text, chars) or [""]
+        lines = textwrap.wrap(text, chars, break_on_hyphens=False) or [""]
         if not self.room(len(lines), size):
             return False
         if label:
