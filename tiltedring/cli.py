@@ -296,6 +296,88 @@ def run_batch_command(args) -> int:
     return EXIT_OK if summary["failed"] == 0 else EXIT_FAILURE
 
 
+MAPS_EXAMPLES = """examples:
+  tiltedring maps demo_fields/dunmore_cube.fits --out dunmore_maps
+  tiltedring maps cube.fits --velocity-kind gaussian --exclude-velocities=-60:5 --out maps1
+  tiltedring maps cube.fits --velocity-kind moment --mask-threshold 3 --minimum-run 4 --out maps2
+
+Writes velocity.fits (km/s, in the cube's velocity convention and frame), velocity_err.fits,
+intensity.fits (moment 0), dispersion.fits, mask.fits (the emission mask, 1 = used), h3.fits
+(--velocity-kind hermite) and maps.json (what was done: noise, mask, kind, convention, frame, rest
+frequency, excluded ranges). A range starting with a minus sign needs the '=' form:
+--exclude-velocities=-60:5. Fit the maps with
+  tiltedring fit OUT/velocity.fits --error-map OUT/velocity_err.fits --intensity-map OUT/intensity.fits
+"""
+
+
+def _maps_parser(sub):
+    """``tiltedring maps``: velocity maps from a spectral cube (self-contained: parser and runner)."""
+    p = sub.add_parser("maps", parents=[_common()], help="make velocity maps from a spectral cube",
+                       description="Make velocity, error, intensity (moment-0) and dispersion maps from a FITS "
+                                   "spectral cube, over a smoothed-and-clipped emission mask.",
+                       epilog=MAPS_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("cube", help="FITS spectral cube (frequency or velocity axis)")
+    p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    _add_cube_options(p)
+    p.set_defaults(run=run_maps)
+    return p
+
+
+def _add_cube_options(p):
+    """Options that turn a cube into maps (shared by ``maps`` and ``fit`` on a cube)."""
+    g = p.add_argument_group("from a cube")
+    g.add_argument("--velocity-kind", choices=("moment", "peak", "gaussian", "hermite"),  # velocity_fields.KINDS
+                   help="line centre per spectrum: moment (moment 1), peak, gaussian, or hermite "
+                        "(Gauss-Hermite with h3; the default)")
+    g.add_argument("--exclude-velocities", metavar="LO:HI[,LO:HI]",
+                   help="velocity ranges (km/s, the cube's convention) left out of every spectrum, e.g. "
+                        "Milky Way foreground: --exclude-velocities=-60:5")
+    g.add_argument("--all-regions", action="store_true",
+                   help="keep every emission region of the mask (default: only the largest, the galaxy)")
+    g.add_argument("--mask-threshold", type=float, help="clip level of the smoothed cube in noise units (default 4)")
+    g.add_argument("--minimum-run", type=int, help="fewest adjacent channels a masked line spans (default 3)")
+    g.add_argument("--brightness-unit", help="unit of the cube when BUNIT is missing or wrong (Jy/beam, K)")
+    g.add_argument("--rest-frequency", type=float, help="rest frequency in Hz when the cube states none")
+    g.add_argument("--velocity-convention", choices=("radio", "optical", "relativistic"),
+                   help="velocities in this convention (default: the cube's own; radio for a frequency axis)")
+
+
+def cube_map_options(args) -> dict:
+    """Keyword arguments of ``make_velocity_maps`` from the cube options of a command."""
+    options = {}
+    for key, name in (("velocity_kind", "kind"), ("exclude_velocities", "exclude_velocities"),
+                      ("mask_threshold", "mask_threshold"), ("minimum_run", "minimum_run"),
+                      ("brightness_unit", "brightness_unit"), ("rest_frequency", "rest_frequency"),
+                      ("velocity_convention", "convention")):
+        value = getattr(args, key, None)
+        if value is not None:
+            options[name] = value
+    if getattr(args, "all_regions", False):
+        options["keep_regions"] = "all"
+    return options
+
+
+def run_maps(args) -> int:
+    from .io.velocity_fields import make_velocity_maps
+
+    maps = make_velocity_maps(args.cube, **cube_map_options(args))
+    maps.write(args.out, overwrite=args.overwrite)
+    if not args.quiet:
+        rec = maps.record
+        excluded = ", ".join(f"{lo:g}:{hi:g}" for lo, hi in rec["mask"]["excluded_velocities"]) or "none"
+        print(f"{rec['source']}: {rec['channels']} channels of {rec['channel_width_kms']:.3g} km/s "
+              f"({rec['velocity_convention']} convention, frame {rec['velocity_frame']}), noise "
+              f"{rec['noise']['median']:.3g} {rec['brightness_unit']} (median per channel)")
+        print(f"{rec['velocity_kind']} velocities in {rec['pixels_with_velocity']} pixels; excluded velocities: "
+              f"{excluded}")
+        for key, value in rec["fits"].items():
+            if value and key not in ("spectra_fitted",):
+                print(f"note: {key.replace('_', ' ')}: {value}")
+        print(f"wrote {args.out}/" + ", ".join(v for v in rec["files"].values()))
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -310,6 +392,7 @@ def build_parser() -> argparse.ArgumentParser:
     _mass_parser(sub)
     _compare_parser(sub)
     _batch_parser(sub)
+    _maps_parser(sub)
     return parser
 
 

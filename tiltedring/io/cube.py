@@ -316,6 +316,6 @@ def _map_header(cel, unit, beam, rest, wcs, convention, spectral_type) -> fits.H
         header["RESTFRQ"] = (float(rest.to_value(u.Hz, equivalencies=u.spectral())), "rest frequency (Hz)")
     if str(wcs.wcs.specsys).strip():
         header["SPECSYS"] = (str(wcs.wcs.specsys).strip(), "standard of rest of the velocities")
-    header["VELCONV"] = (convention, "velocity convention: radio, optical, relativistic")
-    header["SPECAXIS"] = (spectral_type, "spectral axis type in the input cube")
+    header["VELCONV"] = (convention, "velocity convention")
+    header["SPECAXIS"] = (spectral_type, "spectral axis of the input cube")
     return header

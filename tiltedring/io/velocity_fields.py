@@ -127,15 +127,14 @@ class VelocityMaps:
         return Path(folder)
 
 
-def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), exclusion_scope: str = "everywhere",
-                       mask_threshold: float = 4.0, minimum_run: int = 3, spatial_smoothing: float = 1.0,
+def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3, spatial_smoothing: float = 1.0,
                        spectral_smoothing: float = 3.0, window_margin: int = 4, threads: int | None = None,
                        **read_options) -> VelocityMaps:
     """Velocity, error, moment-0 and dispersion maps of a cube (see the module docstring for ``kind``).
 
     ``cube`` is a :class:`LineCube` or anything :func:`read_cube` reads (``read_options`` go to it).
-    ``exclude_velocities``: (lo, hi) km/s ranges in the cube's convention left out of everything;
-    ``exclusion_scope`` ``"everywhere"`` or ``"off-galaxy"`` (see :mod:`.cube_mask`);
+    ``exclude_velocities``: (lo, hi) km/s ranges in the cube's convention left out of every spectrum;
+    ``keep_regions`` ``"largest"`` (the galaxy only) or ``"all"`` (see :mod:`.cube_mask`);
     ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask.
     """
     if kind not in KINDS:
@@ -144,11 +143,11 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
         cube = read_cube(cube, **read_options)
     signal = make_signal_mask(cube, threshold=mask_threshold, minimum_run=minimum_run,
                               spatial_smoothing=spatial_smoothing, spectral_smoothing=spectral_smoothing,
-                              exclude_velocities=exclude_velocities, exclusion_scope=exclusion_scope)
+                              exclude_velocities=exclude_velocities, keep_regions=keep_regions)
     if not signal.mask.any():
         raise InputError(f"cube {cube.source}: no emission above {mask_threshold} times the noise of the smoothed "
                          "cube; lower the mask threshold or check the excluded velocity ranges")
-    usable = np.isfinite(cube.data) & (~signal.excluded[:, None, None] | signal.mask)
+    usable = np.isfinite(cube.data) & ~signal.excluded[:, None, None]
     data = np.where(usable, cube.data, np.nan)
     moments = _moments(data, signal.mask, cube)
     velocity, error, dispersion, h3, counts = moments["velocity"], moments["error"], moments["dispersion"], None, {}
@@ -157,7 +156,9 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     elif kind in ("gaussian", "hermite"):
         velocity, error, dispersion, h3, counts = _fitted_maps(data, signal.mask, cube, moments, kind, window_margin,
                                                                threads)
-    velocity = np.where(moments["valid"], velocity, np.nan)
+    usable_error = np.isfinite(error) & (error > 0)
+    counts["pixels_blanked_for_zero_error"] = int((moments["valid"] & np.isfinite(velocity) & ~usable_error).sum())
+    velocity = np.where(moments["valid"] & usable_error, velocity, np.nan)
     error = np.where(np.isfinite(velocity), error, np.nan)
     intensity = np.where(moments["valid"], moments["intensity"], np.nan)
     unit = u.Unit(cube.unit) * u.km / u.s
