@@ -333,6 +333,10 @@ def _add_cube_options(p):
     g.add_argument("--exclude-velocities", metavar="LO:HI[,LO:HI]",
                    help="velocity ranges (km/s, the cube's convention) left out of every spectrum, e.g. "
                         "Milky Way foreground: --exclude-velocities=-60:5")
+    g.add_argument("--exclusion", choices=("interpolate", "veto"),
+                   help="how excluded ranges are treated: interpolate (the default: vetoed off the galaxy; on it "
+                        "the foreground interpolated from around the galaxy is subtracted) or veto (left out of "
+                        "every spectrum; lines near them are blanked)")
     g.add_argument("--all-regions", action="store_true",
                    help="keep every emission region of the mask (default: only the largest, the galaxy)")
     g.add_argument("--mask-threshold", type=float, help="clip level of the smoothed cube in noise units (default 4)")
@@ -346,7 +350,7 @@ def _add_cube_options(p):
 def cube_map_options(args) -> dict:
     """Keyword arguments of ``make_velocity_maps`` from the cube options of a command."""
     options = {}
-    for key, name in (("velocity_kind", "kind"), ("exclude_velocities", "exclude_velocities"),
+    for key, name in (("velocity_kind", "kind"), ("exclude_velocities", "exclude_velocities"), ("exclusion", "exclusion"),
                       ("mask_threshold", "mask_threshold"), ("minimum_run", "minimum_run"),
                       ("brightness_unit", "brightness_unit"), ("rest_frequency", "rest_frequency"),
                       ("velocity_convention", "convention")):

@@ -15,8 +15,10 @@ Kinds of velocity map (``kind``), each over the emission mask of :mod:`.cube_mas
 
 Fits use the channels from the first to the last masked channel of each spectrum, widened by
 ``window_margin`` channels on each side (minus excluded, blank channels); fits whose centre leaves
-that window are blanked. The intensity map is always moment 0 over the mask, sum I dv, in the
-cube's unit times km/s. The dispersion map is the moment-2 width for ``moment`` and ``peak`` and the
+that window are blanked. Only pixels whose moment 0 over the mask exceeds 3 times its noise
+(noise_k summed in quadrature over the masked channels) get a velocity: the mask's dilated edges
+hold spectra without a detectable line. The intensity map is moment 0 over the mask, sum I dv, in
+the cube's unit times km/s. The dispersion map is the moment-2 width for ``moment`` and ``peak`` and the
 fitted Gaussian sigma for the fits; neither is corrected for the channel width or the beam.
 """
 
@@ -40,6 +42,8 @@ KINDS = ("moment", "peak", "gaussian", "hermite")
 DEFAULT_KIND = "hermite"
 MAP_FILES = {"velocity": "velocity.fits", "velocity_error": "velocity_err.fits", "intensity": "intensity.fits",
              "dispersion": "dispersion.fits", "mask": "mask.fits", "h3": "h3.fits", "record": "maps.json"}
+EXCLUSION_MARGIN = 1.5  # lines centred within this many widths of a vetoed range are cut by it: blanked
+MINIMUM_SNR = 3.0  # a pixel's masked moment 0 must exceed this many times its noise to get a velocity
 _CTYPE = {"radio": "VRAD", "optical": "VOPT", "relativistic": "VELO"}
 
 
@@ -127,14 +131,17 @@ class VelocityMaps:
         return Path(folder)
 
 
-def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3, spatial_smoothing: float = 1.0,
-                       spectral_smoothing: float = 3.0, window_margin: int = 4, threads: int | None = None,
+def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), exclusion: str = "interpolate",
+                       keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3,
+                       spatial_smoothing: float = 1.0, spectral_smoothing: float = 3.0, window_margin: int = 4, threads: int | None = None,
                        **read_options) -> VelocityMaps:
     """Velocity, error, moment-0 and dispersion maps of a cube (see the module docstring for ``kind``).
 
     ``cube`` is a :class:`LineCube` or anything :func:`read_cube` reads (``read_options`` go to it).
-    ``exclude_velocities``: (lo, hi) km/s ranges in the cube's convention left out of every spectrum;
-    ``keep_regions`` ``"largest"`` (the galaxy only) or ``"all"`` (see :mod:`.cube_mask`);
+    ``exclude_velocities``: (lo, hi) km/s ranges in the cube's convention holding foreground;
+    ``exclusion`` ``"interpolate"`` (vetoed off the galaxy, interpolated foreground subtracted on it) or
+    ``"veto"`` (left out of every spectrum); ``keep_regions`` ``"largest"`` (the galaxy only) or ``"all"``
+    (see :mod:`.cube_mask`);
     ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask.
     """
     if kind not in KINDS:
@@ -143,12 +150,11 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
         cube = read_cube(cube, **read_options)
     signal = make_signal_mask(cube, threshold=mask_threshold, minimum_run=minimum_run,
                               spatial_smoothing=spatial_smoothing, spectral_smoothing=spectral_smoothing,
-                              exclude_velocities=exclude_velocities, keep_regions=keep_regions)
+                              exclude_velocities=exclude_velocities, exclusion=exclusion, keep_regions=keep_regions)
     if not signal.mask.any():
         raise InputError(f"cube {cube.source}: no emission above {mask_threshold} times the noise of the smoothed "
                          "cube; lower the mask threshold or check the excluded velocity ranges")
-    usable = np.isfinite(cube.data) & ~signal.excluded[:, None, None]
-    data = np.where(usable, cube.data, np.nan)
+    data = signal.data
     moments = _moments(data, signal.mask, cube)
     velocity, error, dispersion, h3, counts = moments["velocity"], moments["error"], moments["dispersion"], None, {}
     if kind == "peak":
@@ -156,6 +162,10 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     elif kind in ("gaussian", "hermite"):
         velocity, error, dispersion, h3, counts = _fitted_maps(data, signal.mask, cube, moments, kind, window_margin,
                                                                threads)
+    vetoed = signal.record["excluded_velocities"] if signal.record["exclusion"] == "veto" else []
+    cut = _near_excluded(velocity, dispersion, cube.channel_width, vetoed)
+    counts["pixels_blanked_near_excluded_velocities"] = int((moments["valid"] & np.isfinite(velocity) & cut).sum())
+    velocity = np.where(cut, np.nan, velocity)
     usable_error = np.isfinite(error) & (error > 0)
     counts["pixels_blanked_for_zero_error"] = int((moments["valid"] & np.isfinite(velocity) & ~usable_error).sum())
     velocity = np.where(moments["valid"] & usable_error, velocity, np.nan)
@@ -169,6 +179,16 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
                         channel_velocity=cube.velocity.copy(), convention=cube.convention, h3=h3, record=record)
 
 
+def _near_excluded(velocity, dispersion, channel_width, ranges):
+    """Pixels whose line centre lies within EXCLUSION_MARGIN line widths of an excluded range."""
+    width = EXCLUSION_MARGIN * np.fmax(np.nan_to_num(dispersion, nan=channel_width), channel_width)
+    near = np.zeros(velocity.shape, bool)
+    for lo, hi in ranges:
+        with np.errstate(invalid="ignore"):
+            near |= (velocity > lo - width) & (velocity < hi + width)
+    return near
+
+
 def _channel_widths(velocity):
     return np.abs(np.gradient(velocity)) if velocity.size > 1 else np.ones(1)
 
@@ -179,7 +199,8 @@ def _moments(data, mask, cube):
     vel = cube.velocity[:, None, None]
     signal = np.where(mask & np.isfinite(data), data, 0.0)
     total = signal.sum(axis=0)
-    valid = mask.any(axis=0) & (total > 0)
+    total_noise = np.sqrt((mask * cube.noise[:, None, None] ** 2).sum(axis=0))
+    valid = mask.any(axis=0) & (total > MINIMUM_SNR * total_noise)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(valid, (signal * vel).sum(axis=0) / total, np.nan)
         spread = (signal * (vel - mean) ** 2).sum(axis=0) / total
@@ -263,7 +284,7 @@ def _record(cube, kind, signal, counts, velocity) -> dict:
         "noise": {"median": float(np.median(noise)), "min": float(noise.min()), "max": float(noise.max()),
                   "per_channel": [float(v) for v in noise],
                   "method": "median of -x over negative pixels / 0.6745, per channel"},
-        "mask": signal.record, "fits": counts, "pixels_with_velocity": int(np.isfinite(velocity).sum()),
+        "mask": signal.record, "minimum_intensity_snr": MINIMUM_SNR, "fits": counts, "pixels_with_velocity": int(np.isfinite(velocity).sum()),
         "dispersion": "moment-2 width" if kind in ("moment", "peak") else
         "fitted Gaussian sigma (km/s); not corrected for channel width or beam",
         "files": {k: v for k, v in MAP_FILES.items() if k != "h3" or kind == "hermite"},
