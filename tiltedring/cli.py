@@ -19,6 +19,7 @@ FIT_EXAMPLES = """examples:
   tiltedring fit map.fits --ring-width 4pix --spacing logarithmic --max-radius 3arcmin --out fit2
   tiltedring fit map.fits --inclination 62 --fix inclination --half receding --out fit3
   tiltedring fit map.fits --config run.toml --out fit4
+  tiltedring fit cube.fits --exclude-velocities=-60:5 --out fit5     # a spectral cube: maps made into fit5/maps
 
 A TOML run file holds the same options (underscores or dashes) in a [fit] table, starting
 values in [fit.initial], and input maps in [inputs]:
@@ -52,7 +53,7 @@ def _fit_parser(sub):
                        description="Fit a tilted-ring model to a 2-D velocity (moment-1) map and write the ring "
                                    "table, model and residual maps and a run record into --out.",
                        epilog=FIT_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("map", help="velocity map (FITS, BUNIT in km/s or m/s)")
+    p.add_argument("map", help="velocity map (FITS, BUNIT in km/s or m/s), or a spectral cube (maps are made first)")
     p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     p.add_argument("--config", help="TOML run file with [inputs], [fit] and [fit.initial] tables")
@@ -107,6 +108,7 @@ def _fit_parser(sub):
     g.add_argument("--position-angle", type=float, help="deg, receding side, north through east")
     g.add_argument("--inclination", type=float, help="deg, 0 face-on")
     g.add_argument("--v-rotation", type=float, help="km/s, flat rotation speed")
+    _add_cube_options(p)
     p.set_defaults(run=run_fit)
     return p
 
@@ -477,6 +479,23 @@ def _write_gas(result, curve, args):
         plain_table(table).write(tmp, format="ascii.ecsv")
 
 
+def _maps_of_cube(args, inputs):
+    """Velocity maps made from ``args.map`` when it is a spectral cube (else None)."""
+    from .errors import InputError
+    from .io.cube import looks_like_cube
+
+    if not looks_like_cube(args.map):
+        return None
+    given = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale")
+             if inputs.get(k) is not None]
+    if given:
+        raise InputError(f"{args.map} is a spectral cube: the maps are made from it, so {', '.join(given)} cannot "
+                         "be given; make maps with 'tiltedring maps' and fit those to use your own")
+    from .io.velocity_fields import make_velocity_maps
+
+    return make_velocity_maps(args.map, **cube_map_options(args))
+
+
 def run_fit(args) -> int:
     from .errors import FitCaution
     from .io.maps import read_velocity_map
@@ -488,16 +507,26 @@ def run_fit(args) -> int:
     options = FitOptions.from_mapping(fit_values)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitCaution)
-        vmap = read_velocity_map(args.map, error=inputs.get("error_map"), intensity=inputs.get("intensity_map"),
-                                 dispersion=inputs.get("dispersion_map"), beam=inputs.get("beam"),
-                                 pixel_scale=inputs.get("pixel_scale"), velocity_unit=inputs.get("velocity_unit"))
+        cube_maps = _maps_of_cube(args, inputs)
+        if cube_maps is not None:
+            vmap = cube_maps.to_velocity_map(beam=inputs.get("beam"))
+        else:
+            vmap = read_velocity_map(args.map, error=inputs.get("error_map"), intensity=inputs.get("intensity_map"),
+                                     dispersion=inputs.get("dispersion_map"), beam=inputs.get("beam"),
+                                     pixel_scale=inputs.get("pixel_scale"), velocity_unit=inputs.get("velocity_unit"))
         if inputs.get("bin"):
             from .io.binning import bin_map
 
             vmap = bin_map(vmap, inputs["bin"])
         result = fit_velocity_map(vmap, options)
         curve = result.curve(distance=args.distance, redshift=args.redshift, cosmology=args.cosmology)
-    result.inputs = {"velocity_map": {"path": str(Path(args.map).resolve()), "sha256": file_checksum(args.map)}}
+    role = "velocity_map" if cube_maps is None else "cube"
+    result.inputs = {role: {"path": str(Path(args.map).resolve()), "sha256": file_checksum(args.map)}}
+    if cube_maps is not None:
+        result.inputs["maps_from_cube"] = {"folder": "maps", "velocity_kind": cube_maps.kind,
+                                           "velocity_convention": cube_maps.convention,
+                                           "velocity_frame": cube_maps.record["velocity_frame"],
+                                           "excluded_velocities": cube_maps.record["mask"]["excluded_velocities"]}
     for key in ("error_map", "intensity_map", "dispersion_map"):
         if inputs.get(key):
             result.inputs[key] = {"path": str(Path(inputs[key]).resolve()), "sha256": file_checksum(inputs[key])}
@@ -505,7 +534,8 @@ def run_fit(args) -> int:
         if inputs.get(key) is not None:
             result.inputs[key] = inputs[key]
     result.inputs["curve"] = {"distance": args.distance, "redshift": args.redshift, "cosmology": args.cosmology}
-    result.write(args.out, overwrite=args.overwrite, curve=curve, report=not args.no_report, png=args.png)
+    result.write(args.out, overwrite=args.overwrite, curve=curve, report=not args.no_report, png=args.png,
+                 extra=None if cube_maps is None else (lambda tmp: cube_maps.write_into(tmp / "maps")))
     _write_gas(result, curve, args)
     if not args.quiet:
         print(result.summary())
@@ -515,7 +545,7 @@ def run_fit(args) -> int:
                  if issubclass(w.category, FitCaution) and str(w.message) not in result.cautions]
         for text in other:
             print(f"caution: {text}")
-        extra = "" if args.no_report else ", report.pdf"
+        extra = ("" if args.no_report else ", report.pdf") + ("" if cube_maps is None else ", maps/ (from the cube)")
         print(f"wrote {args.out}/rings.ecsv, curve.ecsv, model.fits, residual.fits, fit.json{extra}")
     return EXIT_OK
 

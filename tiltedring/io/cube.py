@@ -31,7 +31,7 @@ from astropy.wcs import WCS, FITSFixedWarning
 from ..errors import FitCaution, InputError
 from .maps import Beam, centre_jacobian, open_image, pixel_scale_of
 
-__all__ = ["LineCube", "read_cube", "channel_noise", "CONVENTIONS"]
+__all__ = ["LineCube", "read_cube", "channel_noise", "looks_like_cube", "CONVENTIONS"]
 
 KM_S = u.km / u.s
 CONVENTIONS = ("radio", "optical", "relativistic")
@@ -85,6 +85,23 @@ class LineCube:
         """Rest frequency in Hz, when the cube states one."""
         value = self.header.get("RESTFRQ")
         return float(value) if value else None
+
+
+def looks_like_cube(path) -> bool:
+    """True when ``path`` is a FITS file whose first image has three or more axes longer than 1."""
+    from pathlib import Path
+
+    try:
+        if not Path(path).is_file():
+            return False
+        with fits.open(path, memmap=True) as hdul:
+            for hdu in hdul:
+                if getattr(hdu, "is_image", False) and hdu.header.get("NAXIS", 0) >= 2:
+                    lengths = [hdu.header.get(f"NAXIS{i}", 1) for i in range(1, hdu.header["NAXIS"] + 1)]
+                    return sum(n > 1 for n in lengths) >= 3
+    except (OSError, TypeError, ValueError):
+        return False
+    return False
 
 
 def channel_noise(data: np.ndarray, minimum_samples: int = 20) -> np.ndarray:

@@ -232,11 +232,13 @@ class FitResult:
 
         return plot_warp(self, ax)
 
-    def write(self, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False) -> Path:
+    def write(self, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False,
+              extra=None) -> Path:
         """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``.
 
         ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a distance).
         ``report``: also write ``report.pdf`` (and ``report_*.png`` with ``png``).
+        ``extra``: a callable given the temporary folder, to add files in the same atomic step.
         """
         from ..io.atomic import atomic_folder, write_json
         from ..io.maps import write_map
@@ -251,6 +253,8 @@ class FitResult:
             write_map(tmp / "residual.fits", self.residual, self.vmap, extra={"ORIGIN": "tiltedring data - model"})
             (curve or self.curve()).write(tmp / "curve.ecsv")
             write_json(tmp / "fit.json", self.record())
+            if extra is not None:
+                extra(tmp)
             if report:
                 from .plotting import write_report
 
