@@ -8,6 +8,10 @@ Read a moment-1 map, fit it ring by ring, get the ring table, model and residual
     result.rings            # astropy QTable, one row per ring
     result.write("galaxy_fit")
 
+or run the whole job (read, bin, fit, curve, gas, report, write) as the command line does::
+
+    outcome = tr.run_job(tr.Job.from_values("galaxy_velocity.fits", {"distance": 9.5}), "galaxy_fit")
+
 Heavy parts are imported on first use so that ``import tiltedring`` stays quick.
 """
 
@@ -21,6 +25,7 @@ _EXPORTS = {
     "LineCube": "io.cube", "read_cube": "io.cube", "VelocityMaps": "io.velocity_fields",
     "make_velocity_maps": "io.velocity_fields",
     "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
+    "Job": "jobs", "run_job": "jobs",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

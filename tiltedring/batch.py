@@ -1,18 +1,19 @@
 """Many galaxies: one manifest in, one folder per galaxy and one catalogue out, resumable.
 
 The manifest (CSV or ECSV) has one galaxy per row: a required ``velocity_map`` column (a path
-relative to the manifest's folder) and optional ``name``, ``error_map``, ``intensity_map``,
-``dispersion_map``, ``distance``, ``redshift`` and any fit option by its name (``ring_width``,
-``azimuth_weight``...); shared options come from the caller (command line or TOML run file), per-row
-values win.
+relative to the manifest's folder) and optional ``name``, ``report`` and any job option by its
+flat name (:mod:`.jobs`: ``error_map``, ``intensity_map``, ``dispersion_map`` paths, ``distance``,
+``redshift``, ``bin``, ``ring_width``, ``azimuth_weight``, ``fixed``, ``v_systemic``...); an
+unknown column is refused before any fit. Shared options come from the caller (command line or
+TOML run file, as flat names), per-row values win.
 
-Each galaxy is fitted exactly as ``tiltedring fit`` would and written into ``OUT/<name>/``
-(temporary folder renamed into place, so an interrupted run never leaves a finished-looking
-folder). A galaxy counts as finished when its folder holds ``fit.json`` whose ``batch_key`` (a
-hash of the row, the shared options and the tool version) matches the current one; re-running the
-same command skips finished galaxies and retries failed ones. Failures are recorded, never fatal.
-``OUT/catalogue.ecsv`` has one row per galaxy: name, status (``ok`` / ``failed``), geometry,
-v_flat, decisions, flags, run time and the error message.
+Each galaxy is fitted by :func:`.jobs.run_job`, exactly as ``tiltedring fit`` would, into
+``OUT/<name>/`` (temporary folder renamed into place, so an interrupted run never leaves a
+finished-looking folder). A galaxy counts as finished when its folder holds ``fit.json`` whose
+``batch_key`` (a hash of the row, the shared options and the tool version) matches the current
+one; re-running the same command skips finished galaxies and retries failed ones. Failures are
+recorded, never fatal. ``OUT/catalogue.ecsv`` has one row per galaxy: name, status (``ok`` /
+``failed``), geometry, v_flat, decisions, flags, run time and the error message.
 
 Runs on a local dask.distributed cluster (one single-threaded worker process per core) by
 default, on an existing cluster with ``scheduler``, or in this process with ``workers=1``.
@@ -32,8 +33,17 @@ from .errors import InputError
 
 __all__ = ["read_manifest", "fit_one", "run_batch"]
 
-_INPUT_COLUMNS = ("velocity_map", "error_map", "intensity_map", "dispersion_map")
-_CURVE_COLUMNS = ("distance", "redshift")
+_ROW_COLUMNS = ("name", "velocity_map")  # the galaxy itself; every other column is a job option
+
+
+def _manifest_columns() -> tuple:
+    """(known column names, columns holding paths relative to the manifest)."""
+    from .jobs import OUTPUT_SWITCHES, job_specs
+
+    specs = job_specs()
+    known = set(_ROW_COLUMNS) | set(specs) | set(OUTPUT_SWITCHES)
+    paths = {"velocity_map"} | {name for name, spec in specs.items() if spec.path}
+    return known, paths
 
 
 def read_manifest(path) -> list:
@@ -50,6 +60,11 @@ def read_manifest(path) -> list:
         raise InputError(f"cannot read manifest {path}: {exc}; give a CSV or ECSV table") from None
     if "velocity_map" not in table.colnames:
         raise InputError(f"manifest {path} has no velocity_map column (one path per galaxy, relative to the manifest)")
+    known, path_columns = _manifest_columns()
+    unknown = [c for c in table.colnames if c not in known]
+    if unknown:
+        raise InputError(f"manifest {path}: unknown column(s) {unknown}; columns are name, velocity_map and the "
+                         f"options of 'tiltedring fit' by their run-file names: {', '.join(sorted(known))}")
     rows, seen = [], set()
     for k, row in enumerate(table):
         item = {}
@@ -58,7 +73,7 @@ def read_manifest(path) -> list:
             if np.ma.is_masked(value) or (isinstance(value, str) and not value.strip()):
                 continue
             item[name] = value.item() if hasattr(value, "item") else value
-        for key in _INPUT_COLUMNS:
+        for key in path_columns:
             if key in item:
                 item[key] = str((path.parent / str(item[key])).resolve())
         name = str(item.get("name") or Path(item["velocity_map"]).stem)
@@ -87,39 +102,19 @@ def _v_flat(rings) -> float:
 
 
 def fit_one(row: dict, shared: dict, out_dir) -> dict:
-    """Fit one manifest row into ``out_dir/<name>``; returns its catalogue row (never raises)."""
-    import warnings
-
-    from .errors import FitCaution
-    from .io.maps import read_velocity_map
-    from .pipeline.staged import FitOptions, fit_velocity_map
-    from .products.result import file_checksum
+    """Fit one manifest row into ``out_dir/<name>`` through :func:`.jobs.run_job`; returns its catalogue
+    row (never raises)."""
+    from .jobs import Job, run_job
 
     start = time.perf_counter()
     name = row["name"]
     entry = {"name": name, "status": "failed", "error": "", "seconds": 0.0}
     try:
         values = dict(shared)
-        values.update({k: v for k, v in row.items() if k not in _INPUT_COLUMNS + _CURVE_COLUMNS + ("name",)})
-        inputs = {k: row[k] for k in _INPUT_COLUMNS if k in row}
-        read_keys = {k: values.pop(k) for k in ("beam", "pixel_scale", "velocity_unit") if k in values}
-        bin_factor = int(values.pop("bin", 1) or 1)
-        report = bool(values.pop("report", False))
-        options = FitOptions.from_mapping(values)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", FitCaution)
-            vmap = read_velocity_map(inputs["velocity_map"], error=inputs.get("error_map"),
-                                     intensity=inputs.get("intensity_map"), dispersion=inputs.get("dispersion_map"),
-                                     **read_keys)
-            if bin_factor > 1:
-                from .io.binning import bin_map
-
-                vmap = bin_map(vmap, bin_factor)
-            result = fit_velocity_map(vmap, options)
-        curve = result.curve(distance=row.get("distance"), redshift=row.get("redshift"))
-        result.inputs = {k: {"path": v, "sha256": file_checksum(v)} for k, v in inputs.items()}
-        result.inputs["batch_key"] = _key(row, shared)
-        result.write(Path(out_dir) / name, overwrite=True, curve=curve, report=report)
+        values.update({k: v for k, v in row.items() if k not in _ROW_COLUMNS})
+        job = Job.from_values(row["velocity_map"], values, where="batch option",
+                              record={"batch_key": _key(row, shared)})
+        result = run_job(job, Path(out_dir) / name, overwrite=True).result
         g = result.geometry()
         entry.update({k: g[k] for k in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic",
                                        "position_angle", "inclination")})

@@ -7,3 +7,16 @@ class InputError(ValueError):
 
 class FitCaution(UserWarning):
     """A result that may mislead (few pixels, low inclination, reprojected inputs...)."""
+
+
+class OutputFolderExists(InputError):
+    """An output folder that already holds files, refused so earlier results are never lost.
+
+    The message names the Python argument (``overwrite=True``); the command line words it as its
+    own options (``--out``, ``--overwrite``) from :attr:`folder`.
+    """
+
+    def __init__(self, folder):
+        self.folder = folder
+        super().__init__(f"output folder {folder} already exists and is not empty; choose another folder or pass "
+                         "overwrite=True to replace it")

@@ -43,6 +43,16 @@ def _json_default(value):
     raise TypeError(f"cannot store {type(value).__name__} in JSON")
 
 
+def check_output_folder(folder, overwrite: bool = False) -> None:
+    """Refuse an existing non-empty ``folder`` unless ``overwrite`` (:class:`..errors.OutputFolderExists`),
+    so earlier results are never silently lost; a job checks before its work and again when writing."""
+    folder = Path(folder)
+    if folder.exists() and not overwrite and (not folder.is_dir() or any(folder.iterdir())):
+        from ..errors import OutputFolderExists
+
+        raise OutputFolderExists(folder)
+
+
 @contextmanager
 def atomic_folder(folder, overwrite: bool = False):
     """Yield a temporary folder; on success it replaces ``folder`` in one rename.
@@ -51,13 +61,7 @@ def atomic_folder(folder, overwrite: bool = False):
     results are never silently lost.
     """
     folder = Path(folder)
-    if folder.exists() and any(folder.iterdir()) and not overwrite:
-        from ..errors import InputError
-
-        raise InputError(
-            f"output folder {folder} already exists and is not empty; "
-            "choose another --out folder or pass --overwrite to replace it"
-        )
+    check_output_folder(folder, overwrite)
     folder.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{folder.name}.", suffix=".partial", dir=folder.parent))
     try:

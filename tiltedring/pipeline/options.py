@@ -1,14 +1,42 @@
-"""Everything that steers a fit, as one dataclass (:class:`FitOptions`)."""
+"""Everything that steers a job, as dataclasses whose fields declare their own options.
+
+- :class:`FitOptions`: how the rings are laid out and fitted (the ``[fit]`` table of a run file);
+- :class:`InputOptions`: what is read besides the velocity map (``[inputs]``);
+- :class:`CurveOptions`: the rotation-curve product, ``curve.ecsv`` (``[curve]``);
+- :class:`CubeOptions`: how velocity maps are made when the input is a spectral cube (``[cube]``).
+
+Each field is declared with :func:`.option_fields.option` (help, choices, metavar, form); the
+command line, TOML run files, batch manifest columns and ``fit.json`` are generated from these
+declarations. To add an option, add a field here: nothing else lists option names.
+
+No numerics are imported at module level, so ``tiltedring --help`` stays quick.
+"""
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 from ..errors import InputError
-from ..fitting.engine import RingFitOptions
-from ..fitting.kinematics import PARAMETERS
+from .option_fields import coerce, field_specs, option, recorded_values
 
-__all__ = ["FitOptions"]
+__all__ = ["FitOptions", "InputOptions", "CurveOptions", "CubeOptions", "RING_PARAMETER_NAMES",
+           "AZIMUTH_WEIGHT_NAMES",
+           "HALF_NAMES"]
+
+# Spelled here so that the command line is built without importing the numerics; tests check them
+# against fitting.kinematics.PARAMETERS, fitting.engine.AZIMUTH_WEIGHTS and fitting.engine.HALVES.
+RING_PARAMETER_NAMES = ("x_center", "y_center", "v_systemic", "position_angle", "inclination", "v_rotation",
+                        "v_radial")
+AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
+HALF_NAMES = ("whole", "approaching", "receding")
+VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
+EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
+
+STARTING_VALUES = {
+    "x_center": "pixels, 0-based", "y_center": "pixels, 0-based", "ra_center": "deg", "dec_center": "deg",
+    "v_systemic": "km/s", "position_angle": "deg, receding side, north through east",
+    "inclination": "deg, 0 face-on", "v_rotation": "km/s, flat rotation speed",
+}
 
 
 @dataclass
@@ -25,33 +53,65 @@ class FitOptions:
     ``ra_center``/``dec_center`` in deg; ``v_rotation`` sets the first-guess flat speed).
     fit_radial: also fit v_radial per ring.
     low_inclination: below this inclination (deg) results carry the low-inclination flag.
+    Every field's help text is in its declaration below.
     """
 
-    ring_width: object = None
-    spacing: str = "uniform"
-    growth: float = 1.2
-    ring_edges: tuple | None = None
-    first_radius: object = 0.0
-    max_radius: object = None
-    azimuth_weight: str = "abs-cos"
-    minor_axis_gap: float = 15.0
-    half: str = "whole"
-    clip: float | None = None
-    fixed: tuple = ()
-    initial: dict = field(default_factory=dict)
-    fit_radial: bool = False
-    seed: int = 0
-    low_inclination: float = 30.0
-    min_beams_per_ring: float = 4.0
-    min_coverage: float = 0.5
-    diagnostics: bool = True
-    bar_range: tuple | None = None
-    beam_correction: bool = True
-    resamples: int = 20
-    quiet: bool = True
+    ring_width: object = option(None, group="rings", metavar="WIDTH",
+                                help="ring width: 9arcsec, 4pix, 0.5beam or a bare number in arcsec (default one "
+                                     "beam, or two pixels without a beam)")
+    spacing: str = option("uniform", group="rings", choices=("uniform", "logarithmic"), help="ring spacing")
+    growth: float = option(1.2, group="rings", help="width ratio of successive logarithmic rings")
+    ring_edges: tuple | None = option(None, group="rings", form="numbers", metavar="R0,R1,...",
+                                      help="explicit ring edges in arcsec, comma-separated (overrides width and "
+                                           "spacing)")
+    first_radius: object = option(0.0, group="rings", metavar="RADIUS",
+                                  help="inner edge of the first ring: arcsec, or a length such as 4pix")
+    max_radius: object = option(None, group="rings", metavar="RADIUS",
+                                help="outer edge of the last ring (default: the edge of the valid data)")
+    azimuth_weight: str = option("abs-cos", group="fitting", choices=AZIMUTH_WEIGHT_NAMES,
+                                 help="weight of a pixel by its disc azimuth theta from the major axis: none, "
+                                      "|cos theta| (abs-cos) or cos^2 theta (cos-squared)")
+    minor_axis_gap: float = option(15.0, group="fitting", metavar="DEG",
+                                   help="half-opening in deg of the sector about the minor axis left out of the fit")
+    half: str = option("whole", group="fitting", choices=HALF_NAMES,
+                       help="fit the whole disc or only its approaching or receding half")
+    clip: float | None = option(None, group="fitting", metavar="SIGMA",
+                                help="clip pixels beyond this many robust sigma and refit (default: no clipping)")
+    fixed: tuple = option((), group="fitting", form="names", flag="--fix", metavar="NAME[,NAME]",
+                          choices=RING_PARAMETER_NAMES,
+                          help="hold parameters fixed in every stage (at the starting value or the first guess): "
+                               + " ".join(RING_PARAMETER_NAMES))
+    initial: dict = option(default_factory=dict, group="initial", entries=STARTING_VALUES,
+                           help="starting values by parameter name, used instead of the first guess")
+    fit_radial: bool = option(False, group="fitting", help="also fit v_radial per ring")
+    seed: int = option(0, group="fitting", help="seed of every random step")
+    low_inclination: float = option(30.0, group="fitting", metavar="DEG",
+                                    help="flag and widen errors below this inclination in deg")
+    min_beams_per_ring: float = option(4.0, group="fitting", metavar="BEAMS",
+                                       help="flag rings with fewer pixels than this many beams' worth (few_pixels)")
+    min_coverage: float = option(0.5, group="fitting", metavar="FRACTION",
+                                 help="flag rings with less than this fraction of the usable azimuth covered "
+                                      "(poor_coverage)")
+    diagnostics: bool = option(True, group="fitting",
+                               help="skip the diagnostics (harmonics, flow models, asymmetry; non-circular rings "
+                                    "then stay in the geometry decision, and no radial-flow refit is tried)")
+    bar_range: tuple | None = option(None, group="fitting", form="numbers", metavar="R_MIN,R_MAX",
+                                     help="radii in arcsec over which one common bar angle is fitted (default: the "
+                                          "rings that choose a bisymmetric flow on their own)")
+    beam_correction: bool = option(True, group="fitting",
+                                   help="skip the beam-smearing correction (on by default when a beam is known)")
+    resamples: int = option(20, group="fitting", metavar="N",
+                            help="noise realisations for resampled errors (0 skips them)")
+    quiet: bool = option(True, command_line=False, recorded=False,
+                         help="no progress messages (on the command line: -q/--quiet)")
 
     def __post_init__(self):
+        from ..fitting.kinematics import PARAMETERS
+
         self.fixed = tuple(self.fixed)
+        for name in ("ring_edges", "bar_range"):
+            if getattr(self, name) is not None:
+                setattr(self, name, tuple(getattr(self, name)))
         unknown = set(self.fixed) - set(PARAMETERS)
         if unknown:
             raise InputError(f"cannot fix unknown parameter(s) {sorted(unknown)}; choose from {', '.join(PARAMETERS)}")
@@ -61,23 +121,111 @@ class FitOptions:
             raise InputError(f"unknown initial value(s) {sorted(bad)}; choose from {', '.join(sorted(known))}")
         if self.spacing not in ("uniform", "logarithmic"):
             raise InputError(f"ring spacing {self.spacing!r} unknown; choose uniform or logarithmic")
+        if self.bar_range is not None and (len(self.bar_range) != 2 or not self.bar_range[0] < self.bar_range[1]):
+            raise InputError(f"bar range {self.bar_range}: give two radii in arcsec, smaller first")
         self.ring_options()  # validates azimuth_weight, minor_axis_gap, half, clip
 
-    def ring_options(self, half: str | None = None) -> RingFitOptions:
+    def ring_options(self, half: str | None = None):
+        """The :class:`..fitting.engine.RingFitOptions` of these options (``half`` overrides)."""
+        from ..fitting.engine import RingFitOptions
+
         return RingFitOptions(azimuth_weight=self.azimuth_weight, minor_axis_gap=self.minor_axis_gap,
                               half=half or self.half, clip=self.clip)
 
     @classmethod
-    def from_mapping(cls, values: dict) -> "FitOptions":
-        """From a dict such as a TOML run file's ``[fit]`` table (dashes or underscores)."""
+    def from_mapping(cls, values: dict, where: str = "fit option") -> "FitOptions":
+        """From a dict such as a TOML run file's ``[fit]`` table (dashes or underscores), values checked
+        against the declared types; errors name ``where``."""
+        specs = {spec.name: spec for spec in field_specs(cls)}
         clean = {str(k).replace("-", "_"): v for k, v in values.items()}
-        names = {f for f in cls.__dataclass_fields__}
-        unknown = set(clean) - names
+        unknown = set(clean) - set(specs)
         if unknown:
-            raise InputError(f"unknown fit option(s) {sorted(unknown)}; known: {', '.join(sorted(names))}")
-        if clean.get("ring_edges") is not None:
-            clean["ring_edges"] = tuple(clean["ring_edges"])
-        return cls(**clean)
+            raise InputError(f"unknown {where}(s) {sorted(unknown)}; known: {', '.join(sorted(specs))}")
+        return cls(**{k: coerce(specs[k], v, f"{where} {k}") for k, v in clean.items()})
+
+    def to_dict(self) -> dict:
+        """The options as recorded in ``fit.json`` (``quiet`` left out: it changes no result)."""
+        return recorded_values(self)
+
+
+@dataclass
+class InputOptions:
+    """What is read besides the velocity map; file names are read relative to the run file or manifest."""
+
+    error_map: str | None = option(None, group="inputs", path=True, metavar="FITS",
+                                   help="map of velocity errors (same units rule as the map)")
+    intensity_map: str | None = option(None, group="inputs", path=True, metavar="FITS",
+                                       help="intensity (moment-0) map; reprojected if on another grid")
+    dispersion_map: str | None = option(None, group="inputs", path=True, metavar="FITS",
+                                        help="velocity-dispersion (moment-2) map: adds the asymmetric-drift-corrected "
+                                             "circular speed to curve.ecsv (needs the intensity map)")
+    beam: str | None = option(None, group="inputs", metavar="MAJ[,MIN[,PA]]",
+                              help="beam FWHM in arcsec (major, minor) and its position angle in deg (default: "
+                                   "BMAJ/BMIN/BPA of the map)")
+    pixel_scale: float | None = option(None, group="inputs", metavar="ARCSEC",
+                                       help="arcsec per pixel, for maps without celestial WCS")
+    velocity_unit: str | None = option(None, group="inputs", metavar="UNIT",
+                                       help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
+    bin: int | None = option(None, group="inputs", metavar="N",
+                             help="average N x N pixel blocks before fitting (for maps too large for memory, or far "
+                                  "finer than the beam)")
+
+    def read_arguments(self) -> dict:
+        """Keyword arguments of :func:`..io.maps.read_velocity_map` (maps by their reader's names)."""
+        return {"error": self.error_map, "intensity": self.intensity_map, "dispersion": self.dispersion_map,
+                "beam": self.beam, "pixel_scale": self.pixel_scale, "velocity_unit": self.velocity_unit}
+
+
+@dataclass
+class CurveOptions:
+    """How the rotation-curve product (``curve.ecsv``) is put in physical units."""
+
+    distance: object = option(None, group="curve", metavar="DISTANCE",
+                              help="distance: a number in Mpc or a length such as 12Mpc (adds radius_kpc)")
+    redshift: float | None = option(None, group="curve",
+                                    help="redshift, for the angular-diameter distance when no distance is given")
+    cosmology: str = option("Planck18", group="curve", help="astropy cosmology used with the redshift")
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+
+@dataclass
+class CubeOptions:
+    """How velocity maps are made when the input is a spectral cube (``[cube]``; :mod:`..io.velocity_fields`)."""
+
+    velocity_kind: str = option("hermite", group="cube", choices=VELOCITY_KIND_NAMES,
+                                help="line centre per spectrum: moment (moment 1), peak, gaussian, or hermite "
+                                     "(the peak of a Gauss-Hermite fit with h3)")
+    exclude_velocities: str | None = option(None, group="cube", metavar="LO:HI[,LO:HI]",
+                                            help="velocity ranges (km/s, the cube's convention) holding foreground, "
+                                                 "e.g. Milky Way HI; a range starting with a minus sign needs the "
+                                                 "'=' form: --exclude-velocities=-60:5")
+    exclusion: str = option("interpolate", group="cube", choices=EXCLUSION_NAMES,
+                            help="how the excluded ranges are treated: interpolate (vetoed off the galaxy; on it the "
+                                 "foreground interpolated from around the galaxy is subtracted) or veto (left out of "
+                                 "every spectrum; lines near them are blanked)")
+    all_regions: bool = option(False, group="cube",
+                               help="keep every emission region of the mask (default: only the largest, the galaxy)")
+    mask_threshold: float = option(4.0, group="cube", metavar="SIGMA",
+                                   help="clip level of the smoothed cube, in units of its robust noise")
+    minimum_run: int = option(3, group="cube", metavar="CHANNELS",
+                              help="fewest adjacent channels a masked line must span")
+    brightness_unit: str | None = option(None, group="cube", metavar="UNIT",
+                                         help="unit of the cube when BUNIT is missing or wrong (Jy/beam, K)")
+    rest_frequency: float | None = option(None, group="cube", metavar="HZ",
+                                          help="rest frequency in Hz when the cube states none")
+    velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
+                                             help="velocities in this convention (default: the cube's own; radio "
+                                                  "for a frequency axis, optical for a wavelength axis)")
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def map_arguments(self) -> dict:
+        """Keyword arguments of :func:`..io.velocity_fields.make_velocity_maps`."""
+        return {"kind": self.velocity_kind, "exclude_velocities": self.exclude_velocities or (),
+                "exclusion": self.exclusion, "keep_regions": "all" if self.all_regions else "largest",
+                "mask_threshold": self.mask_threshold, "minimum_run": self.minimum_run,
+                "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
+                "convention": self.velocity_convention}

@@ -1,10 +1,12 @@
 """`FitResult`: the tables, maps and run record of a fit, and how they are written.
 
-Files written by :meth:`FitResult.write` into one folder (atomically: a temporary folder renamed
-into place on success):
+Files written by :meth:`FitResult.write` (through :func:`tiltedring.jobs.write_fit_folder`, the one
+writer of the command line, batch and the API) into one folder, atomically: a temporary folder
+renamed into place once every file, the report included, is written:
 
 - ``rings.ecsv``: the final ring table (astropy ECSV, units in the header)
 - ``curve.ecsv``: the rotation-curve product (:mod:`.curve`)
+- ``gas.ecsv``: gas surface density on the rings (intensity map and distance given; :mod:`..massmodel.gas`)
 - ``stage_free.ecsv``, ``stage_centred.ecsv``: the earlier stages' tables
 - ``model.fits``, ``residual.fits``: full-size maps on the input grid (input WCS, BUNIT km/s)
 - ``report.pdf`` (on request): summary page and figures (:mod:`.plotting`)
@@ -25,7 +27,7 @@ from astropy.table import QTable
 from ..diagnostics import flags as ringflags
 from ..fitting.kinematics import PARAMETERS, UNITS
 
-__all__ = ["FitResult", "stage_table", "ERROR_COLUMNS"]
+__all__ = ["FitResult", "stage_table", "write_table", "plain_table", "ERROR_COLUMNS"]
 
 ERROR_COLUMNS = {
     "v_rotation_err": "total uncertainty of v_rotation: noise term (larger of formal and resampled), sides and "
@@ -232,34 +234,18 @@ class FitResult:
 
         return plot_warp(self, ax)
 
-    def write(self, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False,
-              extra=None) -> Path:
+    def write(self, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False) -> Path:
         """Write the outputs (module docstring) into ``folder``; refuses a non-empty folder unless ``overwrite``.
 
-        ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a distance).
+        ``curve``: the :class:`.curve.RotationCurve` to write as ``curve.ecsv`` (default: one without a
+        distance); with a distance and an intensity map ``gas.ecsv`` is written too.
         ``report``: also write ``report.pdf`` (and ``report_*.png`` with ``png``).
-        ``extra``: a callable given the temporary folder, to add files in the same atomic step.
+        The same writer as ``tiltedring fit`` and ``tiltedring batch`` (:func:`tiltedring.jobs.write_result`).
         """
-        from ..io.atomic import atomic_folder, write_json
-        from ..io.maps import write_map
+        from ..jobs import write_result
 
-        folder = Path(folder)
-        with atomic_folder(folder, overwrite=overwrite) as tmp:
-            _write_table(self.rings, tmp / "rings.ecsv")
-            for name, table in self.stages.items():
-                if name != "final":
-                    _write_table(table, tmp / f"stage_{name}.ecsv")
-            write_map(tmp / "model.fits", self.model, self.vmap, extra={"ORIGIN": "tiltedring model field"})
-            write_map(tmp / "residual.fits", self.residual, self.vmap, extra={"ORIGIN": "tiltedring data - model"})
-            (curve or self.curve()).write(tmp / "curve.ecsv")
-            write_json(tmp / "fit.json", self.record())
-            if extra is not None:
-                extra(tmp)
-            if report:
-                from .plotting import write_report
-
-                write_report(self, tmp / "report.pdf", png_folder=tmp if png else None)
-        return folder
+        write_result(self, folder, overwrite=overwrite, curve=curve, report=report, png=png)
+        return Path(folder)
 
 
 def plain_table(table: QTable):
@@ -270,11 +256,15 @@ def plain_table(table: QTable):
                   for n in table.colnames])
 
 
-def _write_table(table: QTable, path) -> None:
+TABLE_COMMENT = ["written by tiltedring; conventions in fit.json",
+                 "position_angle: receding major axis, deg north through east; inclination 0 = face-on"]
+
+
+def write_table(table: QTable, path, comment: list | None = None) -> None:
+    """``table`` as ECSV at ``path`` (atomically), with ``comment`` lines (default: the conventions)."""
     from ..io.atomic import atomic_path
 
     out = plain_table(table)
-    out.meta["comment"] = ["written by tiltedring; conventions in fit.json",
-                           "position_angle: receding major axis, deg north through east; inclination 0 = face-on"]
+    out.meta["comment"] = list(comment) if comment else TABLE_COMMENT
     with atomic_path(path) as tmp:
         out.write(tmp, format="ascii.ecsv")

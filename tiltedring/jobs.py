@@ -1,0 +1,317 @@
+"""One job runner for the command line, batch and the API: read -> bin -> fit -> curve -> gas -> report -> write.
+
+A :class:`Job` is one galaxy's work: the velocity map and three option dataclasses
+(:class:`.pipeline.options.InputOptions`, :class:`.pipeline.options.FitOptions`,
+:class:`.pipeline.options.CurveOptions`), plus whether to draw the report. :func:`run_job` runs the
+steps and writes every output, ``gas.ecsv`` and ``report.pdf`` included, into a temporary folder
+that is renamed into place only when all are written (:func:`write_fit_folder`, also behind
+:meth:`.products.result.FitResult.write`), so ``tiltedring fit``, ``tiltedring batch`` and a
+notebook give the same folder for the same options.
+
+Option values reach a job by one flat vocabulary, the field names of the three dataclasses (each
+``[fit.initial]`` entry by its own name, e.g. ``v_systemic``), plus ``report`` and ``png``: the
+command line spells them ``--name``, a batch manifest as columns, and :func:`read_run_file` turns
+a TOML run file's ``[inputs]``, ``[fit]`` (with ``[fit.initial]``) and ``[curve]`` tables into it.
+
+Example::
+
+    import tiltedring as tr
+    job = tr.Job.from_values("galaxy_velocity.fits", {"intensity_map": "galaxy_mom0.fits", "distance": 9.5,
+                                                      "ring_width": "0.5beam"})
+    outcome = tr.run_job(job, "galaxy_fit")   # outcome.result, outcome.curve, outcome.gas, outcome.files
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from functools import lru_cache
+from pathlib import Path
+
+from .errors import InputError
+from .pipeline.option_fields import OptionSpec, coerce, field_specs, flat_specs
+from .pipeline.options import CubeOptions, CurveOptions, FitOptions, InputOptions
+
+__all__ = ["Job", "JobOutcome", "run_job", "read_run_file", "job_specs", "write_fit_folder", "write_result",
+           "RUN_FILE_TABLES"]
+
+RUN_FILE_TABLES = {"inputs": InputOptions, "fit": FitOptions, "curve": CurveOptions,
+                   "cube": CubeOptions}  # table -> Job field
+OUTPUT_SWITCHES = {
+    "report": OptionSpec("report", "--report", bool, "switch", False, "also write report.pdf"),
+    "png": OptionSpec("png", "--png", bool, "switch", False, "also write the report pages as PNG files"),
+}
+
+
+@lru_cache(maxsize=None)
+def job_specs() -> dict:
+    """Every option of a job by its flat name (:func:`.option_fields.flat_specs` of the three classes)."""
+    return flat_specs(*RUN_FILE_TABLES.values())
+
+
+@dataclass
+class Job:
+    """One galaxy's work. ``velocity_map``: a path, an HDU, an HDUList or ``(array, header)``.
+
+    ``record``: extra entries for the ``inputs`` section of ``fit.json`` (batch puts its key there).
+    """
+
+    velocity_map: object
+    inputs: InputOptions = field(default_factory=InputOptions)
+    fit: FitOptions = field(default_factory=FitOptions)
+    curve: CurveOptions = field(default_factory=CurveOptions)
+    cube: CubeOptions = field(default_factory=CubeOptions)
+    report: bool = False
+    png: bool = False
+    record: dict = field(default_factory=dict)
+
+    @classmethod
+    def from_values(cls, velocity_map, values: dict, where: str = "option", record: dict | None = None) -> "Job":
+        """A job from flat option values (module docstring; dashes or underscores), checked against
+        the declared types. Errors name ``where`` and the option."""
+        specs = job_specs()
+        entries_fields = {s.name: s for c in RUN_FILE_TABLES.values() for s in field_specs(c) if s.form == "entries"}
+        groups = {c: {} for c in RUN_FILE_TABLES.values()}
+        switches = {}
+        for key, value in values.items():
+            key = str(key).replace("-", "_")
+            if key in OUTPUT_SWITCHES:
+                switches[key] = coerce(OUTPUT_SWITCHES[key], value, f"{where} {key}")
+            elif key in entries_fields:  # a whole table of entries, e.g. initial = {...}
+                spec = entries_fields[key]
+                groups[spec.owner].setdefault(key, {}).update(coerce(spec, value, f"{where} {key}"))
+            elif key in specs:
+                spec = specs[key]
+                value = coerce(spec, value, f"{where} {key}")
+                if spec.parent:
+                    groups[spec.owner].setdefault(spec.parent, {})[key] = value
+                else:
+                    groups[spec.owner][key] = value
+            else:
+                known = sorted(specs) + sorted(OUTPUT_SWITCHES)
+                raise InputError(f"unknown {where} {key!r}; known: {', '.join(known)}")
+        parts = {table: owner(**groups[owner]) for table, owner in RUN_FILE_TABLES.items()}
+        return cls(velocity_map, **parts, record=dict(record or {}), **switches)
+
+
+@dataclass
+class JobOutcome:
+    """What :func:`run_job` made. ``cautions``: every :class:`.errors.FitCaution` raised while reading
+    and fitting (``result.cautions`` holds the fit's own); ``gas_note`` says why there is no ``gas.ecsv``."""
+
+    folder: Path
+    files: list
+    result: object
+    curve: object
+    gas: object = None
+    gas_note: str | None = None
+    cautions: list = field(default_factory=list)
+
+
+def read_run_file(path, per_galaxy_maps: bool = True) -> dict:
+    """Flat option values from a TOML run file (``[inputs]``, ``[fit]`` with ``[fit.initial]``, ``[curve]``).
+
+    Map file names are read relative to the run file's folder. ``per_galaxy_maps=False`` (batch)
+    refuses map files there: they differ per galaxy and belong in the manifest.
+    """
+    if path is None:
+        return {}
+    config = _load_toml(path)
+    unknown = set(config) - set(RUN_FILE_TABLES)
+    if unknown:
+        raise InputError(f"run file {path}: unknown table(s) {sorted(unknown)}; use "
+                         + ", ".join(f"[{t}]" for t in RUN_FILE_TABLES))
+    values = {}
+    for table, cls in RUN_FILE_TABLES.items():
+        specs = {spec.name: spec for spec in field_specs(cls)}
+        for key, value in config.get(table, {}).items():
+            key = str(key).replace("-", "_")
+            where = f"run file {path}: [{table}] {key}"
+            if key not in specs:
+                raise InputError(f"run file {path}: unknown key {key!r} in [{table}]; known: {', '.join(specs)}")
+            spec = specs[key]
+            value = coerce(spec, value, where)
+            if spec.path:
+                if not per_galaxy_maps:
+                    raise InputError(f"{where}: maps differ per galaxy; give them as manifest columns")
+                value = str(Path(path).parent / value)
+            if spec.form == "entries":
+                values.update(value)
+            else:
+                values[key] = value
+    return values
+
+
+def _load_toml(path) -> dict:
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"run file {path} does not exist") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"run file {path} is not valid TOML: {exc}") from None
+
+
+# ---------------------------------------------------------------------------------------------- the steps
+def read_maps(job: Job):
+    """Steps read and bin: the :class:`.io.maps.VelocityMap` of the job (binned when ``bin`` > 1)."""
+    return read_job_maps(job)[0]
+
+
+def read_job_maps(job: Job) -> tuple:
+    """Steps read and bin: (the job's :class:`.io.maps.VelocityMap`, the :class:`.io.velocity_fields.VelocityMaps`
+    made from it when ``velocity_map`` is a spectral cube, else None)."""
+    from .io.binning import bin_map
+    from .io.maps import read_velocity_map
+
+    cube_maps = cube_velocity_maps(job)
+    if cube_maps is not None:
+        vmap = cube_maps.to_velocity_map(beam=job.inputs.beam)
+    else:
+        vmap = read_velocity_map(job.velocity_map, **job.inputs.read_arguments())
+    if job.inputs.bin is not None:
+        vmap = bin_map(vmap, job.inputs.bin)
+    return vmap, cube_maps
+
+
+def cube_velocity_maps(job: Job):
+    """Velocity maps made from the job's input when it is a spectral cube (:mod:`.io.velocity_fields`), else None.
+
+    Map inputs that the cube replaces are refused, and so are cube options given for a 2-D map."""
+    from .io.cube import LineCube, looks_like_cube
+
+    source = job.velocity_map
+    if not (isinstance(source, LineCube) or (isinstance(source, (str, Path)) and looks_like_cube(source))):
+        if job.cube != CubeOptions():
+            given = [k for k, v in job.cube.__dict__.items() if v != getattr(CubeOptions(), k)]
+            raise InputError(f"cube option(s) {', '.join(given)} given, but {source} is not a spectral cube")
+        return None
+    replaced = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale")
+                if getattr(job.inputs, k) is not None]
+    if replaced:
+        raise InputError(f"{source} is a spectral cube, whose maps are made from it, so {', '.join(replaced)} cannot "
+                         "be given; make maps with 'tiltedring maps' and fit those to use your own")
+    from .io.velocity_fields import make_velocity_maps
+
+    return make_velocity_maps(source, **job.cube.map_arguments())
+
+
+def input_record(job: Job, cube_maps=None) -> dict:
+    """The ``inputs`` section of ``fit.json``: every file with its SHA-256, the other input options, the
+    curve options, and ``job.record``; for a cube, the cube, its options and the maps made from it."""
+    record = {"velocity_map": _file_entry(job.velocity_map)}
+    if cube_maps is not None:
+        record = {"cube": _file_entry(job.velocity_map), "cube_options": job.cube.to_dict(),
+                  "maps_from_cube": {"folder": "maps", **{k: cube_maps.record[k] for k in (
+                      "velocity_kind", "velocity_convention", "velocity_frame", "rest_frequency_hz")}}}
+    for spec in field_specs(type(job.inputs)):
+        value = getattr(job.inputs, spec.name)
+        if value is not None:
+            record[spec.name] = _file_entry(value) if spec.path else value
+    record["curve"] = job.curve.to_dict()
+    record.update(job.record)
+    return record
+
+
+def _file_entry(source) -> dict:
+    from .products.result import file_checksum
+
+    if isinstance(source, (str, Path)):
+        return {"path": str(Path(source).resolve()), "sha256": file_checksum(source)}
+    return {"path": None, "sha256": None, "given_as": type(source).__name__}
+
+
+def gas_product(result, curve) -> tuple:
+    """Step gas: (``gas.ecsv`` table or None, why it is missing or None).
+
+    Needs the intensity map in K km/s or Jy/beam km/s and a distance (:mod:`.massmodel.gas`)."""
+    from .massmodel.gas import gas_table
+
+    if result.vmap.intensity is None:
+        return None, "no gas.ecsv: no intensity map given"
+    distance = (curve.meta.get("distance") or {}).get("value_mpc")
+    if distance is None:
+        return None, "no gas.ecsv: no distance (give a distance or a redshift)"
+    try:
+        return gas_table(result, distance), None
+    except InputError as exc:
+        return None, f"no gas.ecsv: {exc}"
+
+
+def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = None, report: bool = False,
+                     png: bool = False, overwrite: bool = False, cube_maps=None) -> list:
+    """Steps report and write: every output into a temporary folder, renamed onto ``folder`` when all
+    are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
+
+    Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
+    ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``; ``report_*.png``
+    with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
+    says under ``gas`` whether ``gas.ecsv`` was written and why not.
+    """
+    from .io.atomic import atomic_folder, write_json
+    from .io.maps import write_map
+    from .products.result import write_table
+
+    record = result.record()
+    record["gas"] = {"written": gas is not None, "note": gas_note}
+    with atomic_folder(folder, overwrite=overwrite) as tmp:
+        write_table(result.rings, tmp / "rings.ecsv")
+        for name, table in result.stages.items():
+            if name != "final":
+                write_table(table, tmp / f"stage_{name}.ecsv")
+        write_map(tmp / "model.fits", result.model, result.vmap, extra={"ORIGIN": "tiltedring model field"})
+        write_map(tmp / "residual.fits", result.residual, result.vmap, extra={"ORIGIN": "tiltedring data - model"})
+        curve.write(tmp / "curve.ecsv")
+        if gas is not None:
+            write_table(gas, tmp / "gas.ecsv", comment=gas.meta.get("comment"))
+        write_json(tmp / "fit.json", record)
+        if cube_maps is not None:
+            cube_maps.write_into(tmp / "maps")
+        if report:
+            from .products.plotting import write_report
+
+            write_report(result, tmp / "report.pdf", png_folder=tmp if png else None)
+        files = sorted(p.name for p in tmp.iterdir())
+    return files
+
+
+def write_result(result, folder, overwrite: bool = False, curve=None, report: bool = False, png: bool = False) -> list:
+    """Steps gas, report and write for a fit already made (:meth:`.products.result.FitResult.write`).
+
+    ``curve``: the :class:`.products.curve.RotationCurve` to write (default: one without a distance).
+    """
+    curve = curve if curve is not None else result.curve()
+    gas, note = gas_product(result, curve)
+    return write_fit_folder(folder, result, curve, gas, note, report=report, png=png, overwrite=overwrite)
+
+
+def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
+    """Read, bin, fit, make the curve and the gas profile, draw the report and write it all into ``folder``.
+
+    A spectral cube as ``velocity_map`` is first turned into velocity maps (``job.cube``), written
+    into ``folder/maps`` with the rest.
+
+    An existing non-empty ``folder`` is refused before any work unless ``overwrite=True``; nothing
+    is left in ``folder`` when a step fails.
+    """
+    from .errors import FitCaution
+    from .io.atomic import check_output_folder
+    from .pipeline.staged import fit_velocity_map
+
+    folder = Path(folder)
+    check_output_folder(folder, overwrite)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FitCaution)
+        vmap, cube_maps = read_job_maps(job)
+        result = fit_velocity_map(vmap, job.fit)
+        curve = result.curve(**job.curve.to_dict())
+    result.inputs = input_record(job, cube_maps)
+    gas, gas_note = gas_product(result, curve)
+    files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
+                             overwrite=overwrite, cube_maps=cube_maps)
+    cautions = [str(w.message) for w in caught if issubclass(w.category, FitCaution)]
+    return JobOutcome(folder, files, result, curve, gas, gas_note, cautions)
