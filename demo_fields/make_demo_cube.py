@@ -8,7 +8,7 @@ invented. It is drawn by an analytic generator that shares no code with tiltedri
 sub-pixels of every pixel is put on the tilted disc with scipy's Rotation, given the line-of-sight
 speed of circular rotation and an exponential surface brightness, and its Gaussian line (dispersion
 10 km/s) is integrated over every channel with scipy.special.ndtr. Channels are then smoothed by a
-Gaussian beam and given white noise. A narrow Milky-Way-like foreground line at 8 km/s, covering the
+Gaussian beam and given white noise. A narrow foreground line at 8 km/s (like local Galactic HI), covering the
 whole field, overlaps the approaching side: exclude it with --exclude-velocities=-5:20.
 """
 

@@ -376,6 +376,9 @@ def test_fit_a_cube_from_the_command_line(tmp_path, demo_fields, quiet):
     assert (out / "maps" / "velocity.fits").is_file() and (out / "maps" / "maps.json").is_file()
     record = json.loads((out / "fit.json").read_text())
     assert "cube" in record["inputs"] and record["inputs"]["maps_from_cube"]["velocity_kind"] == "hermite"
+    assert json.loads((out / "maps" / "maps.json").read_text())["beam_arcsec"][0] == pytest.approx(truth["beam_fwhm"])
+    with fits.open(out / "model.fits") as hdul:  # the cube's beam reached the fit and its outputs
+        assert hdul[0].header["BMAJ"] * 3600 == pytest.approx(truth["beam_fwhm"])
     code = main(["fit", str(demo_fields / "dunmore_cube.fits"), "--intensity-map", str(out / "maps" / "intensity.fits"),
                  "--out", str(tmp_path / "other"), "-q"])
     assert code == 2  # maps are made from the cube: other maps are refused

@@ -338,10 +338,15 @@ def _cube_specs() -> dict:
 
 
 def run_maps(args) -> int:
+    import warnings
+
+    from .errors import FitCaution
     from .io.velocity_fields import make_velocity_maps
     from .pipeline.options import CubeOptions
 
-    maps = make_velocity_maps(args.cube, **CubeOptions(**job_values(args, _cube_specs())).map_arguments())
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FitCaution)  # printed below from the record
+        maps = make_velocity_maps(args.cube, **CubeOptions(**job_values(args, _cube_specs())).map_arguments())
     maps.write(args.out, overwrite=args.overwrite)
     if not args.quiet:
         rec = maps.record
@@ -354,6 +359,8 @@ def run_maps(args) -> int:
         for key, value in rec["fits"].items():
             if value and key != "spectra_fitted":
                 print(f"note: {key.replace('_', ' ')}: {value}")
+        for text in rec["cautions"]:
+            print(f"caution: {text}")
         print(f"wrote {args.out}/" + ", ".join(v for v in rec["files"].values()))
     return EXIT_OK
 

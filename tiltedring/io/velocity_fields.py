@@ -24,6 +24,7 @@ fitted Gaussian sigma for the fits; neither is corrected for the channel width o
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,7 +32,7 @@ import numpy as np
 from astropy import units as u
 from astropy.io import fits
 
-from ..errors import InputError
+from ..errors import FitCaution, InputError
 from .cube import LineCube, read_cube
 from .cube_mask import make_signal_mask
 from .maps import Beam, read_velocity_map
@@ -80,7 +81,8 @@ class VelocityMaps:
     def to_velocity_map(self, **options):
         """The :class:`~tiltedring.io.maps.VelocityMap` of these maps (beam and intensity included)."""
         pairs = self.pairs()
-        options.setdefault("beam", self.beam)
+        if options.get("beam") is None:
+            options["beam"] = self.beam
         vmap = read_velocity_map(pairs.pop("source"), **pairs, **options)
         vmap.source = self.record.get("source", "cube")
         return vmap
@@ -173,10 +175,28 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     intensity = np.where(moments["valid"], moments["intensity"], np.nan)
     unit = u.Unit(cube.unit) * u.km / u.s
     record = _record(cube, kind, signal, counts, velocity)
+    record["cautions"] = _cautions(signal.record, counts, int(moments["valid"].sum()))
+    for text in record["cautions"]:
+        warnings.warn(text, FitCaution, stacklevel=2)
     return VelocityMaps(velocity=velocity, velocity_error=error, intensity=intensity,
                         dispersion=np.where(np.isfinite(velocity), dispersion, np.nan), mask=signal.mask, kind=kind,
                         header=cube.header.copy(), beam=cube.beam, intensity_unit=unit.to_string(format="fits"),
                         channel_velocity=cube.velocity.copy(), convention=cube.convention, h3=h3, record=record)
+
+
+def _cautions(mask_record, counts, n_valid) -> list:
+    """Where the maps may mislead: foreground subtracted by interpolation, many pixels lost."""
+    out = []
+    if mask_record["exclusion"] == "interpolate" and mask_record["foreground_interpolated_pixels"]:
+        out.append(f"foreground in the excluded velocity ranges was interpolated from around the galaxy and "
+                   f"subtracted on {mask_record['foreground_interpolated_pixels']} pixels: velocities there assume a "
+                   "foreground smooth across the galaxy (exclusion='veto' leaves those channels out instead)")
+    lost = {"pixels_blanked_near_excluded_velocities": "lie next to a vetoed velocity range",
+            "pixels_blanked_by_failed_fits": "have a line profile the fit could not follow"}
+    for key, why in lost.items():
+        if n_valid and counts.get(key, 0) > 0.1 * n_valid:
+            out.append(f"{counts[key]} of {n_valid} pixels with emission got no velocity because they {why}")
+    return out
 
 
 def _near_excluded(velocity, dispersion, channel_width, ranges):

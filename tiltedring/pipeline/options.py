@@ -199,7 +199,7 @@ class CubeOptions:
                                      "(the peak of a Gauss-Hermite fit with h3)")
     exclude_velocities: str | None = option(None, group="cube", metavar="LO:HI[,LO:HI]",
                                             help="velocity ranges (km/s, the cube's convention) holding foreground, "
-                                                 "e.g. Milky Way HI; a range starting with a minus sign needs the "
+                                                 "e.g. Galactic HI; a range starting with a minus sign needs the "
                                                  "'=' form: --exclude-velocities=-60:5")
     exclusion: str = option("interpolate", group="cube", choices=EXCLUSION_NAMES,
                             help="how the excluded ranges are treated: interpolate (vetoed off the galaxy; on it the "
