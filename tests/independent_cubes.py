@@ -1,9 +1,10 @@
 """Spectral cubes of thin discs drawn WITHOUT the project's own code.
 
 Test particles on circular orbits are tilted and turned onto the sky with
-``scipy.spatial.transform.Rotation`` (``independent_fields.particle_sky``), placed on a pixel grid
-by a linear mapping onto the grid of an ``astropy.wcs`` WCS, and each particle's line (a Gaussian of the gas dispersion about its
-line-of-sight velocity) is integrated exactly over every channel with ``scipy.special.ndtr``. Each
+``scipy.spatial.transform.Rotation`` (``independent_fields.particle_sky``), placed by a linear
+mapping onto the pixel grid of an ``astropy.wcs`` WCS, and each particle's line (a Gaussian of the
+gas dispersion about its line-of-sight velocity) is integrated exactly over every channel with
+``scipy.special.ndtr``. Each
 channel is then smoothed by a Gaussian beam (``scipy.ndimage``) and given white noise. A narrow,
 spatially extended foreground line can be added. The spectral axis is written as a FITS velocity
 (VRAD) or frequency (FREQ) axis; frequencies come from astropy's Doppler equivalencies.

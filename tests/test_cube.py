@@ -382,3 +382,20 @@ def test_fit_a_cube_from_the_command_line(tmp_path, demo_fields, quiet):
     code = main(["fit", str(demo_fields / "dunmore_cube.fits"), "--intensity-map", str(out / "maps" / "intensity.fits"),
                  "--out", str(tmp_path / "other"), "-q"])
     assert code == 2  # maps are made from the cube: other maps are refused
+
+
+def test_cube_options_in_a_run_file_and_on_a_map(tmp_path, demo_fields, quiet):
+    """The [cube] table of a run file reaches the maps; cube options given for a 2-D map are refused."""
+    from tiltedring.jobs import Job, read_run_file, run_job
+
+    run_file = tmp_path / "run.toml"
+    run_file.write_text('[cube]\nvelocity_kind = "gaussian"\nexclude_velocities = "-5:20"\nexclusion = "veto"\n'
+                        '[fit]\nresamples = 0\nbeam_correction = false\n')
+    job = Job.from_values(demo_fields / "dunmore_cube.fits", read_run_file(run_file))
+    outcome = run_job(job, tmp_path / "fit")
+    record = json.loads((tmp_path / "fit" / "maps" / "maps.json").read_text())
+    assert record["velocity_kind"] == "gaussian" and record["mask"]["exclusion"] == "veto"
+    assert outcome.result.inputs["cube_options"]["velocity_kind"] == "gaussian"
+    code = main(["fit", str(demo_fields / "ashgrove_velocity.fits"), "--velocity-kind", "gaussian",
+                 "--out", str(tmp_path / "map_fit"), "-q"])
+    assert code == 2

@@ -135,7 +135,8 @@ class VelocityMaps:
 
 def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), exclusion: str = "interpolate",
                        keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3,
-                       spatial_smoothing: float = 1.0, spectral_smoothing: float = 3.0, window_margin: int = 4, threads: int | None = None,
+                       spatial_smoothing: float = 1.0, spectral_smoothing: float = 3.0, window_margin: int = 4,
+                       threads: int | None = None,
                        **read_options) -> VelocityMaps:
     """Velocity, error, moment-0 and dispersion maps of a cube (see the module docstring for ``kind``).
 
@@ -304,7 +305,8 @@ def _record(cube, kind, signal, counts, velocity) -> dict:
         "noise": {"median": float(np.median(noise)), "min": float(noise.min()), "max": float(noise.max()),
                   "per_channel": [float(v) for v in noise],
                   "method": "median of -x over negative pixels / 0.6745, per channel"},
-        "mask": signal.record, "minimum_intensity_snr": MINIMUM_SNR, "fits": counts, "pixels_with_velocity": int(np.isfinite(velocity).sum()),
+        "mask": signal.record, "minimum_intensity_snr": MINIMUM_SNR, "fits": counts,
+        "pixels_with_velocity": int(np.isfinite(velocity).sum()),
         "dispersion": "moment-2 width" if kind in ("moment", "peak") else
         "fitted Gaussian sigma (km/s); not corrected for channel width or beam",
         "files": {k: v for k, v in MAP_FILES.items() if k != "h3" or kind == "hermite"},
