@@ -133,8 +133,10 @@ def _mass_parser(sub):
     p.add_argument("curve", help="curve.ecsv, a table, or a SPARC *_rotmod.dat file")
     p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
-    p.add_argument("--models", default="isothermal,nfw,burkert,einasto,mond",
-                   help="comma-separated: isothermal, nfw, burkert, einasto, mond, none (default: all but none)")
+    from .massmodel import model_names
+
+    p.add_argument("--models", default=",".join(model_names(include_none=False)),
+                   help=f"comma-separated: {', '.join(model_names())} (default: all but none)")
     p.add_argument("--components", help="table of baryonic speed curves for M/L = 1")
     p.add_argument("--gas", help="gas.ecsv written by 'tiltedring fit' (HI surface density with helium): "
                                  "its thin-disc speed becomes the gas component")

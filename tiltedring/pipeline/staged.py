@@ -532,14 +532,8 @@ def _diagnose(final, vmap, pixels, layout, options, usable) -> dict:
                                                                      "inclination")}
     columns, ring_flags, summary = diagnose(pixels, vmap.sky_jacobian, rings, layout.inner, layout.outer,
                                             vmap.pixels_per_beam, bar_range=options.bar_range)
-    kms = u.km / u.s
-    for name, values in columns.items():
-        if name == "flow_model":
-            final[name] = [str(v) for v in values]
-        elif name.startswith(("harmonic_c", "harmonic_s", "noncircular_amplitude", "noncircular_in_plane", "v_")):
-            final[name] = np.asarray(values, float) * kms
-        else:
-            final[name] = np.asarray(values, float)
+    for name, values in columns.items():  # each column carries its unit already
+        final[name] = values
     final["flags"] = [ringflags.join(ringflags.split(f) + sorted(extra)) for f, extra in zip(final["flags"], ring_flags)]
     if "v_rotation_approaching" in final.colnames:
         final["v_rotation_difference"] = final["v_rotation_receding"] - final["v_rotation_approaching"]

@@ -167,7 +167,7 @@ class FitResult:
             "stages": stage_summaries,
             "statistics": self.statistics(),
             "error_columns": ERROR_COLUMNS,
-            "flag_vocabulary": ringflags.FLAGS,
+            "flag_vocabulary": ringflags.vocabulary(),
             "cautions": self.cautions,
         }
 
