@@ -167,6 +167,14 @@ def _mass_parser(sub):
     p.set_defaults(run=run_massmodel)
 
 
+def _unit_note(name: str, units: dict) -> str:
+    """`` (km / s)`` after a parameter, `` (log10 of km / s)`` after a log10_ one; nothing when unitless."""
+    unit = units.get(name, "")
+    if not unit:
+        return ""
+    return f" (log10 of {unit})" if name.startswith("log10_") else f" ({unit})"
+
+
 def run_massmodel(args) -> int:
     from .errors import InputError
     from .massmodel import (
@@ -208,7 +216,8 @@ def run_massmodel(args) -> int:
     if not args.quiet:
         print(f"{curve.name}: {len(curve.radius)} points")
         for name, r in results.items():
-            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}" for k, v in r.parameters.items())
+            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}{_unit_note(k, r.units)}"
+                               for k, v in r.parameters.items())
             print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
         if all(r.parameters == {} for r in results.values()) and baryons.disc is None and baryons.gas is None:
             print("caution: no baryonic components given: the halo alone carries the curve")

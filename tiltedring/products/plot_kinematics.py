@@ -165,6 +165,7 @@ def plot_harmonics(result, ax=None):
     ax.set_ylim(*limits)
     for x, y in drawn:
         mark_outside(ax, x, y, limits, colour=GREY)
+    mark_outside(ax, r, total, limits)
     ax.set_xlim(0, _value(t["radius_outer"])[-1])
     _legend(ax, ncol=4, loc="lower left", bbox_to_anchor=(0.0, 1.01), columnspacing=0.9, borderaxespad=0.0)
     return fig
