@@ -66,7 +66,7 @@ def plot_mass_model(mass_result, axes=None):
     half = max(abs(lim[0]), abs(lim[1]))
     low.set_ylim(-half, half)
     mark_outside(low, r, residual, (-half, half))
-    low.set_ylabel("obs \N{MINUS SIGN} model")
+    low.set_ylabel("obs \N{MINUS SIGN} model\n(km/s)")
     low.set_xlabel("radius (kpc)")
     low.set_xlim(0, r.max() * 1.04)
     style_axes(low)
