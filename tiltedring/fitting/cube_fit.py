@@ -137,6 +137,11 @@ def fit_curve_on_cube(cube, rings: dict, edges, within_beams: float = 4.0, subpi
     outer = everything[~np.isin(everything, inner)]
     if len(outer):
         err["dispersion"][outer] = spread.match(table, edges[-1], outer, passes)
+        odd = outer[(table["dispersion"][outer] <= MIN_DISPERSION * 1.001) | (table["dispersion"][outer] > 50.0)]
+        if odd.size:
+            cautions.append("dispersion matched by line width at its floor or above 50 km/s at radius "
+                            + ", ".join(f"{r:.1f}" for r in table["radius"][odd]) + " arcsec: faint or noisy "
+                            "lines, or a map curve far from the data there; do not trust those values")
     model = model_cube(grid, table, edges[-1], subpixels=subpixels, threads=threads)
     table["v_rotation_err"] = err["v_rotation"]
     table["dispersion_err"] = err["dispersion"]
