@@ -175,3 +175,19 @@ def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
         spectral = wcs.spectral.pixel_to_world(np.arange(cube.data.shape[0]))
         np.testing.assert_allclose(spectral.to_value("km/s"), cube.velocity, atol=1e-6)
         np.testing.assert_allclose(model[0].data + residual[0].data, cube.data, atol=1e-5 * cube.data.max())
+
+
+def test_cube_pages_draw_data_and_model(chained):
+    """Channel maps and major/minor position-velocity slices: figures without pyplot, with the model as
+    contours on every panel that shows emission."""
+    import matplotlib
+
+    from tiltedring.products.cube_figures import cube_pages
+
+    backend = matplotlib.get_backend()
+    result, cube, truth = chained
+    pages = dict(cube_pages(result))
+    assert set(pages) == {"channel_maps", "position_velocity"}
+    assert len(pages["channel_maps"].axes) == 9 and len(pages["position_velocity"].axes) == 2
+    assert all(ax.collections for ax in pages["position_velocity"].axes)  # model contours drawn
+    assert matplotlib.get_backend() == backend
