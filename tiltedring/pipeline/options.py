@@ -17,16 +17,17 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 from ..errors import InputError
+from ..fitting.parameters import PARAMETERS
 from .option_fields import coerce, field_specs, option, recorded_values
 
 __all__ = ["FitOptions", "InputOptions", "CurveOptions", "CubeOptions", "RING_PARAMETER_NAMES",
            "AZIMUTH_WEIGHT_NAMES",
            "HALF_NAMES"]
 
-# Spelled here so that the command line is built without importing the numerics; tests check them
-# against fitting.kinematics.PARAMETERS, fitting.engine.AZIMUTH_WEIGHTS and fitting.engine.HALVES.
-RING_PARAMETER_NAMES = ("x_center", "y_center", "v_systemic", "position_angle", "inclination", "v_rotation",
-                        "v_radial")
+# The parameter names come from their one definition (fitting/parameters.py imports no numerics). The
+# choices below are spelled here so that the command line is built without importing the numerics;
+# tests check them against fitting.engine.AZIMUTH_WEIGHTS and fitting.engine.HALVES.
+RING_PARAMETER_NAMES = PARAMETERS
 AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
 HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
@@ -107,8 +108,6 @@ class FitOptions:
                          help="no progress messages (on the command line: -q/--quiet)")
 
     def __post_init__(self):
-        from ..fitting.kinematics import PARAMETERS
-
         self.fixed = tuple(self.fixed)
         for name in ("ring_edges", "bar_range"):
             if getattr(self, name) is not None:
