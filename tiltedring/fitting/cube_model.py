@@ -39,7 +39,7 @@ import numpy as np
 from numba import njit
 
 from ..errors import InputError
-from .geometry import DEG, place_pixel, project, ring_trig
+from .geometry import DEG, place_pixel, project, ring_planes
 from .kinematics import PARAMETERS
 from .threads import run_parts, thread_count
 
@@ -164,7 +164,8 @@ def _sky_rows(row_lo, row_hi, x0, y0, nxb, sub, jac, radii, xc, yc, vsys, pa, in
     surface_brightness) of ring r at ``deriv[3 slot[r] + (0, 1, 2)]`` for rings with ``slot[r] >= 0``."""
     last = radii.shape[0] - 1
     n_edges = edges.shape[0]
-    sp, cp, ci = ring_trig(pa, inc)
+    planes = ring_planes(radii, xc, yc, pa, inc)
+    sp, cp, ci = planes.sin_pa, planes.cos_pa, planes.cos_inc
     si = np.sin(inc * DEG)
     share = 1.0 / (sub * sub)
     want = deriv.shape[0] > 0
@@ -179,7 +180,7 @@ def _sky_rows(row_lo, row_hi, x0, y0, nxb, sub, jac, radii, xc, yc, vsys, pa, in
                 y = y0 + row + (a + 0.5) / sub - 0.5
                 for b in range(sub):
                     x = x0 + col + (b + 0.5) / sub - 0.5
-                    pos, _ = place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer)
+                    pos, _ = place_pixel(x, y, jac, planes, r_outer)
                     if pos < 0.0:
                         continue
                     j = min(int(pos), last)
