@@ -32,6 +32,7 @@ AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
 HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
 EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
+CHANNEL_RESPONSE_NAMES = ("boxcar", "hanning")  # fitting.cube_model.CHANNEL_RESPONSES
 
 STARTING_VALUES = {
     "x_center": "pixels, 0-based", "y_center": "pixels, 0-based", "ra_center": "deg", "dec_center": "deg",
@@ -217,6 +218,16 @@ class CubeOptions:
     velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
                                              help="velocities in this convention (default: the cube's own; radio "
                                                   "for a frequency axis, optical for a wavelength axis)")
+
+    curve_from_cube: bool = option(True, group="cube",
+                                   help="skip refitting the inner rings' rotation speed and dispersion on the cube "
+                                        "itself (on by default for cubes; also makes model_cube.fits)")
+    cube_fit_beams: float = option(4.0, group="cube", metavar="BEAMS",
+                                   help="rings whose radius is within this many beams are fitted on the cube; the "
+                                        "others keep the map's rotation speed")
+    channel_response: str = option("boxcar", group="cube", choices=CHANNEL_RESPONSE_NAMES,
+                                   help="spectral response of a channel in the model cube: boxcar (one channel "
+                                        "wide) or hanning (boxcar then Hanning-smoothed, for Hanning-smoothed cubes)")
 
     def to_dict(self) -> dict:
         return asdict(self)
