@@ -50,7 +50,13 @@ def test_batch_on_local_dask_cluster_then_resume(tmp_path):
     catalogue = Table.read(out / "catalogue.ecsv")
     assert len(catalogue) == n_good + n_bad
     assert (catalogue["status"] == "ok").sum() == n_good
+    ok = catalogue[catalogue["status"] == "ok"]
+    # the fields carry 3 km/s of injected noise (synthetic.make_field): the residual rms must be near it
+    assert str(catalogue["residual_rms"].unit) == "km / s"
+    assert np.all((ok["residual_rms"] > 1.5) & (ok["residual_rms"] < 6.0))
+    assert np.all(ok["cautions"] >= 1)  # at least "no error map" for every field
     failed = catalogue[catalogue["status"] == "failed"]
+    assert np.all(failed["cautions"] == -1)
     reasons = dict(zip(failed["name"], failed["error"]))
     assert "not a FITS file" in reasons["not_fits"]
     assert "no celestial" in reasons["cube"]  # read as a spectral cube, which this WCS-less file cannot be

@@ -9,10 +9,23 @@ from tiltedring.cli import main
 from tiltedring.synthetic import DiscTruth, make_field
 
 
+def _panel_pixels(png, ax):
+    """RGB pixels of the PNG inside ``ax``'s drawn box (figure fraction -> pixel rows from the top)."""
+    h, w = png.shape[:2]
+    box = ax.get_position()
+    rows = slice(int((1 - box.y1) * h) + 2, int((1 - box.y0) * h) - 2)
+    cols = slice(int(box.x0 * w) + 2, int(box.x1 * w) - 2)
+    return png[rows, cols, :3]
+
+
 def test_compare_two_grids_of_one_galaxy(tmp_path):
     """One invented galaxy drawn on a 2-arcsec north-up grid and a 3-arcsec grid rotated by 25 deg: the
     second is reprojected (reproject, bilinear) onto the first; identical kinematics differ only by noise
-    and regridding (rms well below 5 km/s); outputs are the difference map, statistics and a figure."""
+    and regridding (rms well below 5 km/s); outputs are the difference map, statistics and a figure.
+
+    The figure (comparison.png, read with matplotlib.image) shows the rotation: each velocity panel
+    has an approaching (blue) and a receding (copper) half, and the difference panel is not one flat
+    colour (on the former shared scale of +/-1500 km/s all three panels were flat)."""
     from dataclasses import replace
 
     truth = DiscTruth(name="Dunmere Disc", x_center=63.5, y_center=63.5)  # centre on the sky at (ra, dec)
@@ -35,6 +48,29 @@ def test_compare_two_grids_of_one_galaxy(tmp_path):
     assert set(stats["kind"]) == {"ring", "azimuth"}
     assert any("reprojected" in n for n in stats.meta["notes"])
     assert (out / "comparison.png").stat().st_size > 10_000
+    import io
+
+    import matplotlib.image
+    from astropy import units as u
+
+    from tiltedring.products.compare import compare_maps
+
+    png = matplotlib.image.imread(out / "comparison.png")
+    layout = compare_maps([pa, pb], names=["fine", "coarse"]).plot()
+    layout.savefig(io.BytesIO(), dpi=130)  # the same layout, drawn, gives the panels' boxes
+    panels = [ax for ax in layout.axes if hasattr(ax, "coords")]
+    assert len(panels) == 3
+    for k, ax in enumerate(panels):
+        rgb = _panel_pixels(png, ax)
+        assert rgb.std(axis=(0, 1)).max() > 0.08, k  # not flat
+        if k < 2:  # velocity maps: both halves of the rotation are there
+            blue = (rgb[..., 2] - rgb[..., 0]) > 0.15
+            copper = (rgb[..., 0] - rgb[..., 2]) > 0.15
+            assert blue.mean() > 0.05 and copper.mean() > 0.05, k
+    assert set(stats["difference"]) == {"coarse - fine"}
+    assert set(stats["map"]) == {"coarse"} and set(stats["reference"]) == {"fine"}
+    assert stats["rms"].unit == u.km / u.s
+    assert stats.meta["kinds"] == {"fine": "velocity", "coarse": "velocity"}
 
 
 def test_report_has_readable_pages(tmp_path, demo_fields):

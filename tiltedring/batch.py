@@ -13,7 +13,8 @@ finished-looking folder). A galaxy counts as finished when its folder holds ``fi
 ``batch_key`` (a hash of the row, the shared options and the tool version) matches the current
 one; re-running the same command skips finished galaxies and retries failed ones. Failures are
 recorded, never fatal. ``OUT/catalogue.ecsv`` has one row per galaxy: name, status (``ok`` /
-``failed``), geometry, v_flat, decisions, flags, run time and the error message.
+``failed``), geometry, v_flat, residual rms, the number of cautions, decisions, flags, run time and
+the error message.
 
 Runs on a local dask.distributed cluster (one single-threaded worker process per core) by
 default, on an existing cluster with ``scheduler``, or in this process with ``workers=1``.
@@ -118,7 +119,8 @@ def fit_one(row: dict, shared: dict, out_dir) -> dict:
         g = result.geometry()
         entry.update({k: g[k] for k in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic",
                                        "position_angle", "inclination")})
-        entry.update(status="ok", v_flat=_v_flat(result.rings),
+        entry.update(status="ok", v_flat=_v_flat(result.rings), cautions=len(result.cautions),
+                     residual_rms=result.statistics()["residual_rms"],
                      warp=bool(result.diagnostics.get("warp", {}).get("detected")),
                      non_circular=bool(result.diagnostics.get("non_circular", {}).get("detected")),
                      flags=";".join(sorted({f for s in result.rings["flags"] for f in str(s).split(",") if f})))
@@ -149,7 +151,9 @@ def _finished(row, shared, out_dir):
     return {"name": row["name"], "status": "ok", "error": "", "seconds": 0.0,
             **{k: g[k] for k in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
                                  "inclination")},
-            "v_flat": _v_flat(rings), "warp": bool(fit.get("warp", {}).get("detected")),
+            "v_flat": _v_flat(rings), "cautions": len(fit.get("cautions", [])),
+            "residual_rms": (fit.get("statistics") or {}).get("residual_rms"),
+            "warp": bool(fit.get("warp", {}).get("detected")),
             "non_circular": bool(fit.get("non_circular", {}).get("detected")),
             "flags": ";".join(sorted({f for s in rings["flags"] for f in str(s).split(",") if f})), "skipped": True}
 
@@ -160,17 +164,22 @@ def _write_catalogue(out_dir, entries):
     from .io.atomic import atomic_path
 
     columns = ("name", "status", "x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
-               "inclination", "v_flat", "warp", "non_circular", "flags", "seconds", "error")
+               "inclination", "v_flat", "residual_rms", "cautions", "warp", "non_circular", "flags", "seconds", "error")
     units = {"ra_center": "deg", "dec_center": "deg", "v_systemic": "km/s", "position_angle": "deg",
-             "inclination": "deg", "v_flat": "km/s", "seconds": "s", "x_center": "pix", "y_center": "pix"}
+             "inclination": "deg", "v_flat": "km/s", "residual_rms": "km/s", "seconds": "s", "x_center": "pix",
+             "y_center": "pix"}
     data = {c: [e.get(c, np.nan if c not in ("name", "status", "flags", "error", "warp", "non_circular") else "")
                 for e in entries] for c in columns}
+    data["cautions"] = [int(v) if np.isfinite(v) else -1 for v in np.asarray(data["cautions"], float)]
+    data["residual_rms"] = [np.nan if v is None else float(v) for v in data["residual_rms"]]
     for c in ("warp", "non_circular"):
         data[c] = [str(v) if v != "" else "" for v in data[c]]
     table = Table(data)
     for c, unit in units.items():
         table[c].unit = unit
-    table.meta["comment"] = "tiltedring batch catalogue; status ok or failed; error gives the reason"
+    table.meta["comment"] = ("tiltedring batch catalogue; status ok or failed; error gives the reason; cautions: "
+                             "number of cautions in the galaxy's fit.json (-1 for a failed fit); residual_rms: rms of "
+                             "data - model over the modelled pixels")
     with atomic_path(Path(out_dir) / "catalogue.ecsv") as tmp:
         table.write(tmp, format="ascii.ecsv")
 

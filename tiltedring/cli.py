@@ -47,10 +47,12 @@ GROUP_TITLES = {  # help sections of the generated options, in this order
 _ARGUMENT_TYPES = {float: float, int: int}
 
 
-def _common() -> argparse.ArgumentParser:
+def _common(verbose: str | None = None) -> argparse.ArgumentParser:
+    """-q for every command; -v only where it prints something more (``verbose``: what it prints)."""
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("-q", "--quiet", action="store_true", help="print errors only")
-    common.add_argument("-v", "--verbose", action="store_true", help="print the ring table too")
+    if verbose:
+        common.add_argument("-v", "--verbose", action="store_true", help=verbose)
     return common
 
 
@@ -95,7 +97,9 @@ def job_values(args, specs: dict | None = None) -> dict:
 
 
 def _fit_parser(sub):
-    p = sub.add_parser("fit", parents=[_common()], help="fit a tilted-ring model to a velocity map",
+    p = sub.add_parser("fit", parents=[_common("also print the ring table: radius, position angle, inclination, "
+                                               "v_rotation with its error, flags")],
+                       help="fit a tilted-ring model to a velocity map",
                        description="Fit a tilted-ring model to a 2-D velocity (moment-1) map and write the ring "
                                    "table, model and residual maps and a run record into --out.",
                        epilog=FIT_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -120,8 +124,9 @@ MASS_EXAMPLES = """examples:
 The curve is the fit's curve.ecsv (run the fit with --distance so radii are in kpc), any table with
 radius (kpc), speed and error columns you name, or a SPARC *_rotmod.dat file (which carries its own
 baryonic curves). --components names a table of baryonic speed curves for M/L = 1 (columns v_gas with
-helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv,
-components_<model>.ecsv and massmodel.json.
+helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv
+(value, error and unit of each parameter), components_<model>.ecsv (kpc, km/s), massmodel.json and
+decomposition_<model>.png (the curve, each component, halo and total, residuals underneath).
 """
 
 
@@ -160,6 +165,14 @@ def _mass_parser(sub):
     p.add_argument("--steps", type=int, default=1500, help="emcee steps per walker")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior sampling (default 0)")
     p.set_defaults(run=run_massmodel)
+
+
+def _unit_note(name: str, units: dict) -> str:
+    """`` (km / s)`` after a parameter, `` (log10 of km / s)`` after a log10_ one; nothing when unitless."""
+    unit = units.get(name, "")
+    if not unit:
+        return ""
+    return f" (log10 of {unit})" if name.startswith("log10_") else f" ({unit})"
 
 
 def run_massmodel(args) -> int:
@@ -203,11 +216,13 @@ def run_massmodel(args) -> int:
     if not args.quiet:
         print(f"{curve.name}: {len(curve.radius)} points")
         for name, r in results.items():
-            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}" for k, v in r.parameters.items())
+            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}{_unit_note(k, r.units)}"
+                               for k, v in r.parameters.items())
             print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
         if all(r.parameters == {} for r in results.values()) and baryons.disc is None and baryons.gas is None:
             print("caution: no baryonic components given: the halo alone carries the curve")
-        print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, massmodel.json")
+        print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, decomposition_<model>.png, "
+              "massmodel.json")
     return EXIT_OK
 
 
@@ -218,7 +233,9 @@ COMPARE_EXAMPLES = """examples:
 The first map's grid is the common one unless --grid names another; maps on other grids are
 reprojected (bilinear for velocities; --flux for flux-conserving resampling of intensity maps).
 Writes difference_<k>.fits (map k minus the first), statistics.ecsv (per ring and per 30-degree
-azimuth sector) and comparison.png (all maps on one colour scale).
+azimuth sector, each row naming the difference and both maps) and comparison.png: velocity maps
+each centred on its systemic velocity (one common centre with --rings), residual maps and the
+differences on scales symmetric about zero. Maps with no pixel in common are refused (exit 2).
 """
 
 
@@ -241,6 +258,10 @@ def run_compare(args) -> int:
     import numpy as np
 
     from .products.compare import compare_maps
+    from .products.decisions import plural
+
+    def _plain(column):
+        return np.asarray(getattr(column, "value", column), float)
 
     names = args.names.split(",") if args.names else None
     result = compare_maps(args.maps, names=names, grid=args.grid, rings=args.rings, flux=args.flux,
@@ -252,8 +273,9 @@ def run_compare(args) -> int:
         rings = result.statistics[result.statistics["kind"] == "ring"]
         for name in result.names[1:]:
             sel = rings[rings["map"] == name]
-            rms = np.sqrt(np.nansum(sel["rms"] ** 2 * sel["n_pixels"]) / max(np.sum(sel["n_pixels"]), 1))
-            print(f"{name} - {result.names[0]}: rms difference {rms:.2f} km/s over {int(np.sum(sel['n_pixels']))} pixels")
+            rms = np.sqrt(np.nansum(_plain(sel["rms"]) ** 2 * sel["n_pixels"]) / max(np.sum(sel["n_pixels"]), 1))
+            print(f"{name} - {result.names[0]}: rms difference {rms:.2f} km/s over "
+                  f"{plural(int(np.sum(sel['n_pixels'])), 'pixel')}")
         print(f"wrote {args.out}/difference_*.fits, statistics.ecsv, comparison.png")
     return EXIT_OK
 
@@ -290,6 +312,7 @@ def _batch_parser(sub):
 def run_batch_command(args) -> int:
     from .batch import run_batch
     from .jobs import read_run_file
+    from .products.decisions import plural
 
     shared = read_run_file(args.config, per_galaxy_maps=False)
     shared.update(job_values(args))
@@ -299,7 +322,7 @@ def run_batch_command(args) -> int:
                         quiet=args.quiet)
     if not args.quiet:
         rate = f", {summary['rate_per_minute']:.1f} galaxies/min" if summary["rate_per_minute"] else ""
-        print(f"{summary['total']} galaxies: {summary['fitted']} fitted, {summary['skipped']} already done, "
+        print(f"{plural(summary['total'], 'galaxy')}: {summary['fitted']} fitted, {summary['skipped']} already done, "
               f"{summary['failed']} failed{rate}; catalogue in {args.out}/catalogue.ecsv")
     return EXIT_OK if summary["failed"] == 0 else EXIT_FAILURE
 
@@ -386,19 +409,22 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def run_fit(args) -> int:
+    import shlex
+
     from .jobs import Job, read_run_file, run_job
 
     values = read_run_file(args.config)
     values.update(job_values(args))  # the command line wins over the run file
     values["quiet"] = True if args.quiet else values.get("quiet", False)
     values.update(report=not args.no_report, png=args.png)
-    job = Job.from_values(args.map, values)
+    command = "tiltedring " + " ".join(shlex.quote(str(a)) for a in getattr(args, "argv", ["fit", args.map]))
+    job = Job.from_values(args.map, values, record={"command": command})
     outcome = run_job(job, args.out, overwrite=args.overwrite)
     result = outcome.result
     if not args.quiet:
         print(result.summary())
         if args.verbose:
-            print(result.rings)
+            print(result.ring_table_text())
         for text in outcome.cautions:
             if text not in result.cautions:
                 print(f"caution: {text}")
@@ -413,6 +439,7 @@ def main(argv=None) -> int:
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    args.argv = list(sys.argv[1:] if argv is None else argv)  # recorded in fit.json and on the report
     if args.command is None:
         parser.print_help()
         return EXIT_BAD_INPUT

@@ -163,5 +163,6 @@ def make_field(truth: DiscTruth = DiscTruth(), shape=(128, 128), pixel_scale: fl
     iheader["BUNIT"] = "Jy/beam.km/s" if beam_fwhm else "Jy.km/s"
     ihdu = fits.PrimaryHDU(intensity.astype(np.float32), header=iheader)
     vmap = VelocityMap(velocity=velocity.astype(np.float32).astype(float), sky_jacobian=jac, wcs=wcs,
-                       intensity=intensity, beam=beam, source=truth.name)
+                       intensity=intensity, beam=beam, source=truth.name,
+                       object_name=truth.name)
     return SyntheticField(vmap, vhdu, ihdu, truth)

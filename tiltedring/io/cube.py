@@ -163,6 +163,8 @@ def read_cube(source, *, beam: "Beam | str | None" = None, brightness_unit: str 
     frame = _FRAMES.get(str(wcs.wcs.specsys).strip().upper(), "unknown")
     beam = _beam(header, beam, _beams_table(source, hdu))
     out_header = _map_header(cel, unit, beam, rest, wcs, convention, spectral_type)
+    if str(header.get("OBJECT", "")).strip():  # the galaxy's name reaches the maps, the fit and its report
+        out_header["OBJECT"] = str(header["OBJECT"]).strip()
     noise = channel_noise(values)
     if not np.isfinite(noise).any():
         raise InputError(f"cube {name}: no channel has enough negative (noise) pixels to measure the noise; "

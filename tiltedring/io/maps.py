@@ -98,6 +98,7 @@ class VelocityMap:
     intensity_unit: str | None = None
     source: str = "array"
     notes: list = field(default_factory=list)
+    object_name: str | None = None  # the header's OBJECT card, when there is one
 
     @property
     def shape(self) -> tuple:
@@ -377,7 +378,9 @@ def regrid(data, header, target: "VelocityMap", role, name, notes, flux: bool = 
 def _finite_check(data, role, name, notes) -> np.ndarray:
     inf = np.isinf(data)
     if inf.any():
-        msg = f"{role} {name} has {int(inf.sum())} infinite pixel(s); they are treated as blank"
+        n = int(inf.sum())
+        msg = (f"{role} {name} has {n} infinite pixel{'' if n == 1 else 's'}; "
+               f"{'it is' if n == 1 else 'they are'} treated as blank")
         notes.append(msg)
         warnings.warn(msg, FitCaution, stacklevel=3)
         data = np.where(inf, np.nan, data)
@@ -431,14 +434,16 @@ def read_velocity_map(
     if isinstance(beam, str):
         beam = Beam.parse(beam)
     beam = beam if beam is not None else Beam.from_header(header)
-    vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes)
+    vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes,
+                       object_name=str(header.get("OBJECT", "")).strip() or None)
 
     if error is not None:
         edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
         bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
         if bad.any():
             raise InputError(
-                f"error map {ename} has {int(bad.sum())} zero or negative value(s) where the velocity map is "
+                f"error map {ename} has {int(bad.sum())} zero or negative value{'' if bad.sum() == 1 else 's'} where "
+                "the velocity map is "
                 "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
             )
         vmap.error = edata

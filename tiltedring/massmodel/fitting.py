@@ -130,6 +130,13 @@ class MassModelResult:
     def reduced_chi2(self):
         return self.chi2 / max(self.n_points - self.n_free, 1)
 
+    def plot(self, axes=None):
+        """The decomposition (:func:`tiltedring.products.plotting.plot_mass_model`): the observed curve with
+        its errors, each baryonic component, the halo and the total, and the residuals underneath."""
+        from ..products.plotting import plot_mass_model
+
+        return plot_mass_model(self, axes)
+
 
 def _max_disc(data, baryons, ml_bulge):
     sq = baryons.squared(data.radius)

@@ -85,9 +85,10 @@ def read_components(path, radius_column="radius_kpc", gas_column="v_gas", disc_c
     return Baryons(**parts)
 
 
-def write_results(folder, results: dict, curve: CurveData, overwrite: bool = False) -> Path:
+def write_results(folder, results: dict, curve: CurveData, overwrite: bool = False, figures: bool = True) -> Path:
     """Write ``models.ecsv`` (comparison), ``parameters.ecsv`` (one row per fitted or fixed quantity of each model,
-    with its unit), ``components_<model>.ecsv`` and ``massmodel.json``."""
+    with its unit), ``components_<model>.ecsv`` (radius in kpc, speeds in km/s), ``massmodel.json`` and, with
+    ``figures``, ``decomposition_<model>.png`` (:meth:`.fitting.MassModelResult.plot`)."""
     from ..io.atomic import atomic_folder, write_json
 
     with atomic_folder(folder, overwrite=overwrite) as tmp:
@@ -97,6 +98,7 @@ def write_results(folder, results: dict, curve: CurveData, overwrite: bool = Fal
         comparison["reduced_chi2"] = [r.reduced_chi2 for r in results.values()]
         comparison["n_free"] = [r.n_free for r in results.values()]
         comparison["bic"] = [r.bic for r in results.values()]
+        comparison.meta["comment"] = ["chi2 and bic are dimensionless; n_free counts the fitted quantities"]
         comparison.write(tmp / "models.ecsv", format="ascii.ecsv")
         rows = []
         for name, r in results.items():
@@ -110,6 +112,8 @@ def write_results(folder, results: dict, curve: CurveData, overwrite: bool = Fal
         for name, r in results.items():
             t = QTable({k: v * (u.kpc if k == "radius" else u.km / u.s) for k, v in r.curves.items()})
             t.write(tmp / f"components_{name}.ecsv", format="ascii.ecsv")
+            if figures:
+                r.plot().savefig(tmp / f"decomposition_{name}.png", dpi=150)
         write_json(tmp / "massmodel.json", {
             "galaxy": curve.name, "n_points": len(curve.radius),
             "models": {name: {"parameters": r.parameters, "errors": r.errors, "fixed": r.fixed, "chi2": r.chi2,

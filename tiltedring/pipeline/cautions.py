@@ -29,7 +29,7 @@ def fit_cautions(final, flags, options, vmap, summaries) -> list:
                    f"{warp['tilt']:+.1f} deg): geometry varies with radius there")
     nc = summaries.get("non_circular", {})
     if nc.get("detected"):
-        out.append(f"non-circular motions ({', '.join(nc['kinds'])}) in {len(nc['radii'])} ring(s), up to "
+        out.append(f"non-circular motions ({', '.join(nc['kinds'])}) in {len(nc['radii'])} ring{'' if len(nc['radii']) == 1 else 's'}, up to "
                    f"{nc['max_amplitude']:.0f} km/s in the disc plane: v_rotation there is not the circular speed; "
                    "see flow_model and v_t_<model> columns")
     speeds = final["v_rotation"].to_value(u.km / u.s)

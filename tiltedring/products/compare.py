@@ -5,7 +5,12 @@ Maps on other grids are put on the common grid (the first map's, or one the user
 resampling would be wrong for velocities), ``reproject_exact`` (flux-conserving) when ``flux=True``
 for intensity maps. Then each map after the first is differenced against the first, and statistics
 are taken per elliptical ring (from a fit's ``rings.ecsv``, or circular annuli about the grid
-centre) and per 30-degree azimuth sector: number of pixels, mean, rms and median absolute value.
+centre) and per 30-degree azimuth sector: number of pixels, mean, rms and median absolute value,
+each row naming the difference (``B - A``) and the two maps.
+
+Maps that share no valid pixel on the common grid are refused (:class:`.errors.InputError`): their
+difference would be empty. Each map is judged a velocity map or a residual map
+(:func:`.plot_products.map_kind`) for the figure's colour scales.
 """
 
 from __future__ import annotations
@@ -31,13 +36,22 @@ class MapComparison:
     statistics: QTable
     reference: object
     notes: list
+    systemic: float | None = None  # one centre for every velocity map's colours (from --rings), else None
+
+    @property
+    def kinds(self) -> list:
+        """``velocity`` or ``residual`` for each map (:func:`.plot_products.map_kind`)."""
+        from .plot_products import map_kind
+
+        return [map_kind(m) for m in self.maps]
 
     def plot(self, axes=None):
+        """The maps and their differences (:func:`.plotting.plot_comparison`): velocity maps each centred on
+        its systemic velocity, residuals and differences on symmetric scales; panels named."""
         from .plotting import plot_comparison
 
-        maps = self.maps + self.differences
-        names = self.names + [f"{n} - {self.names[0]}" for n in self.names[1:]]
-        return plot_comparison(maps, names, wcs=self.reference.wcs, axes=axes)
+        return plot_comparison(self.maps, self.names, reference=self.reference, differences=self.differences,
+                               kinds=self.kinds, systemic=self.systemic, axes=axes)
 
     def write(self, folder, overwrite: bool = False) -> Path:
         """``difference_<k>.fits``, ``statistics.ecsv`` and ``comparison.png`` into ``folder``."""
@@ -51,7 +65,11 @@ class MapComparison:
                           extra={"ORIGIN": f"tiltedring: {name} minus {self.names[0]}"[:68]})
             table = plain_table(self.statistics)
             table.meta["maps"] = self.names
+            table.meta["reference_map"] = self.names[0]
+            table.meta["kinds"] = dict(zip(self.names, self.kinds))
             table.meta["notes"] = self.notes
+            table.meta["comment"] = ["one row per ring or azimuth sector of each difference (map minus reference_map); "
+                                     "where: ring radius (arcsec) or sector centre (deg from the receding major axis)"]
             table.write(tmp / "statistics.ecsv", format="ascii.ecsv")
             self.plot().savefig(tmp / "comparison.png", dpi=130)
         return Path(folder)
@@ -77,9 +95,24 @@ def compare_maps(sources, names=None, grid=None, rings=None, flux: bool = False,
         if not flux:
             data = data * _velocity_factor(header, velocity_unit, name)
         maps.append(regrid(data, header, reference, "map", name, notes, flux=flux, warn=False))
+    _check_overlap(maps, names)
     differences = [m - maps[0] for m in maps[1:]]
-    statistics = _statistics(reference, differences, names, rings, sector_width)
-    return MapComparison(names, maps, differences, statistics, reference, notes)
+    statistics = _statistics(reference, differences, names, rings, sector_width, None if flux else "km/s")
+    systemic = None
+    if rings is not None and not flux:
+        table = Table.read(rings) if isinstance(rings, (str, Path)) else rings
+        if "v_systemic" in table.colnames:
+            systemic = float(np.nanmedian(np.asarray(getattr(table["v_systemic"], "value", table["v_systemic"]))))
+    return MapComparison(names, maps, differences, statistics, reference, notes, systemic)
+
+
+def _check_overlap(maps, names) -> None:
+    """Refuse maps with no valid pixel in common with the first on the common grid."""
+    first = np.isfinite(maps[0])
+    for name, m in zip(names[1:], maps[1:]):
+        if not (first & np.isfinite(m)).any():
+            raise InputError(f"maps {names[0]} and {name} do not overlap on the common grid (no pixel valid in both): "
+                             "check that they show the same part of the sky, or choose the grid with --grid")
 
 
 def _ring_geometry(reference, rings):
@@ -99,7 +132,7 @@ def _ring_geometry(reference, rings):
     return geom, np.concatenate([inner[:1], outer])
 
 
-def _statistics(reference, differences, names, rings, sector_width):
+def _statistics(reference, differences, names, rings, sector_width, unit="km/s"):
     geom, edges = _ring_geometry(reference, rings)
     ny, nx = reference.shape
     yy, xx = np.mgrid[0:ny, 0:nx]
@@ -109,18 +142,22 @@ def _statistics(reference, differences, names, rings, sector_width):
     rows = []
     for k, diff in enumerate(differences, start=1):
         d = diff.ravel()
+        label = (f"{names[k]} - {names[0]}", names[k], names[0])
         for j in range(len(edges) - 1):
             sel = (radius >= edges[j]) & (radius < edges[j + 1]) & np.isfinite(d)
-            rows.append(_row(names[k], "ring", 0.5 * (edges[j] + edges[j + 1]), d[sel]))
+            rows.append(_row(label, "ring", 0.5 * (edges[j] + edges[j + 1]), d[sel]))
         for a in np.arange(0, 360, sector_width):
             sel = (azimuth >= a) & (azimuth < a + sector_width) & (radius < edges[-1]) & np.isfinite(d)
-            rows.append(_row(names[k], "azimuth", a + sector_width / 2, d[sel]))
-    t = QTable(rows=rows, names=("map", "kind", "where", "n_pixels", "mean", "rms", "median_abs"))
+            rows.append(_row(label, "azimuth", a + sector_width / 2, d[sel]))
+    t = QTable(rows=rows, names=("difference", "map", "reference", "kind", "where", "n_pixels", "mean", "rms",
+                                 "median_abs"))
+    for name in ("mean", "rms", "median_abs"):
+        t[name].unit = unit
     return t
 
 
-def _row(name, kind, where, values):
+def _row(label, kind, where, values):
     if values.size == 0:
-        return (name, kind, float(where), 0, np.nan, np.nan, np.nan)
-    return (name, kind, float(where), int(values.size), float(values.mean()), float(np.sqrt(np.mean(values**2))),
+        return (*label, kind, float(where), 0, np.nan, np.nan, np.nan)
+    return (*label, kind, float(where), int(values.size), float(values.mean()), float(np.sqrt(np.mean(values**2))),
             float(np.median(np.abs(values))))

@@ -1,27 +1,37 @@
-"""Every figure of the tool (with :mod:`.figure`, the only code importing matplotlib).
+"""Every figure of the tool (with :mod:`.figure`, :mod:`.plot_style`, :mod:`.sky_panels` and
+:mod:`.report`, the only code importing matplotlib, and only inside functions).
 
-Each function takes the objects the API returns, an optional ``ax`` (or ``axes``) to draw into,
-and returns the figure: a new ``matplotlib.figure.Figure`` (:mod:`.figure`: made without pyplot,
-so the user's backend and rcParams stay as they were; it displays itself in Jupyter) or, when
-axes are given, the figure they belong to. Layout choices are our own: maps carry the beam as a filled ellipse in the
-lower-left corner, every second ring as a thin dotted ellipse and the kinematic centre as a small
-diamond; velocity maps use a diverging purple-orange scale centred on the systemic velocity,
-residual maps a brown-teal scale centred on zero (both colour-blind safe); profile plots show
-stage values as open markers and the adopted profile as a line with a shaded error band.
-Figures are sized for a journal column (3.4 in) or page (7 in) width.
+Each function takes the objects the API returns and an optional ``ax`` (or ``axes``) to draw into,
+and returns the figure: a new ``matplotlib.figure.Figure`` (:mod:`.figure`: made without pyplot, so
+the user's backend and rcParams stay as they were; it displays itself in Jupyter) or, when axes
+are given, the figure they belong to. Figures are sized for a journal column (3.4 in) or page
+(7 in) width with 8-pt tick labels; colours, robust limits and edge markers come from
+:mod:`.plot_style`, sky maps from :mod:`.sky_panels`. The report (``report.pdf``) is assembled
+from these functions by :mod:`.report`.
+
+Our profile style: ticks inward on all four sides; the adopted profile as an ink line over a pale
+band of its error; earlier stages as grey circles and teal squares, hollow; rings a flag warns
+about drawn hollow; values beyond a robust axis range as hollow triangles on the edge they cross.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["plot_map", "plot_maps", "plot_geometry", "plot_rotation_curve", "plot_major_axis_slice",
-           "plot_harmonics", "plot_warp", "plot_mass_model", "plot_comparison", "write_report"]
+from .plot_style import (COLUMN, COPPER, GREY, INK, NOTE_PT, SLATE, TEAL, mark_outside, panel_caption,
+                         robust_limits, style_axes)
+from .plot_kinematics import plot_harmonics, plot_major_axis_slice, plot_minor_axis_slice, plot_warp
+from .plot_products import plot_comparison, plot_mass_model
 
-COLUMN, PAGE = 3.4, 7.0
-VELOCITY_CMAP, RESIDUAL_CMAP = "PuOr_r", "BrBG"
-STAGE_STYLE = {"free": dict(marker="o", mfc="none", color="0.55", ms=4, ls="none", label="stage free"),
-               "centred": dict(marker="s", mfc="none", color="tab:blue", ms=4, ls="none", label="stage centred")}
+__all__ = ["plot_map", "plot_maps", "plot_geometry", "plot_rotation_curve", "plot_error_budget",
+           "plot_major_axis_slice", "plot_minor_axis_slice", "plot_harmonics", "plot_warp", "plot_mass_model",
+           "plot_comparison", "plot_centre", "plot_residual_histogram", "write_report"]
+
+PAGE = 7.0
+STAGE_STYLE = {"free": dict(marker="o", mfc="none", color=GREY, ms=3.5, ls="none", label="stage free"),
+               "centred": dict(marker="s", mfc="none", color=TEAL, ms=3.5, ls="none", label="stage centred")}
+ERROR_STYLE = {"formal": ("-", SLATE), "resampled": ("--", TEAL), "sides": (":", COPPER),
+               "inclination": ("-.", "#7f4b80"), "beam": ((0, (5, 1.5, 1, 1.5)), "#5b7f3a")}
 
 
 def _figure(figsize, layout="constrained"):
@@ -41,307 +51,294 @@ def _value(column):
     return np.asarray(getattr(column, "value", column), float)
 
 
-def _ellipse_points(result, k, n=181):
-    from ..fitting.geometry import sky_from_disc
-
-    t = result.rings
-    az = np.linspace(0, 360, n)
-    return sky_from_disc(np.full(n, _value(t["radius"])[k]), az, _value(t["x_center"])[k], _value(t["y_center"])[k],
-                         result.vmap.sky_jacobian, _value(t["position_angle"])[k], _value(t["inclination"])[k])
+def _median(column) -> float:
+    """Median of the finite values of ``column`` (NaN when there is none, e.g. the error of a held value)."""
+    v = _value(column)
+    return float(np.median(v[np.isfinite(v)])) if np.isfinite(v).any() else float("nan")
 
 
-def _beam_ellipse(ax, vmap):
-    from matplotlib.patches import Ellipse
-
-    if vmap.beam is None:
-        return
-    ny, nx = vmap.shape
-    scale = vmap.pixel_scale
-    # beam position angle on the sky -> angle on the pixel grid through the local north direction
-    angle = vmap.north_angle + vmap.beam.position_angle
-    ax.add_patch(Ellipse((0.08 * nx, 0.08 * ny), vmap.beam.minor / scale, vmap.beam.major / scale, angle=angle,
-                         facecolor="0.2", edgecolor="white", lw=0.5, zorder=5))
+def _legend(ax, **kwargs):
+    options = dict(fontsize=NOTE_PT, frameon=False, handlelength=1.8, borderaxespad=0.3)
+    options.update(kwargs)
+    return ax.legend(**options)
 
 
+def _warned(table) -> np.ndarray:
+    """Rings whose flags warn that the fitted numbers are unreliable (drawn hollow)."""
+    serious = ("fit_failed", "few_pixels", "poor_coverage", "ill_conditioned", "inside_beam")
+    return np.array([any(s in str(f) for s in serious) for f in table["flags"]])
+
+
+def _distance_mpc(result):
+    from astropy import units as u
+
+    value = ((getattr(result, "inputs", None) or {}).get("curve") or {}).get("distance")
+    if value is None:
+        return None
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        try:
+            return float(u.Quantity(value).to_value(u.Mpc))
+        except Exception:
+            return None
+
+
+# ------------------------------------------------------------------------------------------------ maps
 def plot_map(image, result=None, kind: str = "velocity", ax=None, rings: bool = True, title: str | None = None):
-    """One map (velocity, model or residual) with WCS axes, beam, rings and the kinematic centre.
+    """One map (velocity, model or residual) on the sky grid (:func:`.sky_panels.draw_sky_map`): colour bar
+    on top, north-east arrows, scale bar, beam, rings and centre; the caption states the share of pixels
+    beyond the colour range. ``image``: a 2-D array on the fit's grid, or a :class:`.maps.VelocityMap`."""
+    from .sky_panels import draw_sky_map
 
-    ``image``: a 2-D array on the fit's grid, or a :class:`.maps.VelocityMap`. Colour scale symmetric
-    about the systemic velocity (velocity, model) or zero (residual).
-    """
     vmap = getattr(result, "vmap", None) if result is not None else None
     if hasattr(image, "velocity"):
         vmap, image = image, image.velocity
-    data = np.asarray(image, float)
-    projection = vmap.wcs if (ax is None and vmap is not None and vmap.wcs is not None) else None
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.95), projection)
-    if kind == "residual":
-        centre, cmap, label = 0.0, RESIDUAL_CMAP, "data - model (km/s)"
-        half = np.nanpercentile(np.abs(data), 98) if np.isfinite(data).any() else 1.0
-    else:
-        centre = float(np.nanmedian(_value(result.rings["v_systemic"]))) if result is not None else float(
-            np.nanmedian(data))
-        cmap, label = VELOCITY_CMAP, "line-of-sight velocity (km/s)"
-        half = np.nanpercentile(np.abs(data - centre), 99) if np.isfinite(data).any() else 1.0
-    im = ax.imshow(data, origin="lower", cmap=cmap, vmin=centre - half, vmax=centre + half, interpolation="nearest")
-    fig.colorbar(im, ax=ax, shrink=0.85, label=label)
-    if result is not None and rings:
-        for k in range(0, len(result.rings), 2):
-            x, y = _ellipse_points(result, k)
-            ax.plot(x, y, ls=":", lw=0.6, color="0.25")
-        ax.plot(_value(result.rings["x_center"])[0], _value(result.rings["y_center"])[0], marker="D", ms=4,
-                mfc="white", mec="black", ls="none")
-    if vmap is not None:
-        _beam_ellipse(ax, vmap)
-    if hasattr(ax, "coords"):  # WCS axes
-        ra, dec = ax.coords[0], ax.coords[1]
-        ra.set_axislabel("right ascension", fontsize=7)
-        dec.set_axislabel("declination", fontsize=7)
-        for coord in (ra, dec):
-            coord.set_ticks(number=3)
-            coord.set_ticklabel(size=6)
-    else:
-        ax.set_xlabel("x (pixel)")
-        ax.set_ylabel("y (pixel)")
-    if title:
-        ax.set_title(title, fontsize=9)
-    return fig
+    if ax is None:
+        fig = _figure((COLUMN, COLUMN * 1.12), layout=None)
+        projection = vmap.wcs if (vmap is not None and vmap.wcs is not None) else None
+        ax = fig.add_axes([0.25, 0.17, 0.68, 0.64], projection=projection)
+    info = draw_sky_map(ax, image, vmap, kind, result=result, rings=rings, label=title,
+                        distance_mpc=_distance_mpc(result))
+    panel_caption(ax, _clip_caption(info), y=-0.2)
+    return ax.figure
+
+
+def _clip_caption(info) -> str:
+    share = 100 * info["clipped"]
+    where = f"{info['centre']:.0f} \N{PLUS-MINUS SIGN} {info['half']:.0f} km/s" if info["centre"] else \
+        f"\N{PLUS-MINUS SIGN}{info['half']:.1f} km/s"
+    return f"colours {where}; {share:.1f}% of pixels beyond"
 
 
 def plot_maps(result, axes=None):
-    """Data, model and residual side by side; data and model share one colour scale."""
+    """Data, model and residual side by side; data and model share one colour range."""
+    from .sky_panels import draw_sky_map
+
     if axes is None:
-        fig = _figure((PAGE * 1.3, PAGE * 0.45))
+        fig = _figure((PAGE * 1.5, COLUMN * 1.12), layout=None)
         proj = result.vmap.wcs
-        axes = [fig.add_subplot(1, 3, k + 1, projection=proj) for k in range(3)]
-    fig = axes[0].figure
-    for ax, data, kind, title in zip(axes, (result.vmap.velocity, result.model, result.residual),
-                                     ("velocity", "velocity", "residual"), ("data", "model", "residual")):
-        plot_map(data, result, kind, ax=ax, title=title)
-    return fig
+        axes = [fig.add_axes([0.08 + 0.33 * k, 0.17, 0.21, 0.64], projection=proj) for k in range(3)]
+    distance = _distance_mpc(result)
+    data = draw_sky_map(axes[0], result.vmap.velocity, result.vmap, "velocity", result,
+                        label="data: line-of-sight velocity (km/s)", distance_mpc=distance)
+    panel_caption(axes[0], _clip_caption(data), y=-0.2)
+    model = draw_sky_map(axes[1], result.model, result.vmap, "velocity", result, centre=data["centre"],
+                         half=data["half"], label="model (km/s)", distance_mpc=distance)
+    panel_caption(axes[1], _clip_caption(model), y=-0.2)
+    resid = draw_sky_map(axes[2], result.residual, result.vmap, "residual", result, distance_mpc=distance)
+    panel_caption(axes[2], _clip_caption(resid), y=-0.2)
+    return axes[0].figure
 
 
-def plot_geometry(result, axes=None):
-    """Position angle, inclination and rotation speed against radius: stages and the adopted profile."""
-    if axes is None:
-        axes = _figure((COLUMN, COLUMN * 1.9)).subplots(3, 1, sharex=True)
-    fig = axes[0].figure
-    r = _value(result.rings["radius"])
-    for ax, name, unit in zip(axes, ("position_angle", "inclination", "v_rotation"), ("deg", "deg", "km/s")):
-        for stage, style in STAGE_STYLE.items():
-            t = result.stages.get(stage)
-            if t is None:
-                continue
-            y = _value(t[name])
-            if name == "position_angle":
-                y = _unwrap_to(y, _value(result.rings[name]))
-            ax.errorbar(_value(t["radius"]), y, yerr=_value(t[f"{name}_err"]), elinewidth=0.6, **style)
-        y = _value(result.rings[name])
-        e = np.nan_to_num(_value(result.rings[f"{name}_err"]))
-        ax.plot(r, y, color="black", lw=1.2, label="adopted")
-        ax.fill_between(r, y - e, y + e, color="0.8", lw=0)
-        if name != "v_rotation":  # keep stray inner-ring values from squashing the profile
-            centred = _value(result.stages["centred"][name]) if "centred" in result.stages else y
-            if name == "position_angle":
-                centred = _unwrap_to(centred, y)
-            lo, hi = np.nanpercentile(np.concatenate([y, centred]), [10, 90])
-            pad = max(5.0, 0.6 * (hi - lo))
-            ax.set_ylim(lo - pad, hi + pad)
-        ax.set_ylabel(f"{name.replace('_', ' ')} ({unit})")
-    axes[0].legend(fontsize=6, frameon=False)
-    axes[-1].set_xlabel("radius (arcsec)")
-    return fig
-
-
+# ------------------------------------------------------------------------------------------------ profiles
 def _unwrap_to(values, reference):
     ref = np.nanmedian(reference)
     return ref + np.mod(values - ref + 180.0, 360.0) - 180.0
 
 
-def plot_rotation_curve(result, ax=None, components: bool = True):
-    """The rotation curve with its total error, the uncorrected (smeared) curve, both sides, and the
-    error budget in a lower panel."""
+def _profile(ax, result, name: str, label: str, show_speed_zero: bool = False):
+    """One parameter against radius: both stages (hollow), the adopted profile (ink line, error band),
+    the warp onset, rings left out of the geometry; robust limits, far values on the edge."""
     t = result.rings
     r = _value(t["radius"])
-    if ax is None:
-        fig = _figure((COLUMN, COLUMN * 1.3))
-        ax, ax2 = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.3]})
-    else:
-        fig, ax2 = ax.figure, None
-    ax.errorbar(r, _value(t["v_rotation"]), yerr=_value(t["v_rotation_err"]), color="black", marker="o", ms=3,
-                lw=1, capsize=1.5, label="v_rotation")
-    if "v_rotation_smeared" in t.colnames:
-        ax.plot(r, _value(t["v_rotation_smeared"]), ls="--", color="0.5", lw=1, label="before beam correction")
-    for side, color in (("approaching", "tab:blue"), ("receding", "tab:orange")):
-        if f"v_rotation_{side}" in t.colnames:
-            ax.plot(r, _value(t[f"v_rotation_{side}"]), ls="none", marker="^" if side == "receding" else "v",
-                    ms=3, color=color, label=side)
-    ax.set_ylabel("rotation speed (km/s)")
-    ax.legend(fontsize=6, frameon=False, loc="lower right")
-    if ax2 is not None and components:
-        for name, style in (("v_rotation_err_formal", "-"), ("v_rotation_err_resampled", "--"),
-                            ("v_rotation_err_sides", ":"), ("v_rotation_err_inclination", "-.")):
-            if name in t.colnames:
-                ax2.plot(r, _value(t[name]), ls=style, lw=1, label=name.replace("v_rotation_err_", ""))
-        ax2.set_ylabel("error (km/s)")
-        ax2.set_xlabel("radius (arcsec)")
-        ax2.legend(fontsize=5, frameon=False, ncol=2)
-    return fig
+    adopted = _value(t[name])
+    shown = []
+    for stage, style in STAGE_STYLE.items():
+        s = result.stages.get(stage)
+        if s is None or name not in s.colnames:
+            continue
+        y = _value(s[name])
+        if name == "position_angle":
+            y = _unwrap_to(y, adopted)
+        ax.errorbar(_value(s["radius"]), y, yerr=np.abs(np.nan_to_num(_value(s[f"{name}_err"]))), elinewidth=0.5,
+                    capsize=0, **style)
+        shown.append((_value(s["radius"]), y))
+    err = np.abs(np.nan_to_num(_value(t[f"{name}_err"]))) if f"{name}_err" in t.colnames else np.zeros_like(r)
+    ax.fill_between(r, adopted - err, adopted + err, color="0.86", lw=0, zorder=1)
+    ax.plot(r, adopted, color=INK, lw=1.3, label="adopted", zorder=4)
+    values = np.concatenate([y for _, y in shown] + [adopted])
+    limits = robust_limits(values, include=np.concatenate([adopted, [0.0] if show_speed_zero else []]),
+                           min_span=6.0 if name in ("position_angle", "inclination") else 4.0)
+    ax.set_ylim(*limits)
+    for x, y in shown:
+        mark_outside(ax, x, y, limits, colour=GREY)
+    _mark_decisions(ax, result)
+    ax.set_ylabel(label)
+    style_axes(ax)
+    return limits
 
 
-def plot_major_axis_slice(result, ax=None, width_beams: float = 1.0):
-    """Position-velocity slice of the map along the major axis: pixels within ``width_beams`` beams of the
-    axis (dots) and the model curve v_sys +/- v sin i (line)."""
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.8))
-    vmap = result.vmap
-    t = result.rings
-    xc, yc = _value(t["x_center"])[0], _value(t["y_center"])[0]
-    pa = np.radians(np.nanmedian(_value(t["position_angle"])))
-    yy, xx = np.nonzero(np.isfinite(vmap.velocity))
-    east, north = vmap.sky_offsets(xx, yy, xc, yc)
-    along = east * np.sin(pa) + north * np.cos(pa)
-    across = east * np.cos(pa) - north * np.sin(pa)
-    half = width_beams * (vmap.beam.fwhm if vmap.beam is not None else 2 * vmap.pixel_scale) / 2
-    near = np.abs(across) <= half
-    ax.plot(along[near], vmap.velocity[yy[near], xx[near]], ls="none", marker=".", ms=1.5, color="0.45")
-    r = _value(t["radius"])
-    vsys = np.nanmedian(_value(t["v_systemic"]))
-    vproj = _value(t["v_rotation"]) * np.sin(np.radians(_value(t["inclination"])))
-    ax.plot(np.concatenate([-r[::-1], r]), np.concatenate([vsys - vproj[::-1], vsys + vproj]), color="tab:purple",
-            lw=1.3)
-    ax.axhline(vsys, color="0.7", lw=0.6)
-    ax.set_xlabel("major-axis offset (arcsec)")
-    ax.set_ylabel("line-of-sight velocity (km/s)")
-    return fig
+def _mark_decisions(ax, result):
+    warp = result.diagnostics.get("warp", {})
+    if warp.get("detected") and warp.get("onset_radius") is not None:
+        ax.axvline(warp["onset_radius"], color=COPPER, lw=0.8, ls=(0, (4, 2)), zorder=2)
+    inner = warp.get("inner_change") or {}
+    if inner.get("radius") is not None:
+        ax.axvspan(0, inner["radius"], color="#f3e3d3", lw=0, zorder=0)
+    for radius in warp.get("rings_excluded_as_non_circular") or []:
+        ax.axvline(radius, color="0.6", lw=0.6, ls=":", zorder=0)
 
 
-def plot_harmonics(result, ax=None):
-    """Harmonic amplitudes against radius (in the disc plane), with the non-circular total."""
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.75))
-    t = result.rings
-    if "harmonic_s1" not in t.colnames:
-        ax.text(0.5, 0.5, "no diagnostics in this fit", ha="center", transform=ax.transAxes)
-        return fig
-    r = _value(t["radius"])
-    sin_i = np.sin(np.radians(_value(t["inclination"])))
-    for name, marker in (("s1", "o"), ("c2", "s"), ("s2", "D"), ("c3", "^"), ("s3", "v")):
-        ax.errorbar(r, np.abs(_value(t[f"harmonic_{name}"])) / sin_i, yerr=_value(t[f"harmonic_{name}_err"]) / sin_i,
-                    ls="none", marker=marker, ms=3, mfc="none", elinewidth=0.5, label=name)
-    total = _value(t["noncircular_in_plane"])
-    ax.plot(r, total, color="black", lw=1.2, label="non-circular total")
-    ax.set_ylim(0, max(15.0, 1.5 * np.nanmax(total) if np.isfinite(total).any() else 15.0))
-    ax.set_xlabel("radius (arcsec)")
-    ax.set_ylabel("amplitude in the disc plane (km/s)")
-    ax.legend(fontsize=6, frameon=False, ncol=3)
-    return fig
-
-
-def plot_warp(result, ax=None):
-    """Tilt and line of nodes (Briggs 1990) as a polar diagram: angle = line of nodes, radius = tilt."""
-    if ax is None:
-        ax = _figure((COLUMN, COLUMN)).add_subplot(111, projection="polar")
-    fig = ax.figure
-    t = result.rings
-    tilt, lon = _value(t["warp_tilt"]), _value(t["warp_line_of_nodes"])
-    ok = np.isfinite(tilt) & np.isfinite(lon)
-    if ok.any():
-        sc = ax.scatter(np.radians(lon[ok]), tilt[ok], c=_value(t["radius"])[ok], cmap="viridis", s=12)
-        fig.colorbar(sc, ax=ax, shrink=0.7, label="radius (arcsec)")
-    else:
-        ax.text(0, 0, "flat disc", ha="center")
-    ax.set_title("tilt (deg) against line of nodes", fontsize=8)
-    return fig
-
-
-def plot_mass_model(mass_result, ax=None):
-    """Observed curve and the components of one mass model (km/s against kpc)."""
-    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.8))
-    c = mass_result.curves
-    ax.errorbar(c["radius"], c["v_obs"], yerr=c["v_err"], ls="none", marker="o", ms=3, color="black",
-                label="observed")
-    for name, style in (("v_model", dict(color="black", lw=1.4)), ("v_halo", dict(color="tab:purple", ls="--")),
-                        ("v_baryon", dict(color="tab:orange", ls="-.")), ("v_disc", dict(color="tab:red", ls=":")),
-                        ("v_gas", dict(color="tab:blue", ls=":")), ("v_bulge", dict(color="tab:brown", ls=":"))):
-        y = np.asarray(c[name])
-        if np.any(y != 0):
-            ax.plot(c["radius"], y, label=name.replace("v_", ""), **style)
-    ax.set_xlabel("radius (kpc)")
-    ax.set_ylabel("circular speed (km/s)")
-    ax.set_title(f"{mass_result.model}: chi2 = {mass_result.chi2:.1f}, BIC = {mass_result.bic:.1f}", fontsize=8)
-    ax.legend(fontsize=6, frameon=False)
-    return fig
-
-
-def plot_comparison(maps, names, wcs=None, axes=None):
-    """Maps side by side on one shared, zero-centred colour scale (residual or difference maps)."""
-    n = len(maps)
+def plot_geometry(result, axes=None):
+    """Position angle, inclination and rotation speed against radius: both stages and the adopted
+    profile (warp onset as a dashed copper line, rings left out of the geometry as dotted grey lines)."""
     if axes is None:
-        fig = _figure((PAGE, PAGE / max(n, 2) * 1.05))
-        axes = [fig.add_subplot(1, n, k + 1, projection=wcs) for k in range(n)]
-    fig = axes[0].figure
-    half = max(np.nanpercentile(np.abs(m), 98) for m in maps if np.isfinite(m).any())
-    for ax, m, name in zip(axes, maps, names):
-        im = ax.imshow(m, origin="lower", cmap=RESIDUAL_CMAP, vmin=-half, vmax=half, interpolation="nearest")
-        ax.set_title(name, fontsize=8)
-    fig.colorbar(im, ax=list(axes), shrink=0.8, label="km/s")
-    return fig
+        axes = _figure((COLUMN, COLUMN * 2.0)).subplots(3, 1, sharex=True)
+    for ax, (name, label) in zip(axes, (("position_angle", "position angle (deg)"),
+                                        ("inclination", "inclination (deg)"), ("v_rotation", "v_rotation (km/s)"))):
+        _profile(ax, result, name, label, show_speed_zero=name == "v_rotation")
+    _legend(axes[0], loc="best")
+    axes[-1].set_xlabel("radius (arcsec)")
+    axes[-1].set_xlim(0, _value(result.rings["radius_outer"])[-1])
+    return axes[0].figure
 
 
-def _summary_page(result):
-    fig = _figure((8.27, 11.69), layout=None)
-    lines = ["tiltedring fit of " + str(result.vmap.source), ""] + result.summary().splitlines()
-    d = result.diagnostics
-    warp, nc = d.get("warp", {}), d.get("non_circular", {})
-    lines += ["", "decisions before the curve:",
-              f"  warp: {'yes' if warp.get('detected') else 'no'}"
-              + (f", onset {warp['onset_radius']:.1f} arcsec, twist {warp['twist']:+.1f} deg, tilt {warp['tilt']:+.1f} deg"
-                 if warp.get("detected") else ""),
-              f"  non-circular motions: {'yes' if nc.get('detected') else 'no'}"
-              + (f" ({', '.join(nc.get('kinds', []))}) at {', '.join(f'{r:.0f}' for r in nc.get('radii', []))} arcsec,"
-                 f" up to {nc.get('max_amplitude', 0):.0f} km/s" if nc.get("detected") else "")]
-    beam = d.get("beam_smearing")
-    if beam:
-        lines.append(f"  beam smearing: corrected ({beam['intensity']}), {beam['iterations']} iterations")
-    flagged = [(float(r), f) for r, f in zip(_value(result.rings["radius"]), result.rings["flags"]) if f]
-    if flagged:
-        lines += ["", "flagged rings:"] + [f"  {r:6.1f} arcsec: {f}" for r, f in flagged[:40]]
-    import textwrap
+def plot_rotation_curve(result, ax=None, components: bool = True):
+    """The rotation curve with its total error, the curve before beam-smearing correction, both sides,
+    and (new figure, ``components``) the error budget in a panel underneath. The speed axis starts at
+    zero; rings a flag warns about are hollow; values beyond the robust range sit on the edge."""
+    t = result.rings
+    r = _value(t["radius"])
+    if ax is None:
+        fig = _figure((COLUMN, COLUMN * 1.35))
+        if components:
+            ax, ax2 = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [2.6, 1.2]})
+        else:
+            ax, ax2 = fig.add_subplot(111), None
+    else:
+        ax2 = None
+    v, e = _value(t["v_rotation"]), np.abs(np.nan_to_num(_value(t["v_rotation_err"])))
+    warned = _warned(t)
+    for sel, face, label in ((~warned, INK, "v_rotation"), (warned, "white", "flagged ring")):
+        if sel.any():
+            ax.errorbar(r[sel], v[sel], yerr=e[sel], ls="none", color=INK, marker="o", ms=3.5, mfc=face, lw=0.9,
+                        capsize=1.5, label=label, zorder=5)
+    ax.plot(r, v, color=INK, lw=0.7, zorder=4)
+    extra = []
+    if "v_rotation_smeared" in t.colnames:
+        ax.plot(r, _value(t["v_rotation_smeared"]), ls="--", color=GREY, lw=1.0, label="before beam corr.")
+        extra.append(_value(t["v_rotation_smeared"]))
+    for side, colour, marker in (("approaching", SLATE, "v"), ("receding", COPPER, "^")):
+        if f"v_rotation_{side}" in t.colnames:
+            y = _value(t[f"v_rotation_{side}"])
+            ax.plot(r, y, ls="none", marker=marker, ms=3, color=colour, label=side)
+            extra.append(y)
+    limits = robust_limits(np.concatenate([v] + extra), e, include=[0.0], low=5, high=95, spread=0.15,
+                           min_span=20.0)
+    limits = (min(0.0, limits[0]), limits[1])
+    ax.set_ylim(*limits)
+    mark_outside(ax, r, v, limits)
+    ax.set_xlim(0, _value(t["radius_outer"])[-1])
+    ax.set_ylabel("rotation speed (km/s)")
+    _legend(ax, loc="lower right", ncol=2, columnspacing=0.8, handlelength=1.5)
+    style_axes(ax)
+    if ax2 is not None:
+        plot_error_budget(result, ax2)
+    else:
+        ax.set_xlabel("radius (arcsec)")
+    return ax.figure
 
-    wrapped = []
-    for line in lines:
-        wrapped += textwrap.wrap(line, 95, subsequent_indent="    ") or [""]
-    fig.text(0.07, 0.95, "\n".join(wrapped), va="top", family="monospace", fontsize=7.5)
+
+def plot_error_budget(result, ax=None):
+    """Each component of v_rotation's error (every ``v_rotation_err_<part>`` column) and the total."""
+    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.5))
+    t = result.rings
+    r = _value(t["radius"])
+    drawn = []
+    for name in t.colnames:
+        if name.startswith("v_rotation_err_"):
+            part = name.removeprefix("v_rotation_err_")
+            ls, colour = ERROR_STYLE.get(part, ("-", GREY))
+            y = _value(t[name])
+            ax.plot(r, y, ls=ls, color=colour, lw=1.0, label=part.replace("_", " "))
+            drawn.append(y)
+    total = _value(t["v_rotation_err"])
+    ax.plot(r, total, color=INK, lw=1.4, label="total")
+    limits = robust_limits(np.concatenate(drawn + [total]), include=[0.0], low=0, high=90, spread=0.3, min_span=2.0)
+    limits = (0.0, limits[1] * (1.45 if ax.figure.get_figwidth() * ax.get_position().width > 5.0 else 1.8))
+    ax.set_ylim(*limits)
+    mark_outside(ax, r, total, limits)
+    ax.set_ylabel("error (km/s)")
+    ax.set_xlabel("radius (arcsec)")
+    wide = ax.figure.get_figwidth() * ax.get_position().width > 5.0
+    _legend(ax, ncol=len(drawn) + 1 if wide else 3, loc="upper center", columnspacing=1.0, handlelength=2.2)
+    style_axes(ax)
     return fig
 
 
 def write_report(result, path, png_folder=None) -> list:
-    """Write ``report.pdf`` (summary page, maps, geometry and curve, slice/harmonics/warp); PNGs on request."""
-    from matplotlib.backends.backend_pdf import PdfPages
+    """Write ``report.pdf`` (:func:`.report.write_report`: every registered page); PNG pages on request."""
+    from .report import write_report as write
 
-    from ..io.atomic import atomic_path
+    return write(result, path, png_folder=png_folder)
 
-    pages = [("summary", _summary_page(result)), ("maps", plot_maps(result))]
-    fig = _figure((PAGE, PAGE * 0.8))
-    grid = fig.add_gridspec(3, 2)
-    geo_axes = [fig.add_subplot(grid[k, 0]) for k in range(3)]
-    for ax in geo_axes[1:]:
-        ax.sharex(geo_axes[0])
-    plot_geometry(result, axes=geo_axes)
-    plot_rotation_curve(result, ax=fig.add_subplot(grid[:, 1]))
-    pages.append(("profiles", fig))
-    fig = _figure((PAGE * 1.3, PAGE * 0.45))
-    plot_major_axis_slice(result, ax=fig.add_subplot(1, 3, 1))
-    plot_harmonics(result, ax=fig.add_subplot(1, 3, 2))
-    plot_warp(result, ax=fig.add_subplot(1, 3, 3, projection="polar"))
-    pages.append(("kinematics", fig))
-    with atomic_path(path) as tmp:
-        with PdfPages(tmp) as pdf:
-            for _, page in pages:
-                pdf.savefig(page)
-    written = [path]
-    if png_folder is not None:
-        for name, page in pages:
-            out = f"{png_folder}/report_{name}.png"
-            page.savefig(out, dpi=150)
-            written.append(out)
-    return written
+
+def plot_centre(result, axes=None):
+    """Where each ring of stage ``free`` put the centre (east and north offsets from the adopted centre,
+    arcsec) and the systemic velocity, against radius, with the adopted values and their errors."""
+    if axes is None:
+        axes = _figure((COLUMN, COLUMN * 1.2)).subplots(2, 1, sharex=True)
+    ax_v, ax_c = axes
+    t, free = result.rings, result.stages.get("free", result.rings)
+    r = _value(free["radius"])
+    v0, v_err = _median(t["v_systemic"]), _median(t["v_systemic_err"])
+    v = _value(free["v_systemic"])
+    if np.isfinite(v_err):
+        ax_v.axhspan(v0 - v_err, v0 + v_err, color="0.86", lw=0)
+    ax_v.axhline(v0, color=INK, lw=1.3, label="adopted")
+    ax_v.errorbar(r, v, yerr=np.abs(np.nan_to_num(_value(free["v_systemic_err"]))), elinewidth=0.5,
+                  **STAGE_STYLE["free"])
+    limits = robust_limits(v, include=[v0], min_span=6.0)
+    ax_v.set_ylim(*limits)
+    mark_outside(ax_v, r, v, limits, colour=GREY)
+    ax_v.set_ylabel("v_systemic (km/s)")
+    _legend(ax_v, loc="best", ncol=2)
+    style_axes(ax_v)
+    x0, y0 = _median(t["x_center"]), _median(t["y_center"])
+    east, north = result.vmap.sky_offsets(_value(free["x_center"]), _value(free["y_center"]), x0, y0)
+    ax_c.axhline(0.0, color=INK, lw=1.3)
+    ax_c.plot(r, east, ls="none", marker="o", mfc="none", ms=3.5, color=SLATE, label="east offset")
+    ax_c.plot(r, north, ls="none", marker="s", mfc="none", ms=3.5, color=COPPER, label="north offset")
+    limits = robust_limits(np.concatenate([east, north]), include=[0.0], min_span=2.0 * result.vmap.pixel_scale)
+    ax_c.set_ylim(*limits)
+    mark_outside(ax_c, r, east, limits, colour=SLATE)
+    mark_outside(ax_c, r, north, limits, colour=COPPER)
+    ax_c.set_ylabel("centre offset (arcsec)")
+    ax_c.set_xlabel("radius (arcsec)")
+    ax_c.set_xlim(0, _value(t["radius_outer"])[-1])
+    _legend(ax_c, loc="best", ncol=2)
+    style_axes(ax_c)
+    return ax_v.figure
+
+
+def plot_residual_histogram(result, ax=None, half: float | None = None):
+    """Distribution of data - model over the modelled pixels, with a Gaussian of the same rms and, when
+    ``half`` is given, the colour range of the residual map shaded (what lies outside is clipped there)."""
+    fig, ax = _axes(ax, (COLUMN, COLUMN * 0.7))
+    res = np.asarray(result.residual, float)
+    res = res[np.isfinite(res)]
+    if res.size == 0:
+        ax.text(0.5, 0.5, "no modelled pixels", ha="center", transform=ax.transAxes)
+        return fig
+    rms = float(np.sqrt(np.mean(res**2)))
+    lo, hi = np.percentile(res, [0.5, 99.5])
+    span = max(abs(lo), abs(hi), 3 * rms)
+    edges = np.linspace(-span, span, 61)
+    counts, _ = np.histogram(res, edges)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    if half is not None:
+        ax.axvspan(-half, half, color="#efe9dc", lw=0, zorder=0, label=f"map colours \N{PLUS-MINUS SIGN}{half:.1f}")
+    ax.step(centres, counts, where="mid", color=INK, lw=1.0, label="pixels")
+    gauss = res.size * (edges[1] - edges[0]) / (rms * np.sqrt(2 * np.pi)) * np.exp(-0.5 * (centres / rms) ** 2)
+    ax.plot(centres, gauss, color=COPPER, lw=1.0, ls="--", label=f"Gaussian, rms {rms:.2f}")
+    beyond = float(np.mean(np.abs(res) > span))
+    ax.set_xlim(-span, span)
+    ax.set_ylim(0, 1.5 * counts.max())  # head room for the legend
+    ax.set_xlabel("data \N{MINUS SIGN} model (km/s)")
+    ax.set_ylabel("pixels")
+    _legend(ax, loc="upper left", ncol=1)
+    panel_caption(ax, f"{res.size} pixels, median |residual| {np.median(np.abs(res)):.1f} km/s,\n"
+                      f"{100 * beyond:.1f}% beyond the axis", y=-0.25)
+    style_axes(ax)
+    return fig

@@ -175,8 +175,33 @@ class FitResult:
             "cautions": self.cautions,
         }
 
+    def __repr__(self) -> str:
+        g = self.geometry()
+        name = getattr(self.vmap, "object_name", None) or self.vmap.source
+        return (f"<FitResult {name}: {len(self.rings)} rings, v_systemic {g['v_systemic']:.1f} km/s, position angle "
+                f"{g['position_angle']:.1f} deg, inclination {g['inclination']:.1f} deg, "
+                f"{len(self.cautions)} caution{'' if len(self.cautions) == 1 else 's'}>")
+
+    def ring_table_text(self) -> str:
+        """The ring table's first-read columns as aligned text: radius, position angle, inclination,
+        v_rotation with its error, flags (every column is in ``rings`` and ``rings.ecsv``)."""
+        t = self.rings
+        rows = [("radius", "PA", "incl.", "v_rotation", "flags"), ("arcsec", "deg", "deg", "km/s", "")]
+        for k in range(len(t)):
+            v, e = float(t["v_rotation"][k].value), float(t["v_rotation_err"][k].value)
+            flags = str(t["flags"][k])
+            rows.append((f"{t['radius'][k].value:.1f}", f"{t['position_angle'][k].value:.1f}",
+                         f"{t['inclination'][k].value:.1f}",
+                         f"{v:.1f} +/- {e:.1f}" if np.isfinite(v) else "--",
+                         "" if flags in ("", "--") else flags.replace(",", ", ")))
+        widths = [max(len(r[c]) for r in rows) for c in range(5)]
+        lines = ["  ".join(cell.rjust(w) if c < 4 else cell for c, (cell, w) in enumerate(zip(row, widths))).rstrip()
+                 for row in rows]
+        lines.insert(2, "  ".join("-" * w for w in widths))
+        return "\n".join(lines)
+
     def summary(self) -> str:
-        """A few lines of plain text: geometry, curve extent and cautions."""
+        """A few lines of plain text: geometry, curve extent, the decisions and the cautions."""
         g = self.geometry()
         t = self.rings
         v = np.asarray(t["v_rotation"].value)
@@ -191,6 +216,9 @@ class FitResult:
             f"+/- {e[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} km/s",
             f"residual rms = {self.statistics()['residual_rms']:.2f} km/s",
         ]
+        from .decisions import decision_lines
+
+        lines += [f"{topic}: {sentence}" for topic, sentence in decision_lines(self)]
         lines += [f"caution: {c}" for c in self.cautions]
         return "\n".join(lines)
 
@@ -198,7 +226,8 @@ class FitResult:
         import html
 
         rows = "".join(f"<li>{html.escape(line)}</li>" for line in self.summary().splitlines())
-        return f"<div><b>tiltedring fit</b> of {html.escape(str(self.vmap.source))}<ul>{rows}</ul></div>"
+        name = getattr(self.vmap, "object_name", None) or self.vmap.source
+        return f"<div><b>tiltedring fit</b> of {html.escape(str(name))}<ul>{rows}</ul></div>"
 
     # ------------------------------------------------------------------ writing
     def curve(self, distance=None, redshift=None, cosmology: str = "Planck18"):
