@@ -45,7 +45,6 @@ MAP_FILES = {"velocity": "velocity.fits", "velocity_error": "velocity_err.fits",
              "dispersion": "dispersion.fits", "mask": "mask.fits", "h3": "h3.fits", "record": "maps.json"}
 EXCLUSION_MARGIN = 1.5  # lines centred within this many widths of a vetoed range are cut by it: blanked
 MINIMUM_SNR = 3.0  # a pixel's masked moment 0 must exceed this many times its noise to get a velocity
-_CTYPE = {"radio": "VRAD", "optical": "VOPT", "relativistic": "VELO"}
 
 
 @dataclass
@@ -88,19 +87,10 @@ class VelocityMaps:
         return vmap
 
     def mask_header(self) -> fits.Header:
-        """A 3-D header for the mask: the celestial axes and a linear velocity axis (km/s)."""
-        header = self.header_for("")
-        del header["BUNIT"]
-        header["WCSAXES"] = 3
-        widths = np.diff(self.channel_velocity)
-        header["CTYPE3"] = _CTYPE[self.convention]
-        header["CUNIT3"] = "km/s"
-        header["CRPIX3"] = 1.0
-        header["CRVAL3"] = float(self.channel_velocity[0])
-        header["CDELT3"] = float(np.median(widths)) if widths.size else 1.0
-        if widths.size and np.ptp(widths) > 1e-3 * abs(header["CDELT3"]):
-            header["COMMENT"] = "channel velocities are not evenly spaced: CDELT3 is their median spacing"
-        return header
+        """A 3-D header for the mask: the celestial axes and a linear velocity axis (km/s), no BUNIT."""
+        from .cube_files import spectral_header
+
+        return spectral_header(self.header, self.channel_velocity, self.convention)
 
     def write_into(self, folder) -> dict:
         """Write every map and ``maps.json`` into ``folder`` (each file atomically); returns the paths."""
