@@ -177,17 +177,43 @@ def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
         np.testing.assert_allclose(model[0].data + residual[0].data, cube.data, atol=1e-5 * cube.data.max())
 
 
-def test_cube_pages_draw_data_and_model(chained):
-    """Channel maps and major/minor position-velocity slices: figures without pyplot, with the model as
-    contours on every panel that shows emission."""
-    import matplotlib
+def test_a_cube_fit_report_has_the_cube_pages_all_one_size(chained, tmp_path):
+    """The report of a fit made from a cube gains two A4 pages after "kinematics": twelve channel maps and
+    the major/minor slices (each with the model cube contoured), the inner curve and the dispersion.
+    Checked against the PDF's own page boxes (595 x 842 pt, ISO 216 A4) and matplotlib's artists; the
+    same readability rules as the other pages (text 7.5 pt or more, tick labels 8 pt or more)."""
+    import re
 
-    from tiltedring.products.cube_figures import cube_pages
+    import matplotlib
+    from matplotlib.image import AxesImage
+
+    from tiltedring.products import report
+    from tiltedring.products.cube_figures import plot_channel_maps, plot_position_velocity
 
     backend = matplotlib.get_backend()
     result, cube, truth = chained
-    pages = dict(cube_pages(result))
-    assert set(pages) == {"channel_maps", "position_velocity"}
-    assert len(pages["channel_maps"].axes) == 9 and len(pages["position_velocity"].axes) == 2
-    assert all(ax.collections for ax in pages["position_velocity"].axes)  # model contours drawn
+    pages = report.report_pages(result)
+    names = [name for name, _ in pages]
+    assert names == ["summary", "maps", "profiles", "kinematics", "cube_channels", "cube_slices"]
+    assert {tuple(np.round(f.get_size_inches(), 2)) for _, f in pages} == {report.PAGE_SIZE}
+    channels, slices = pages[4][1], pages[5][1]
+    maps = [ax for ax in channels.axes if ax.images and isinstance(ax.images[0], AxesImage) and ax.collections]
+    assert len(maps) == 12  # every channel map shows the model as contours over the data
+    assert sum(bool(ax.images) and bool(ax.collections) for ax in slices.axes) == 2  # major and minor slices
+    for _, figure in pages[4:]:
+        figure.savefig(__import__("io").BytesIO(), format="png", dpi=40)
+        texts = [t for t in figure.findobj(matplotlib.text.Text) if t.get_visible() and t.get_text().strip()]
+        assert min(t.get_fontsize() for t in texts) >= 7.5
+        for ax in figure.axes:
+            assert all(label.get_fontsize() >= 8 for label in ax.get_xticklabels() + ax.get_yticklabels()
+                       if label.get_text())
+    path = tmp_path / "report.pdf"
+    report.write_report(result, path)
+    pdf = path.read_bytes()
+    assert len(re.findall(rb"/Type\s*/Page(?![s\w])", pdf)) == 6
+    boxes = {tuple(round(float(v)) for v in box.split()) for box in re.findall(rb"/MediaBox\s*\[([^\]]+)\]", pdf)}
+    assert boxes == {(0, 0, 595, 842)}
+    # the panels also stand alone, drawn without pyplot
+    assert len(plot_channel_maps(result, count=4).axes) == 5  # four maps and the colour bar
+    assert plot_position_velocity(result, "minor").axes[0].collections
     assert matplotlib.get_backend() == backend
