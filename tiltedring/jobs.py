@@ -345,6 +345,8 @@ def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
         result = fit_velocity_map(vmap, job.fit)
         curve_from_cube(job, result, cube, cube_maps)
         curve = result.curve(**job.curve.to_dict())
+    if cube_maps is not None:  # the maps' cautions (e.g. a foreground found) reach fit.json and the report
+        result.cautions[:0] = [text for text in cube_maps.record["cautions"] if text not in result.cautions]
     result.inputs = input_record(job, cube_maps)
     gas, gas_note = gas_product(result, curve)
     files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,

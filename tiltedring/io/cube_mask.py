@@ -12,7 +12,11 @@ The steps (a smooth-and-clip source mask, common practice for HI cubes):
    peaks are narrow; real lines span several channels).
 5. The mask is dilated by ``dilation_channels`` channels and ``dilation_pixels`` pixels to take in
    the faint line wings, then blank and excluded voxels are removed again.
-6. With ``keep_regions="largest"`` (the default) only the largest connected region of the mask's
+6. With ``detect_foreground`` (the default), runs of channels where emission at one velocity fills
+   most of the field (:mod:`.foreground`: a foreground or a continuum-subtraction problem, never a
+   rotating disc) are added to the excluded ranges and the mask is made again without them (unless
+   nothing else would emit). Their ranges are recorded as ``detected_foreground``.
+7. With ``keep_regions="largest"`` (the default) only the largest connected region of the mask's
    footprint on the sky is kept: the galaxy, without noise islands and unrelated clouds around it.
 
 Excluded ranges (``exclusion``):
@@ -179,12 +183,14 @@ def make_signal_mask(cube: LineCube, *, threshold: float = 4.0, spatial_smoothin
                      spectral_smoothing: float = 3.0, minimum_run: int = 3, dilation_channels: int = 1,
                      dilation_pixels: int = 1, exclude_velocities=(), exclusion: str = "interpolate",
                      keep_regions: str = "largest", footprint_growth: float = 1.0,
-                     interpolation_scale: float = 2.0) -> SignalMask:
+                     interpolation_scale: float = 2.0, detect_foreground: bool = True) -> SignalMask:
     """The emission mask of ``cube`` (see the module docstring for the steps and their parameters).
 
     ``spatial_smoothing`` is in beams FWHM (2 pixels FWHM per unit when the cube has no beam),
     ``spectral_smoothing`` in channels FWHM (0 for none), ``threshold`` in units of the robust noise
     of the smoothed cube, ``exclude_velocities`` a list of (lo, hi) km/s in the cube's convention.
+    ``detect_foreground``: channels where emission at one velocity fills the field
+    (:mod:`.foreground`) are excluded as if their range had been given.
     """
     ranges = parse_velocity_ranges(exclude_velocities)
     if not threshold > 0:
@@ -205,6 +211,17 @@ def make_signal_mask(cube: LineCube, *, threshold: float = 4.0, spatial_smoothin
     steps = (threshold, int(minimum_run), sigma_channels, sigma_pixels, int(dilation_channels), int(dilation_pixels))
     usable = finite & ~excluded[:, None, None]
     mask, noise = _clip(cube.data, usable, *steps)
+    given, filling, detected = list(ranges), [], []
+    if detect_foreground:
+        filling = _field_filling(cube, usable, mask, sigma_pixels)
+        detected = [tuple(run["velocities"]) for run in filling if run["foreground"]]
+        applied = _exclude_detected(cube, finite, ranges, detected, steps) if detected else None
+        if applied is None:
+            detected = []
+        else:
+            ranges, excluded, usable, mask, noise = applied
+        for run in filling:
+            run["excluded"] = tuple(run["velocities"]) in detected
     if keep_regions == "largest":
         mask &= largest_region(mask.any(axis=0))[None]
     data = np.where(usable, cube.data, np.nan)
@@ -221,6 +238,8 @@ def make_signal_mask(cube: LineCube, *, threshold: float = 4.0, spatial_smoothin
         "spectral_smoothing_channels": float(spectral_smoothing), "minimum_run_channels": int(minimum_run),
         "dilation_channels": int(dilation_channels), "dilation_pixels": int(dilation_pixels),
         "excluded_velocities": [list(r) for r in ranges], "excluded_channels": int(excluded.sum()),
+        "given_excluded_velocities": [list(r) for r in given],
+        "detected_foreground": [list(r) for r in detected], "field_filling": filling,
         "keep_regions": keep_regions, "exclusion": exclusion if ranges else None,
         "foreground_interpolated_pixels": int(footprint.sum()),
         "footprint_growth_beams": float(footprint_growth), "interpolation_scale_beams": float(interpolation_scale),
@@ -228,6 +247,28 @@ def make_signal_mask(cube: LineCube, *, threshold: float = 4.0, spatial_smoothin
         "masked_pixels": int(mask.any(axis=0).sum()),
     }
     return SignalMask(mask=mask, excluded=excluded, data=data, record=record)
+
+
+def _field_filling(cube, usable, clipped, sigma_pixels) -> list:
+    """Runs of channels where emission fills the field, each marked whether it is a foreground (:mod:`.foreground`)."""
+    from .foreground import find_field_filling
+
+    smoothed = _smooth(cube.data, usable, 0.0, sigma_pixels)
+    return find_field_filling(cube.velocity, cube.channel_width, clipped, usable, smoothed, channel_noise(smoothed))
+
+
+def _exclude_detected(cube, finite, ranges, detected, steps):
+    """(ranges, excluded channels, usable voxels, clipped mask, noise) with the detected foreground ranges left
+    out too, or None when nothing else would emit (the detection is then not applied)."""
+    merged = parse_velocity_ranges(list(ranges) + detected)
+    excluded = excluded_channels(cube.velocity, cube.channel_width, merged)
+    if excluded.all():
+        raise InputError(f"cube {cube.source}: emission at one velocity fills most of the field in every channel "
+                         "left: is the continuum subtracted? Subtract it, or state the foreground ranges with "
+                         "--exclude-velocities (exclude_velocities) and turn the detection off (--no-detect-foreground)")
+    usable = finite & ~excluded[:, None, None]
+    mask, noise = _clip(cube.data, usable, *steps)
+    return (merged, excluded, usable, mask, noise) if mask.any() else None
 
 
 def run_sums(mask, values):

@@ -126,7 +126,7 @@ class VelocityMaps:
 def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), exclusion: str = "interpolate",
                        keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3,
                        spatial_smoothing: float = 1.0, spectral_smoothing: float = 3.0, window_margin: int = 4,
-                       threads: int | None = None,
+                       detect_foreground: bool = True, threads: int | None = None,
                        **read_options) -> VelocityMaps:
     """Velocity, error, moment-0 and dispersion maps of a cube (see the module docstring for ``kind``).
 
@@ -135,7 +135,9 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     ``exclusion`` ``"interpolate"`` (vetoed off the galaxy, interpolated foreground subtracted on it) or
     ``"veto"`` (left out of every spectrum); ``keep_regions`` ``"largest"`` (the galaxy only) or ``"all"``
     (see :mod:`.cube_mask`);
-    ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask.
+    ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask;
+    ``detect_foreground``: channels where emission at one velocity fills the field are excluded too, with a
+    caution (:mod:`.foreground`).
     """
     if kind not in KINDS:
         raise InputError(f"velocity kind {kind!r}: give one of {', '.join(KINDS)}")
@@ -143,7 +145,8 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
         cube = read_cube(cube, **read_options)
     signal = make_signal_mask(cube, threshold=mask_threshold, minimum_run=minimum_run,
                               spatial_smoothing=spatial_smoothing, spectral_smoothing=spectral_smoothing,
-                              exclude_velocities=exclude_velocities, exclusion=exclusion, keep_regions=keep_regions)
+                              exclude_velocities=exclude_velocities, exclusion=exclusion, keep_regions=keep_regions,
+                              detect_foreground=detect_foreground)
     if not signal.mask.any():
         raise InputError(f"cube {cube.source}: no emission above {mask_threshold} times the noise of the smoothed "
                          "cube; lower the mask threshold or check the excluded velocity ranges")
@@ -175,9 +178,29 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
                         channel_velocity=cube.velocity.copy(), convention=cube.convention, h3=h3, record=record)
 
 
-def _cautions(mask_record, counts, n_valid) -> list:
-    """Where the maps may mislead: foreground subtracted by interpolation, many pixels lost."""
+def _foreground_cautions(mask_record) -> list:
+    """What the foreground detection did, with the range and the options to state it or turn it off."""
     out = []
+    for run in mask_record.get("field_filling", []):
+        if not run["foreground"]:
+            continue
+        lo, hi = run["velocities"]
+        where = (f"emission at one velocity fills {100 * run['peak_fill']:.0f} % of the field between {lo:g} and "
+                 f"{hi:g} km/s (a foreground, or a continuum-subtraction problem: it does not move with the "
+                 "galaxy's rotation)")
+        if run.get("excluded"):
+            out.append(f"{where}; those channels were left out of the source mask as an excluded range. State the "
+                       f"range yourself with --exclude-velocities={lo:g}:{hi:g} (widen it if the foreground's wings "
+                       "show in the maps), or keep the channels with --no-detect-foreground")
+        else:
+            out.append(f"{where}; they were kept because no other channel holds emission: if it is a foreground, "
+                       "the maps show it and not the galaxy")
+    return out
+
+
+def _cautions(mask_record, counts, n_valid) -> list:
+    """Where the maps may mislead: foreground found or subtracted by interpolation, many pixels lost."""
+    out = _foreground_cautions(mask_record)
     if mask_record["exclusion"] == "interpolate" and mask_record["foreground_interpolated_pixels"]:
         out.append(f"foreground in the excluded velocity ranges was interpolated from around the galaxy and "
                    f"subtracted on {mask_record['foreground_interpolated_pixels']} pixels: velocities there assume a "
