@@ -132,16 +132,17 @@ def _grown(footprint, truth):
 
 
 def test_moments_match_spectral_cube(drawn):
-    """Moment 0 and moment 1 on the same masked cube agree with spectral-cube's own (float precision;
-    the vetoed foreground keeps the data as read, so both work on the same numbers)."""
+    """Moment 0 (over the source mask) and moment 1 (over the line mask) agree with spectral-cube's own on
+    the same masks (float precision; the vetoed foreground keeps the data as read, so both work on the
+    same numbers)."""
     from spectral_cube import SpectralCube
 
     cube, _, hdu = drawn
     maps = make_velocity_maps(cube, kind="moment", exclude_velocities=EXCLUDE, exclusion="veto", keep_regions="all")
     signal = make_signal_mask(cube, exclude_velocities=EXCLUDE, exclusion="veto", keep_regions="all")
-    reference = SpectralCube.read(hdu).with_spectral_unit(u.km / u.s).with_mask(signal.mask)
-    m0 = reference.moment0().to(u.K * u.km / u.s).value
-    m1 = reference.moment1().to(u.km / u.s).value
+    reference = SpectralCube.read(hdu).with_spectral_unit(u.km / u.s)
+    m0 = reference.with_mask(signal.mask).moment0().to(u.K * u.km / u.s).value  # moment 0 over the source mask
+    m1 = reference.with_mask(signal.line).moment1().to(u.km / u.s).value  # moment 1 over the line mask
     ok = np.isfinite(maps.velocity)
     assert ok.sum() > 1000
     np.testing.assert_allclose(maps.intensity[ok], m0[ok], rtol=1e-5, atol=1e-4)

@@ -193,6 +193,11 @@ def open_image(source, role: str = "velocity map", hdu=None):
         try:
             with open(path, "rb") as fh:
                 start = fh.read(30)
+            if start.startswith(b"\x1f\x8b"):  # gzip-compressed (.fits.gz), which astropy reads as it is
+                import gzip
+
+                with gzip.open(path, "rb") as fh:
+                    start = fh.read(30)
         except OSError as exc:
             raise InputError(f"cannot read {role} {path}: {exc}") from None
         if not start.startswith(b"SIMPLE  ="):

@@ -2,8 +2,10 @@
 
 Kinds of velocity map (``kind``), each over the emission mask of :mod:`.cube_mask`:
 
-- ``moment``: intensity-weighted mean velocity (moment 1), v1 = sum I v / sum I, with
-  error^2 = sum noise^2 (v - v1)^2 / (sum I)^2 and the moment-2 dispersion.
+- ``moment``: intensity-weighted mean velocity (moment 1), v1 = sum I v / sum I over the line mask of
+  :mod:`.cube_mask` (a survey-style hysteresis mask inside the source mask; no other clipping: negative
+  values inside it count), with error^2 = sum noise^2 (v - v1)^2 / (sum I)^2 and the moment-2
+  dispersion over the same mask. Pixels need a moment 0 above 3 times its noise over both masks.
 - ``peak``: the velocity of the brightest channel, refined by the parabola through it and its two
   neighbours (common practice); error propagated from the channel noise.
 - ``gaussian``: the centre of a single Gaussian fitted to the spectrum.
@@ -153,7 +155,11 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     data = signal.data
     moments = _moments(data, signal.mask, cube)
     velocity, error, dispersion, h3, counts = moments["velocity"], moments["error"], moments["dispersion"], None, {}
-    if kind == "peak":
+    if kind == "moment":  # over the survey-style line mask (module docstring)
+        line = _moments(data, signal.line, cube)
+        moments["valid"] = moments["valid"] & line["valid"]
+        velocity, error, dispersion = line["velocity"], line["error"], line["dispersion"]
+    elif kind == "peak":
         velocity, error = _peak_velocity(data, signal.mask, cube)
     elif kind in ("gaussian", "hermite"):
         velocity, error, dispersion, h3, counts = _fitted_maps(data, signal.mask, cube, moments, kind, window_margin,
