@@ -130,10 +130,13 @@ def chained(noisy):
     return result, cube, truth
 
 
-@pytest.mark.xfail(strict=True, reason="known shortfall: with the map fit's geometry (inclination 1.2 deg high, "
-                   "centre and v_systemic slightly off) the innermost ring, at half a beam, comes out 11 % high "
-                   "(5 % with the true geometry); its formal error is 4 %")
 def test_innermost_ring_after_a_map_fit(chained):
+    """The ring at half a beam, after the map fit (inclination 1.2 deg high, centre and v_systemic slightly
+    off), within 10 % of the truth (issue 16: no ring worse than 10 %). Measured 3.9 % here (1.0-6.5 % over
+    five noise draws; 0.7 % on the noiseless cube with the true geometry, 2 % with the map's). It was 11 %
+    while the model's curve took Catmull-Rom slopes, which for the uneven spacing at the first ring (the
+    centre node half a ring away) made the curve 4-5 % low between the first two rings: the fit pushed the
+    first ring up to make up for it (7 % on the noiseless cube with the true geometry)."""
     result, cube, truth = chained
     radius = result.rings["radius"].value
     ratio = result.rings["v_rotation"].value / truth["v_rotation"](radius)
