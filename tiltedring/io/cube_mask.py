@@ -124,12 +124,14 @@ def largest_region(footprint: np.ndarray) -> np.ndarray:
 
 
 def excluded_channels(velocity, channel_width, ranges) -> np.ndarray:
-    """Channels whose extent [v - w/2, v + w/2] overlaps any (lo, hi) range."""
+    """Channels whose extent [v - w/2, v + w/2] overlaps any (lo, hi) range by more than a thousandth of a
+    channel (a range ending on a channel edge, up to rounding of the axis, leaves the next channel alone)."""
     velocity = np.asarray(velocity, float)
     out = np.zeros(velocity.shape, bool)
     half = 0.5 * abs(channel_width)
+    slack = 1e-3 * abs(channel_width)
     for lo, hi in ranges:
-        out |= (velocity + half > lo) & (velocity - half < hi)
+        out |= (velocity + half > lo + slack) & (velocity - half < hi - slack)
     return out
 
 

@@ -116,7 +116,9 @@ def _sky_direction(cube, east: float, north: float) -> np.ndarray:
 
 
 def _in_excluded(velocity, width, ranges) -> bool:
-    return any(velocity + width / 2 > lo and velocity - width / 2 < hi for lo, hi in ranges)
+    from ..io.cube_mask import excluded_channels
+
+    return bool(excluded_channels([velocity], width, ranges)[0])
 
 
 def draw_channel(ax, result, k: int, box, levels, colours, label_size: float = NOTE_PT):
