@@ -23,7 +23,7 @@ _EXPORTS = {
     "VelocityMap": "io.maps", "Beam": "io.maps", "read_velocity_map": "io.maps",
     "RingLayout": "fitting.rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
     "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
-    "Job": "jobs", "run_job": "jobs",
+    "ResultNotPhysical": "errors", "Job": "jobs", "run_job": "jobs",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -336,8 +337,23 @@ def run_fit(args) -> int:
     return EXIT_OK
 
 
+def _claimed(args):
+    """Claim ``--out`` before any work (:mod:`.io.output_safety`); batch claims its own folder, which it
+    adds to rather than replaces."""
+    from contextlib import nullcontext
+
+    from .io.output_safety import claim_output
+
+    out = getattr(args, "out", None)
+    if out is None or args.command == "batch":
+        return nullcontext()
+    inputs = [value for key, value in vars(args).items() if key != "out"]
+    return claim_output(out, getattr(args, "overwrite", False), inputs, command=f"tiltedring {args.command}")
+
+
 def main(argv=None) -> int:
-    from .errors import InputError, OutputFolderExists
+    """Run the command; exit codes as the module docstring says, and never a traceback."""
+    from .errors import InputError, OutputFolderExists, ResultNotPhysical
 
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -345,7 +361,8 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_BAD_INPUT
     try:
-        return args.run(args)
+        with _claimed(args):
+            return args.run(args)
     except OutputFolderExists as exc:
         print(f"tiltedring: error: output folder {exc.folder} already exists and is not empty; choose another --out "
               "folder or pass --overwrite to replace it", file=sys.stderr)
@@ -353,8 +370,25 @@ def main(argv=None) -> int:
     except InputError as exc:
         print(f"tiltedring: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except ResultNotPhysical as exc:
+        print(f"tiltedring: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
     except KeyboardInterrupt:
         print("tiltedring: interrupted; no output was left half-written", file=sys.stderr)
+        return EXIT_FAILURE
+    except MemoryError:
+        print("tiltedring: failed: out of memory; bin the map (--bin N) or use fewer rings", file=sys.stderr)
+        return EXIT_FAILURE
+    except OSError as exc:
+        print(f"tiltedring: failed: {exc.strerror or exc} ({exc.filename or 'no file named'}); no output was left "
+              "half-written", file=sys.stderr)
+        return EXIT_FAILURE
+    except Exception as exc:  # a defect: say so in one line rather than a traceback
+        import traceback
+
+        where = traceback.extract_tb(exc.__traceback__)[-1]
+        print(f"tiltedring: failed: unexpected {type(exc).__name__}: {exc} (at {Path(where.filename).name}:"
+              f"{where.lineno}; please report it); no output was left half-written", file=sys.stderr)
         return EXIT_FAILURE
 
 

@@ -205,13 +205,15 @@ def gas_product(result, curve) -> tuple:
 
 
 def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = None, report: bool = False,
-                     png: bool = False, overwrite: bool = False) -> list:
+                     png: bool = False, overwrite: bool = False, inputs=()) -> list:
     """Steps report and write: every output into a temporary folder, renamed onto ``folder`` when all
     are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
 
     Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
     ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``; ``report_*.png``
     with ``png``). ``fit.json`` says under ``gas`` whether ``gas.ecsv`` was written and why not.
+    ``inputs``: paths the folder may not be or hold (:mod:`.io.output_safety`; default: the files
+    named in the result's input record).
     """
     from .io.atomic import atomic_folder, write_json
     from .io.maps import write_map
@@ -219,7 +221,8 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
 
     record = result.record()
     record["gas"] = {"written": gas is not None, "note": gas_note}
-    with atomic_folder(folder, overwrite=overwrite) as tmp:
+    inputs = list(inputs) + recorded_paths(result.inputs)
+    with atomic_folder(folder, overwrite=overwrite, inputs=inputs, kind="fit") as tmp:
         write_table(result.rings, tmp / "rings.ecsv")
         for name, table in result.stages.items():
             if name != "final":
@@ -248,26 +251,48 @@ def write_result(result, folder, overwrite: bool = False, curve=None, report: bo
     return write_fit_folder(folder, result, curve, gas, note, report=report, png=png, overwrite=overwrite)
 
 
+def job_inputs(job: Job) -> list:
+    """The files a job reads (the velocity map and every map of its input options)."""
+    from .io.output_safety import paths_of
+
+    return paths_of([job.velocity_map] + [getattr(job.inputs, s.name) for s in field_specs(type(job.inputs)) if s.path])
+
+
+def recorded_paths(inputs: dict) -> list:
+    """The file paths of an input record (``fit.json``'s ``inputs``)."""
+    return [entry["path"] for entry in (inputs or {}).values() if isinstance(entry, dict) and entry.get("path")]
+
+
 def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
     """Read, bin, fit, make the curve and the gas profile, draw the report and write it all into ``folder``.
 
-    An existing non-empty ``folder`` is refused before any work unless ``overwrite=True``; nothing
-    is left in ``folder`` when a step fails.
+    The folder is checked and claimed before any work (:mod:`.io.output_safety`): an existing
+    non-empty ``folder`` is refused unless ``overwrite=True`` and written by this tool, a folder
+    holding an input is always refused, and a second run writing the same folder is refused at
+    once. Nothing is left in ``folder`` when a step fails.
     """
     from .errors import FitCaution
-    from .io.atomic import check_output_folder
-    from .pipeline.staged import fit_velocity_map
+    from .io.output_safety import claim_output
 
     folder = Path(folder)
-    check_output_folder(folder, overwrite)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", FitCaution)
-        vmap = read_maps(job)
-        result = fit_velocity_map(vmap, job.fit)
-        curve = result.curve(**job.curve.to_dict())
-    result.inputs = input_record(job)
-    gas, gas_note = gas_product(result, curve)
-    files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
-                             overwrite=overwrite)
+    inputs = job_inputs(job)
+    with claim_output(folder, overwrite, inputs, command="tiltedring job"):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", FitCaution)
+            result, curve = _fit_and_curve(job)
+        result.inputs = input_record(job)
+        gas, gas_note = gas_product(result, curve)
+        files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
+                                 overwrite=overwrite, inputs=inputs)
     cautions = [str(w.message) for w in caught if issubclass(w.category, FitCaution)]
     return JobOutcome(folder, files, result, curve, gas, gas_note, cautions)
+
+
+def _fit_and_curve(job: Job):
+    """Steps read, bin, fit and curve."""
+    from .pipeline.staged import fit_velocity_map
+
+    vmap = read_maps(job)
+    result = fit_velocity_map(vmap, job.fit)
+    curve = result.curve(**job.curve.to_dict())
+    return result, curve
