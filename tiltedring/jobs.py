@@ -160,9 +160,12 @@ def read_maps(job: Job):
     from .io.binning import bin_map
     from .io.maps import read_velocity_map
 
+    from .io.binning import check_memory
+
     vmap = read_velocity_map(job.velocity_map, **job.inputs.read_arguments())
     if job.inputs.bin is not None:
         vmap = bin_map(vmap, job.inputs.bin)
+    check_memory(vmap, options=job.fit)
     return vmap
 
 
@@ -246,6 +249,9 @@ def write_result(result, folder, overwrite: bool = False, curve=None, report: bo
 
     ``curve``: the :class:`.products.curve.RotationCurve` to write (default: one without a distance).
     """
+    from .products.sanity import check_physical
+
+    check_physical(result)
     curve = curve if curve is not None else result.curve()
     gas, note = gas_product(result, curve)
     return write_fit_folder(folder, result, curve, gas, note, report=report, png=png, overwrite=overwrite)
@@ -292,7 +298,10 @@ def _fit_and_curve(job: Job):
     """Steps read, bin, fit and curve."""
     from .pipeline.staged import fit_velocity_map
 
+    from .products.sanity import check_physical
+
     vmap = read_maps(job)
     result = fit_velocity_map(vmap, job.fit)
+    check_physical(result)
     curve = result.curve(**job.curve.to_dict())
     return result, curve

@@ -68,12 +68,8 @@ def stage_table(vmap, layout, solutions, ring_flags) -> QTable:
 
 
 def add_sky_centre(table: QTable, vmap) -> None:
-    """Add ``ra_center``/``dec_center`` (deg) beside the pixel centre of each ring."""
-    ra = np.full(len(table), np.nan)
-    dec = np.full(len(table), np.nan)
-    if vmap.wcs is not None:
-        c = vmap.wcs.pixel_to_world(np.asarray(table["x_center"].value), np.asarray(table["y_center"].value))
-        ra, dec = c.spherical.lon.deg, c.spherical.lat.deg
+    """Add ``ra_center``/``dec_center`` (ICRS deg, converted from the map's frame) beside each ring's pixel centre."""
+    ra, dec = vmap.pixel_to_icrs(np.asarray(table["x_center"].value), np.asarray(table["y_center"].value))
     index = table.colnames.index("y_center_err") + 1
     table.add_column(ra * u.deg, name="ra_center", index=index)
     table.add_column(dec * u.deg, name="dec_center", index=index + 1)
@@ -157,6 +153,8 @@ class FitResult:
                 "position_angle": "of the receding half of the major axis, deg from north through east",
                 "inclination": "deg, 0 face-on, 90 edge-on",
                 "pixels": "0-based (numpy order, astropy origin=0)",
+                "sky_centre": f"ra_center, dec_center: ICRS deg, converted with astropy from the map's own celestial "
+                              f"frame ({self.vmap.celestial_frame or 'none: no celestial WCS, so they are blank'})",
                 "v_radial": "positive when the minor-axis half at position_angle + 90 recedes; inflow or outflow "
                             "needs the near side",
             },
