@@ -294,14 +294,34 @@ def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
     return JobOutcome(folder, files, result, curve, gas, gas_note, cautions)
 
 
+def _broke_down(job: Job, exc: Exception):
+    """A fit whose arithmetic broke down: exit 2 when the rings were laid by hand (the usual cause: rings
+    without data), else :class:`.errors.ResultNotPhysical` (exit 1). Never a traceback."""
+    from .errors import ResultNotPhysical
+
+    given = [n for n in ("ring_edges", "first_radius", "max_radius") if getattr(job.fit, n) not in (None, 0, 0.0)]
+    what = f"{type(exc).__name__}: {exc}"
+    if given:
+        raise InputError(f"the fit broke down ({what}) with the rings you laid ({', '.join(given)}): rings that hold no "
+                         "data are the usual cause; give radii inside the valid data of the map") from None
+    raise ResultNotPhysical(f"the fit broke down ({what}); nothing was written. Check the map (units, masking, blank "
+                            "values) or steer the fit with starting values (--inclination, --position-angle, "
+                            "--x-center/--y-center)") from None
+
+
 def _fit_and_curve(job: Job):
     """Steps read, bin, fit and curve."""
     from .pipeline.staged import fit_velocity_map
 
+    import numpy as np
+
     from .products.sanity import check_physical
 
     vmap = read_maps(job)
-    result = fit_velocity_map(vmap, job.fit)
+    try:
+        result = fit_velocity_map(vmap, job.fit)
+    except (ZeroDivisionError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        _broke_down(job, exc)
     check_physical(result)
     curve = result.curve(**job.curve.to_dict())
     return result, curve

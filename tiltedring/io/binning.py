@@ -68,13 +68,16 @@ def ring_count(vmap: VelocityMap, options) -> int:
         given = options.max_radius is not None
         r_max = parse_width(options.max_radius, pixel, beam) if given else min(reach, 0.5 * float(np.hypot(*vmap.shape))
                                                                                * pixel)
-    where = "the ring edges" if options.ring_edges is not None else "the maximum radius"
     if first >= reach or r_max > reach:
-        raise InputError(f"{where} ({max(first, r_max):.4g} arcsec) lie far beyond the map: even for a disc at "
-                         f"{MAX_INCLINATION:g} deg inclination no pixel is more than {reach:.4g} arcsec from the centre "
-                         "in the disc plane; give radii within the data (or leave --max-radius out)")
+        where = ("the ring edges reach" if options.ring_edges is not None else "the first radius lies" if first >= reach
+                 else "the maximum radius lies")
+        raise InputError(f"{where} ({first if first >= reach else r_max:.4g} arcsec) far beyond the map: even for "
+                         f"a disc at {MAX_INCLINATION:g} deg inclination no pixel is more than {reach:.4g} arcsec from "
+                         "the centre in the disc plane; give radii within the data")
     if width < MIN_RING_WIDTH * pixel:
-        raise InputError(f"rings {width:.3g} arcsec wide are narrower than a tenth of a pixel ({pixel:.3g} arcsec): "
+        why = (f" (the default width is one beam: is the beam, {beam:.3g} arcsec, in the right unit? --beam takes "
+               "arcsec)" if options.ring_width is None and options.ring_edges is None and beam is not None else "")
+        raise InputError(f"rings {width:.3g} arcsec wide are narrower than a tenth of a pixel ({pixel:.3g} arcsec){why}: "
                          "they would hold almost no pixels; give a ring width of a pixel or more (e.g. --ring-width "
                          "2pix, or 0.5beam)")
     if options.ring_edges is not None:

@@ -32,6 +32,7 @@ __all__ = ["Beam", "VelocityMap", "read_velocity_map", "load_image", "parse_velo
 
 KM_S = u.km / u.s
 _COMPRESSED = (b"\x1f\x8b", b"BZh")  # gzip and bzip2, both read by astropy.io.fits
+_CELESTIAL = ("RA--", "DEC-", "GLON", "GLAT", "ELON", "ELAT", "SLON", "SLAT", "HPLN", "HPLT")
 
 
 @dataclass(frozen=True)
@@ -319,13 +320,18 @@ def parse_velocity_unit(text) -> float:
 def _celestial_wcs(header, data_shape, role: str = "map", name: str = ""):
     from .map_checks import check_wcs_keywords
 
-    if any(str(header.get(f"CTYPE{k}", "")).strip() for k in (1, 2)):
+    celestial = any(str(header.get(f"CTYPE{k}", "")).strip()[:4].upper() in _CELESTIAL for k in (1, 2))
+    if celestial:
         check_wcs_keywords(header, role, name)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except Exception:
+        except Exception as exc:
+            if celestial:
+                raise InputError(f"{role} {name}: its celestial WCS cannot be read ({str(exc).splitlines()[0][:160]}); "
+                                 "a CDELT or CD entry of 0 makes it singular: correct the header, or remove the WCS "
+                                 "and give --pixel-scale") from None
             return None
     if not wcs.has_celestial or sorted((wcs.wcs.lng, wcs.wcs.lat)) != [0, 1]:
         return None
