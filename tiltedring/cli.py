@@ -155,6 +155,30 @@ def _mass_parser(sub):
     p.set_defaults(run=run_massmodel)
 
 
+def _check_mass_arguments(args) -> list:
+    """``massmodel``'s numbers checked against their ranges before any work; returns the model names."""
+    from .errors import InputError
+    from .massmodel import MassModelSettings
+    from .pipeline.option_fields import Bounds, check_range
+
+    check_range(args.ml_disc, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-disc", 0.5)
+    check_range(args.ml_bulge, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-bulge", 0.7)
+    if args.disc_scale_length is not None:
+        check_range(args.disc_scale_length, Bounds(above=0, maximum=1000, why="kpc"), "--disc-scale-length")
+    check_range(args.seed, Bounds(minimum=0, maximum=2**32 - 1), "--seed", 0)
+    if args.sample:
+        check_range(args.steps, Bounds(minimum=10, maximum=10**6, why="emcee steps per walker"), "--steps", 1500)
+    models = list(dict.fromkeys(m.strip() for m in args.models.split(",") if m.strip()))
+    if not models:
+        raise InputError(f"--models {args.models!r} names no model; give e.g. --models nfw,burkert,mond")
+    for model in models:
+        try:
+            MassModelSettings(model=model)
+        except InputError as exc:
+            raise InputError(f"--models: {exc}") from None
+    return models
+
+
 def run_massmodel(args) -> int:
     from .errors import InputError
     from .massmodel import (
@@ -166,6 +190,9 @@ def run_massmodel(args) -> int:
         write_results,
     )
 
+    from .massmodel.io import read_gas
+
+    models = _check_mass_arguments(args)
     if args.curve.endswith(".dat") and args.radius_column is None:
         curve, baryons = read_sparc_rotmod(args.curve)
     else:
@@ -175,14 +202,8 @@ def run_massmodel(args) -> int:
     if args.components:
         baryons = read_components(args.components)
     if args.gas:
-        from astropy.table import Table
-
-        from .massmodel import ThinDisc
-
-        gas = Table.read(args.gas, format="ascii.ecsv")
-        baryons.gas = ThinDisc(gas["radius_kpc"], gas["surface_density_gas"], label="gas")
+        baryons.gas = read_gas(args.gas)
     baryons.disc_scale_length = args.disc_scale_length
-    models = [m.strip() for m in args.models.split(",") if m.strip()]
     results = {}
     for model in models:
         settings = MassModelSettings(model=model, ml_mode=args.ml_mode, ml_disc=args.ml_disc, ml_bulge=args.ml_bulge,

@@ -29,8 +29,8 @@ def check_input_file(path, role: str = "input file") -> Path:
     try:
         mode = os.stat(path).st_mode
     except FileNotFoundError:
-        raise InputError(f"{role} {path} does not exist; check the name (paths in a manifest or run file are "
-                         "relative to that file)") from None
+        raise InputError(f"{role} {path} does not exist; check the path (paths in a manifest or run file are "
+                         "read relative to that file)") from None
     except NotADirectoryError:
         raise InputError(f"{role} {path} does not exist (a part of the path is a file, not a folder)") from None
     except OSError as exc:

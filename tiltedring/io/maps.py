@@ -518,6 +518,15 @@ def read_velocity_map(
     return vmap
 
 
+def read_grid(source, role: str = "grid map", pixel_scale: float | None = None) -> VelocityMap:
+    """A map's grid only (WCS, sky Jacobian, beam) as a :class:`VelocityMap` whose values are left unchecked:
+    the common grid other maps are put on (:mod:`..products.compare`)."""
+    data, header, name = load_image(source, role)
+    wcs, jac = _grid(data, header, name, role, pixel_scale)
+    beam = Beam.from_header(header, f"{role} {name}")
+    return VelocityMap(velocity=data, sky_jacobian=jac, wcs=wcs, beam=beam, source=name)
+
+
 def write_map(path, data: np.ndarray, vmap: VelocityMap, bunit: str = "km/s", extra: dict | None = None) -> None:
     """Write a map on ``vmap``'s grid as FITS, atomically (temporary name, then rename)."""
     from .atomic import atomic_path

@@ -26,7 +26,8 @@ from dataclasses import dataclass
 
 from ..errors import InputError
 
-__all__ = ["option", "Bounds", "OptionSpec", "field_specs", "flat_specs", "coerce", "validate", "recorded_values"]
+__all__ = ["option", "Bounds", "OptionSpec", "field_specs", "flat_specs", "coerce", "validate", "check_range",
+           "recorded_values"]
 
 FORMS = ("value", "switch", "numbers", "names", "entries")
 NUMBER_OR_TEXT = "number or text"
@@ -213,6 +214,12 @@ def coerce(spec: OptionSpec, value, label: str | None = None):
             _check_length(spec, value, label)
         return value
     return _in_range(spec.bounds, value, label, spec.default)
+
+
+def check_range(value, bounds: "Bounds | None", label: str, default=None):
+    """``value`` when it is a finite number inside ``bounds``; else :class:`InputError` naming ``label``, the
+    value and the range (for options outside the dataclasses, e.g. ``massmodel``'s)."""
+    return _in_range(bounds, value, label, default)
 
 
 def _in_range(bounds, value, label, default):
