@@ -43,7 +43,7 @@ def _manifest_columns() -> tuple:
     from .jobs import OUTPUT_SWITCHES, job_specs
 
     specs = job_specs()
-    known = set(_ROW_COLUMNS) | set(specs) | set(OUTPUT_SWITCHES)
+    known = {"name", "velocity_map"} | set(specs) | set(OUTPUT_SWITCHES)
     paths = {"velocity_map"} | {name for name, spec in specs.items() if spec.path}
     return known, paths
 
@@ -91,8 +91,8 @@ def read_manifest(path) -> list:
         rows.append(item)
         labels.append(label)
     if missing:
-        raise InputError(f"manifest {path}: {', '.join(missing)} give no velocity_map; fill in the map of every row "
-                         "or remove the row")
+        raise InputError(f"manifest {path}: {', '.join(missing)}: no velocity_map; fill in the map of every row or "
+                         "remove the row")
     check_names([r["name"] for r in rows], labels, where=f"manifest {path}")
     for row, label in zip(rows, labels):
         row["_row"] = label

@@ -145,13 +145,18 @@ def _load_toml(path) -> dict:
         import tomllib
     except ModuleNotFoundError:  # Python 3.10
         import tomli as tomllib
+    from .io.input_files import read_text
+
+    text = read_text(path, "run file")
     try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise InputError(f"run file {path} does not exist") from None
+        config = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"run file {path} is not valid TOML: {exc}") from None
+        raise InputError(f"run file {path} is not valid TOML: {exc}; see 'tiltedring fit --help' for an example") from None
+    for table, content in config.items():
+        if table in RUN_FILE_TABLES and not isinstance(content, dict):
+            raise InputError(f"run file {path}: {table} must be a table ([{table}] followed by name = value lines), "
+                             f"not a value")
+    return config
 
 
 # ---------------------------------------------------------------------------------------------- the steps
