@@ -15,6 +15,8 @@ pixels to distinct sky positions, a beam in the right unit, and velocities a dis
   single pixels that are faster than light or lie more than 3000 km/s from the median are blanked
   with a caution (fill values such as 1e30). Values that span less than 2 km/s in a map labelled
   m/s get a caution (km/s labelled m/s).
+- **The data's footprint**: valid pixels that lie along a line (the smaller principal spread of
+  their positions under 0.6 pixel, e.g. a map of one or two rows) cannot constrain a disc's geometry.
 - **Integer maps** whose fill value has no ``BLANK`` keyword: the most negative integer of the
   type (e.g. -32768) is taken as blank, with a caution.
 """
@@ -29,7 +31,7 @@ import numpy as np
 
 from ..errors import FitCaution, InputError
 
-__all__ = ["check_wcs_keywords", "check_grid", "checked_beam", "check_beam_size", "plausible_velocities",
+__all__ = ["check_spread", "check_wcs_keywords", "check_grid", "checked_beam", "check_beam_size", "plausible_velocities",
            "integer_fill", "SPEED_OF_LIGHT", "MAX_SPREAD"]
 
 SPEED_OF_LIGHT = 299792.458  # km/s (astropy.constants.c)
@@ -146,3 +148,16 @@ def integer_fill(data, raw, blank, role: str, name: str):
                       "and the header has no BLANK keyword; they are treated as blank", FitCaution, stacklevel=3)
         data = np.where(hit, np.nan, data)
     return data
+
+
+def check_spread(valid, name: str) -> None:
+    """Refuse valid pixels that lie along a line: the smaller principal standard deviation of their
+    positions below 0.6 pixel (a map of one or two rows, a thin diagonal strip)."""
+    yy, xx = np.nonzero(valid)
+    if xx.size < 3:
+        raise InputError(f"velocity map {name} has only {xx.size} valid pixel(s): too few to fit a disc; check the "
+                         "masking or use a map with more coverage")
+    spread = float(np.sqrt(max(np.linalg.eigvalsh(np.cov(np.vstack([xx, yy]).astype(float)))[0], 0.0)))
+    if spread < 0.6:
+        raise InputError(f"velocity map {name}: its valid pixels lie along a line (spread {spread:.2f} pixel across "
+                         "it), too few to fit a disc's geometry; give a map that covers the disc in two dimensions")

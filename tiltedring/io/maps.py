@@ -515,6 +515,9 @@ def read_velocity_map(
         vmap.intensity = idata
     if not vmap.valid.any():
         raise InputError(f"velocity map {name} has no pixel with both a finite velocity and a positive error")
+    from .map_checks import check_spread
+
+    check_spread(vmap.valid, name)
     return vmap
 
 
