@@ -14,10 +14,15 @@ import tiltedring as tr
 from tiltedring.fitting.candidates import SortedPixels, ring_members
 from tiltedring.fitting.engine import RingFitOptions, fit_ring
 from tiltedring.fitting.geometry import disc_coordinates
-from tiltedring.fitting.kinematics import PARAMETERS
 from tiltedring.fitting.leastsq import weighted_least_squares
-from tiltedring.pipeline.staged import FitOptions, _fit_response, _run_stage
+from tiltedring.fitting.parameters import COUNT, ORIENTATION, PARAMETERS, Parameter, mask, vector
+from tiltedring.pipeline.options import FitOptions
+from tiltedring.pipeline.ring_stage import fit_stage_rings
+from tiltedring.pipeline.state import StageResult
+from tiltedring.pipeline.steps import build_response
 from tiltedring.synthetic import DiscTruth, make_field
+
+P = Parameter
 
 JAC = np.array([[-1.6, 0.5], [0.4, 1.7]])
 
@@ -25,11 +30,11 @@ JAC = np.array([[-1.6, 0.5], [0.4, 1.7]])
 def _warped_rings(n=12):
     """Rings whose centre, position angle and inclination all drift with radius (a warp and a shift)."""
     radii = np.linspace(3.0, 60.0, n)
-    table = np.zeros((n, 7))
-    table[:, 0] = 50.0 + 0.05 * radii
-    table[:, 1] = 48.0 - 0.03 * radii
-    table[:, 3] = 30.0 + 0.4 * radii  # 24 deg of twist
-    table[:, 4] = 55.0 + 0.2 * radii
+    table = np.zeros((n, COUNT))
+    table[:, P.x_center] = 50.0 + 0.05 * radii
+    table[:, P.y_center] = 48.0 - 0.03 * radii
+    table[:, P.position_angle] = 30.0 + 0.4 * radii  # 24 deg of twist
+    table[:, P.inclination] = 55.0 + 0.2 * radii
     return radii - 2.5, radii + 2.5, table
 
 
@@ -41,7 +46,9 @@ def test_ring_members_match_a_search_over_every_pixel():
     inner, outer, table = _warped_rings()
     ordered = SortedPixels(pixels, JAC, table, inner, outer)
     for k, (at, cos_t, _) in enumerate(ring_members(ordered, table)):
-        radius, cos_all, _ = disc_coordinates(x, y, table[k, 0], table[k, 1], JAC, table[k, 3], table[k, 4])
+        ring = table[k]
+        radius, cos_all, _ = disc_coordinates(x, y, ring[P.x_center], ring[P.y_center], JAC, ring[P.position_angle],
+                                              ring[P.inclination])
         expected = np.flatnonzero((radius >= inner[k]) & (radius < outer[k]))
         np.testing.assert_array_equal(np.sort(ordered.order[at]), expected)
         np.testing.assert_allclose(np.sort(cos_t), np.sort(cos_all[expected]))
@@ -56,11 +63,12 @@ def test_stage_fits_from_slices_equal_one_ring_at_a_time_on_all_pixels(quiet):
     yy, xx = np.nonzero(vm.valid)
     pixels = (xx.astype(float), yy.astype(float), vm.velocity[vm.valid], np.ones(len(xx)))
     layout = tr.RingLayout.uniform(8.0, 100.0)
-    starts = np.zeros((len(layout), 7))
-    starts[:] = [61.0, 65.0, 1445.0, 295.0, 52.0, 150.0, 0.0]  # a few pixels and degrees off
-    free = np.array([True] * 6 + [False])
+    starts = np.zeros((len(layout), COUNT))
+    starts[:] = vector({"x_center": 61.0, "y_center": 65.0, "v_systemic": 1445.0, "position_angle": 295.0,
+                        "inclination": 52.0, "v_rotation": 150.0})  # a few pixels and degrees off
+    free = ~mask([P.v_radial])
     options = RingFitOptions()
-    fast = _run_stage(vm, pixels, layout, starts, free, options, wander=0.01)
+    fast = fit_stage_rings(vm, pixels, layout, starts, free, options, wander=0.01)
     for k, sol in enumerate(fast):
         plain = fit_ring(*pixels, starts[k], free, vm.sky_jacobian, layout.inner[k], layout.outer[k], options,
                          vm.pixels_per_beam)
@@ -107,18 +115,20 @@ def test_first_order_response_agrees_with_refitting(quiet):
     centred = res.stages["centred"]
     starts_b = np.column_stack([np.asarray(centred[name].value, float) if name in centred.colnames
                                 else np.zeros(len(centred)) for name in PARAMETERS])
-    free_b = np.array([False, False, False, True, True, True, False])
-    free_c = np.array([False] * 5 + [True, False])
-    sols_b = _run_stage(vm, pixels, layout, starts_b, free_b, options)
+    free_b = mask([*ORIENTATION, P.v_rotation])
+    free_c = mask([P.v_rotation])
+    sols_b = fit_stage_rings(vm, pixels, layout, starts_b, free_b, options)
     final = res.stages["final"]
     starts_c = np.column_stack([np.asarray(final[name].value, float) if name in final.colnames
                                 else np.zeros(len(final)) for name in PARAMETERS])
-    sols_c = _run_stage(vm, pixels, layout, starts_c, free_c, options)
-    err_b = np.array([s.errors for s in sols_b])
-    used = np.array([s.converged for s in sols_b])
-    constant = ["position_angle", "inclination"]
-    response = _fit_response(vm, pixels, layout, options, sols_b, free_b, sols_c, free_c, err_b, used, constant,
-                             float(starts_c[0, 3]), {"position_angle": starts_c[0, 3], "inclination": starts_c[0, 4]})
+    sols_c = fit_stage_rings(vm, pixels, layout, starts_c, free_c, options)
+    no_flags = [set() for _ in layout.radii]
+    centred_stage = StageResult(sols_b, no_flags, starts_b, free_b)
+    final_stage = StageResult(sols_c, no_flags, starts_c, free_c)
+    used = centred_stage.converged
+    constant = [p.name for p in ORIENTATION]
+    response = build_response(vm, pixels, layout, options, centred_stage, final_stage, used, constant,
+                              float(starts_c[0, P.position_angle]))
     ny, nx = vm.shape
     yy, xx = np.mgrid[0:ny, 0:nx]
     ripple = 3.0 * np.sin(xx / 9.0) * np.cos(yy / 13.0) + 2.0 * (xx - nx / 2) / nx
@@ -126,17 +136,17 @@ def test_first_order_response_agrees_with_refitting(quiet):
     predicted = response.measure(changed)
 
     moved = (pixels[0], pixels[1], changed[vm.valid], pixels[3])
-    refit_b = _run_stage(vm, moved, layout, starts_b, free_b, options)
+    refit_b = fit_stage_rings(vm, moved, layout, starts_b, free_b, options)
     geometry = {}
     for name in constant:
-        k = PARAMETERS.index(name)
         w = response.weights[name]
-        geometry[name] = float(np.sum(w * np.array([s.params[k] for s in refit_b])))
+        geometry[name] = float(np.sum(w * np.array([s.params[P[name]] for s in refit_b])))
         assert abs(predicted[name] - geometry[name]) < 0.05 + 0.1 * abs(geometry[name] - response.base[name])
         assert abs(predicted[name] - geometry[name]) < 0.2 * res.rings[f"{name}_err"].value[0]
     starts = starts_c.copy()
-    starts[:, 3], starts[:, 4] = geometry["position_angle"], geometry["inclination"]
-    refit_c = np.array([s.params[5] for s in _run_stage(vm, moved, layout, starts, free_c, options)])
+    for p in ORIENTATION:
+        starts[:, p] = geometry[p.name]
+    refit_c = np.array([s.params[P.v_rotation] for s in fit_stage_rings(vm, moved, layout, starts, free_c, options)])
     change = np.abs(refit_c - response.observed()["v_rotation"])
     ok = np.isfinite(predicted["v_rotation"])
     assert ok.sum() >= len(layout) - 1

@@ -22,6 +22,8 @@ __version__ = "0.1.0"
 _EXPORTS = {
     "VelocityMap": "io.maps", "Beam": "io.maps", "read_velocity_map": "io.maps",
     "RingLayout": "fitting.rings", "FitOptions": "pipeline", "fit_velocity_map": "pipeline",
+    "LineCube": "io.cube", "read_cube": "io.cube", "VelocityMaps": "io.velocity_fields",
+    "make_velocity_maps": "io.velocity_fields",
     "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
     "ResultNotPhysical": "errors", "Job": "jobs", "run_job": "jobs",
 }

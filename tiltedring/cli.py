@@ -18,6 +18,7 @@ FIT_EXAMPLES = """examples:
   tiltedring fit map.fits --ring-width 4pix --spacing logarithmic --max-radius 3arcmin --out fit2
   tiltedring fit map.fits --inclination 62 --fix inclination --half receding --out fit3
   tiltedring fit map.fits --config run.toml --out fit4
+  tiltedring fit cube.fits --exclude-velocities=-60:5 --out fit5     # a spectral cube: maps made into fit5/maps
 
 A TOML run file holds the same options (underscores or dashes): input options in [inputs],
 fit options in a [fit] table with starting values in [fit.initial], and the curve's in [curve]:
@@ -42,6 +43,7 @@ GROUP_TITLES = {  # help sections of the generated options, in this order
     "fitting": "fitting",
     "curve": "the rotation-curve product (curve.ecsv)",
     "initial": "starting values (used instead of the first guess)",
+    "cube": "from a spectral cube (when the input is a cube: how its velocity maps are made)",
 }
 _ARGUMENT_TYPES = {float: float, int: int}
 
@@ -53,18 +55,20 @@ def _common() -> argparse.ArgumentParser:
     return common
 
 
-def add_job_options(parser: argparse.ArgumentParser, per_galaxy_maps: bool = True) -> None:
+def add_job_options(parser: argparse.ArgumentParser, per_galaxy_maps: bool = True, specs: dict | None = None) -> None:
     """Add every declared job option (:func:`tiltedring.jobs.job_specs`) to ``parser``, grouped.
 
     Nothing is listed here: flags, types, choices, metavars and help come from the fields of the
     option dataclasses. Every default is None ("not given"), so a run file or a manifest row can
     supply the value and the dataclass default applies otherwise. ``per_galaxy_maps=False`` leaves
-    out the map files (batch: they are manifest columns).
+    out the map files (batch: they are manifest columns). ``specs``: another set of options (name -> spec).
     """
     from .jobs import job_specs
 
-    groups = {key: parser.add_argument_group(title) for key, title in GROUP_TITLES.items()}
-    for spec in job_specs().values():
+    specs = job_specs() if specs is None else specs
+    groups = {key: parser.add_argument_group(title) for key, title in GROUP_TITLES.items()
+              if any(spec.group == key for spec in specs.values())}
+    for spec in specs.values():
         if not spec.command_line or (spec.path and not per_galaxy_maps):
             continue
         if spec.group not in groups:
@@ -81,12 +85,13 @@ def add_job_options(parser: argparse.ArgumentParser, per_galaxy_maps: bool = Tru
         groups[spec.group].add_argument(spec.flag, **kwargs)
 
 
-def job_values(args) -> dict:
+def job_values(args, specs: dict | None = None) -> dict:
     """The job options given on the command line, by their flat names, checked (errors name the flag)."""
     from .jobs import job_specs
     from .pipeline.option_fields import coerce
 
-    return {name: coerce(spec, getattr(args, name), spec.flag) for name, spec in job_specs().items()
+    specs = job_specs() if specs is None else specs
+    return {name: coerce(spec, getattr(args, name), spec.flag) for name, spec in specs.items()
             if spec.command_line and getattr(args, name, None) is not None}
 
 
@@ -95,7 +100,8 @@ def _fit_parser(sub):
                        description="Fit a tilted-ring model to a 2-D velocity (moment-1) map and write the ring "
                                    "table, model and residual maps and a run record into --out.",
                        epilog=FIT_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("map", help="velocity map (FITS, BUNIT in km/s or m/s)")
+    p.add_argument("map", help="velocity map (FITS, BUNIT in km/s or m/s), or a spectral cube (maps are made first, "
+                               "into OUT/maps)")
     p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
     p.add_argument("--overwrite", action="store_true",
                    help="replace an existing output folder (its old files are removed once the new ones are written)")
@@ -128,8 +134,10 @@ def _mass_parser(sub):
     p.add_argument("curve", help="curve.ecsv, a table, or a SPARC *_rotmod.dat file")
     p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
-    p.add_argument("--models", default="isothermal,nfw,burkert,einasto,mond",
-                   help="comma-separated: isothermal, nfw, burkert, einasto, mond, none (default: all but none)")
+    from .massmodel import model_names
+
+    p.add_argument("--models", default=",".join(model_names(include_none=False)),
+                   help=f"comma-separated: {', '.join(model_names())} (default: all but none)")
     p.add_argument("--components", help="table of baryonic speed curves for M/L = 1")
     p.add_argument("--gas", help="gas.ecsv written by 'tiltedring fit' (HI surface density with helium): "
                                  "its thin-disc speed becomes the gas component")
@@ -318,6 +326,69 @@ def run_batch_command(args) -> int:
     return EXIT_OK if summary["failed"] == 0 else EXIT_FAILURE
 
 
+MAPS_EXAMPLES = """examples:
+  tiltedring maps demo_fields/dunmore_cube.fits --exclude-velocities=-5:20 --out dunmore_maps
+  tiltedring maps cube.fits --velocity-kind gaussian --exclude-velocities=-60:5 --out maps1
+  tiltedring maps cube.fits --velocity-kind moment --mask-threshold 3 --minimum-run 4 --out maps2
+
+Writes velocity.fits (km/s, in the cube's velocity convention and frame), velocity_err.fits,
+intensity.fits (moment 0), dispersion.fits, mask.fits (the emission mask, 1 = used), h3.fits
+(--velocity-kind hermite) and maps.json (what was done: noise, mask, kind, convention, frame, rest
+frequency, excluded ranges). A range starting with a minus sign needs the '=' form:
+--exclude-velocities=-60:5. Fit the maps with
+  tiltedring fit OUT/velocity.fits --error-map OUT/velocity_err.fits --intensity-map OUT/intensity.fits
+"""
+
+
+def _maps_parser(sub):
+    """``tiltedring maps``: velocity maps from a spectral cube (self-contained: parser and runner)."""
+    p = sub.add_parser("maps", parents=[_common()], help="make velocity maps from a spectral cube",
+                       description="Make velocity, error, intensity (moment-0) and dispersion maps from a FITS "
+                                   "spectral cube, over a smoothed-and-clipped emission mask.",
+                       epilog=MAPS_EXAMPLES, formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("cube", help="FITS spectral cube (frequency or velocity axis)")
+    p.add_argument("--out", required=True, help="output folder (refused if it exists and is not empty)")
+    p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    add_job_options(p, specs=_cube_specs())
+    p.set_defaults(run=run_maps)
+    return p
+
+
+def _cube_specs() -> dict:
+    from .pipeline.option_fields import flat_specs
+    from .pipeline.options import CubeOptions
+
+    return flat_specs(CubeOptions)
+
+
+def run_maps(args) -> int:
+    import warnings
+
+    from .errors import FitCaution
+    from .io.velocity_fields import make_velocity_maps
+    from .pipeline.options import CubeOptions
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FitCaution)  # printed below from the record
+        maps = make_velocity_maps(args.cube, **CubeOptions(**job_values(args, _cube_specs())).map_arguments())
+    maps.write(args.out, overwrite=args.overwrite)
+    if not args.quiet:
+        rec = maps.record
+        excluded = ", ".join(f"{lo:g}:{hi:g}" for lo, hi in rec["mask"]["excluded_velocities"]) or "none"
+        print(f"{rec['source']}: {rec['channels']} channels of {rec['channel_width_kms']:.3g} km/s "
+              f"({rec['velocity_convention']} convention, frame {rec['velocity_frame']}), noise "
+              f"{rec['noise']['median']:.3g} {rec['brightness_unit']} (median per channel)")
+        print(f"{rec['velocity_kind']} velocities in {rec['pixels_with_velocity']} pixels; excluded velocities: "
+              f"{excluded}" + (f" ({rec['mask']['exclusion']})" if rec["mask"]["exclusion"] else ""))
+        for key, value in rec["fits"].items():
+            if value and key != "spectra_fitted":
+                print(f"note: {key.replace('_', ' ')}: {value}")
+        for text in rec["cautions"]:
+            print(f"caution: {text}")
+        print(f"wrote {args.out}/" + ", ".join(v for v in rec["files"].values()))
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -332,6 +403,7 @@ def build_parser() -> argparse.ArgumentParser:
     _mass_parser(sub)
     _compare_parser(sub)
     _batch_parser(sub)
+    _maps_parser(sub)
     return parser
 
 

@@ -30,12 +30,13 @@ from pathlib import Path
 
 from .errors import InputError
 from .pipeline.option_fields import OptionSpec, coerce, field_specs, flat_specs
-from .pipeline.options import CurveOptions, FitOptions, InputOptions
+from .pipeline.options import CubeOptions, CurveOptions, FitOptions, InputOptions
 
 __all__ = ["Job", "JobOutcome", "run_job", "read_run_file", "job_specs", "write_fit_folder", "write_result",
            "RUN_FILE_TABLES"]
 
-RUN_FILE_TABLES = {"inputs": InputOptions, "fit": FitOptions, "curve": CurveOptions}  # table -> Job field
+RUN_FILE_TABLES = {"inputs": InputOptions, "fit": FitOptions, "curve": CurveOptions,
+                   "cube": CubeOptions}  # table -> Job field
 OUTPUT_SWITCHES = {
     "report": OptionSpec("report", "--report", bool, "switch", False, "also write report.pdf"),
     "png": OptionSpec("png", "--png", bool, "switch", False, "also write the report pages as PNG files"),
@@ -59,6 +60,7 @@ class Job:
     inputs: InputOptions = field(default_factory=InputOptions)
     fit: FitOptions = field(default_factory=FitOptions)
     curve: CurveOptions = field(default_factory=CurveOptions)
+    cube: CubeOptions = field(default_factory=CubeOptions)
     report: bool = False
     png: bool = False
     record: dict = field(default_factory=dict)
@@ -162,22 +164,56 @@ def _load_toml(path) -> dict:
 # ---------------------------------------------------------------------------------------------- the steps
 def read_maps(job: Job):
     """Steps read and bin: the :class:`.io.maps.VelocityMap` of the job (binned when ``bin`` > 1)."""
-    from .io.binning import bin_map
+    return read_job_maps(job)[0]
+
+
+def read_job_maps(job: Job) -> tuple:
+    """Steps read and bin: (the job's :class:`.io.maps.VelocityMap`, the :class:`.io.velocity_fields.VelocityMaps`
+    made from it when ``velocity_map`` is a spectral cube, else None)."""
+    from .io.binning import bin_map, check_memory
     from .io.maps import read_velocity_map
 
-    from .io.binning import check_memory
-
-    vmap = read_velocity_map(job.velocity_map, **job.inputs.read_arguments())
+    cube_maps = cube_velocity_maps(job)
+    if cube_maps is not None:
+        vmap = cube_maps.to_velocity_map(beam=job.inputs.beam)
+    else:
+        vmap = read_velocity_map(job.velocity_map, **job.inputs.read_arguments())
     if job.inputs.bin is not None:
         vmap = bin_map(vmap, job.inputs.bin)
     check_memory(vmap, options=job.fit)
-    return vmap
+    return vmap, cube_maps
 
 
-def input_record(job: Job) -> dict:
+def cube_velocity_maps(job: Job):
+    """Velocity maps made from the job's input when it is a spectral cube (:mod:`.io.velocity_fields`), else None.
+
+    Map inputs that the cube replaces are refused, and so are cube options given for a 2-D map."""
+    from .io.cube import LineCube, looks_like_cube
+
+    source = job.velocity_map
+    if not (isinstance(source, LineCube) or (isinstance(source, (str, Path)) and looks_like_cube(source))):
+        if job.cube != CubeOptions():
+            given = [k for k, v in job.cube.__dict__.items() if v != getattr(CubeOptions(), k)]
+            raise InputError(f"cube option(s) {', '.join(given)} given, but {source} is not a spectral cube")
+        return None
+    replaced = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale")
+                if getattr(job.inputs, k) is not None]
+    if replaced:
+        raise InputError(f"{source} is a spectral cube, whose maps are made from it, so {', '.join(replaced)} cannot "
+                         "be given; make maps with 'tiltedring maps' and fit those to use your own")
+    from .io.velocity_fields import make_velocity_maps
+
+    return make_velocity_maps(source, **job.cube.map_arguments())
+
+
+def input_record(job: Job, cube_maps=None) -> dict:
     """The ``inputs`` section of ``fit.json``: every file with its SHA-256, the other input options, the
-    curve options, and ``job.record``."""
+    curve options, and ``job.record``; for a cube, the cube, its options and the maps made from it."""
     record = {"velocity_map": _file_entry(job.velocity_map)}
+    if cube_maps is not None:
+        record = {"cube": _file_entry(job.velocity_map), "cube_options": job.cube.to_dict(),
+                  "maps_from_cube": {"folder": "maps", **{k: cube_maps.record[k] for k in (
+                      "velocity_kind", "velocity_convention", "velocity_frame", "rest_frequency_hz")}}}
     for spec in field_specs(type(job.inputs)):
         value = getattr(job.inputs, spec.name)
         if value is not None:
@@ -213,15 +249,16 @@ def gas_product(result, curve) -> tuple:
 
 
 def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = None, report: bool = False,
-                     png: bool = False, overwrite: bool = False, inputs=()) -> list:
+                     png: bool = False, overwrite: bool = False, cube_maps=None, inputs=()) -> list:
     """Steps report and write: every output into a temporary folder, renamed onto ``folder`` when all
     are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
 
     Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
     ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``; ``report_*.png``
-    with ``png``). ``fit.json`` says under ``gas`` whether ``gas.ecsv`` was written and why not.
-    ``inputs``: paths the folder may not be or hold (:mod:`.io.output_safety`; default: the files
-    named in the result's input record).
+    with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
+    says under ``gas`` whether ``gas.ecsv`` was written and why not. ``inputs``: paths the folder
+    may not be or hold (:mod:`.io.output_safety`; the files named in the result's input record are
+    added).
     """
     from .io.atomic import atomic_folder, write_json
     from .io.maps import write_map
@@ -241,6 +278,8 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
         if gas is not None:
             write_table(gas, tmp / "gas.ecsv", comment=gas.meta.get("comment"))
         write_json(tmp / "fit.json", record)
+        if cube_maps is not None:
+            cube_maps.write_into(tmp / "maps")
         if report:
             from .products.plotting import write_report
 
@@ -277,6 +316,9 @@ def recorded_paths(inputs: dict) -> list:
 def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
     """Read, bin, fit, make the curve and the gas profile, draw the report and write it all into ``folder``.
 
+    A spectral cube as ``velocity_map`` is first turned into velocity maps (``job.cube``), written
+    into ``folder/maps`` with the rest.
+
     The folder is checked and claimed before any work (:mod:`.io.output_safety`): an existing
     non-empty ``folder`` is refused unless ``overwrite=True`` and written by this tool, a folder
     holding an input is always refused, and a second run writing the same folder is refused at
@@ -290,11 +332,11 @@ def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
     with claim_output(folder, overwrite, inputs, command="tiltedring job"):
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", FitCaution)
-            result, curve = _fit_and_curve(job)
-        result.inputs = input_record(job)
+            result, curve, cube_maps = _fit_and_curve(job)
+        result.inputs = input_record(job, cube_maps)
         gas, gas_note = gas_product(result, curve)
         files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
-                                 overwrite=overwrite, inputs=inputs)
+                                 overwrite=overwrite, cube_maps=cube_maps, inputs=inputs)
     cautions = [str(w.message) for w in caught if issubclass(w.category, FitCaution)]
     return JobOutcome(folder, files, result, curve, gas, gas_note, cautions)
 
@@ -315,18 +357,17 @@ def _broke_down(job: Job, exc: Exception):
 
 
 def _fit_and_curve(job: Job):
-    """Steps read, bin, fit and curve."""
-    from .pipeline.staged import fit_velocity_map
-
+    """Steps read, bin, fit and curve: (result, curve, the maps made from a cube or None)."""
     import numpy as np
 
+    from .pipeline.staged import fit_velocity_map
     from .products.sanity import check_physical
 
-    vmap = read_maps(job)
+    vmap, cube_maps = read_job_maps(job)
     try:
         result = fit_velocity_map(vmap, job.fit)
     except (ZeroDivisionError, FloatingPointError, np.linalg.LinAlgError) as exc:
         _broke_down(job, exc)
     check_physical(result)
     curve = result.curve(**job.curve.to_dict())
-    return result, curve
+    return result, curve, cube_maps

@@ -1,8 +1,9 @@
 """Where the assumptions of a flat disc in circular rotation fail: the decisions made before the curve.
 
 Runs at the final geometry and adds, per ring, the harmonic coefficients (:mod:`.harmonics`), the
-flow models and their selection (:mod:`.flows`), the approaching-minus-receding difference and the
-residual rms, and sets the flags ``radial_flow``, ``bisymmetric_flow`` and ``strong_harmonics``.
+registered flow models and their selection (:mod:`.flow_models`, :mod:`.flows`), the
+approaching-minus-receding difference and the residual rms, and sets the flags of the chosen flow
+models (``radial_flow``, ``bisymmetric_flow``, ...) and ``strong_harmonics``.
 The warp decision is made earlier (:mod:`.warp`), because the final geometry depends on it.
 
 Summaries for ``fit.json``: ``non_circular`` {detected, radii, kind, max_amplitude, ...} and
@@ -15,12 +16,16 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from astropy import units as u
 
 from ..fitting.candidates import gather_rings
+from .flow_models import flow_model, flow_models
 from .flows import FlowTest, fit_flows
-from .harmonics import HARMONIC_NAMES, ring_harmonics
+from .harmonics import HARMONIC_NAMES, NON_CIRCULAR, ring_harmonics
 
-__all__ = ["NonCircularTest", "diagnose"]
+__all__ = ["NonCircularTest", "diagnose", "harmonic_columns", "flow_columns", "asymmetry_summary"]
+
+KM_S = u.km / u.s
 
 
 @dataclass(frozen=True)
@@ -38,45 +43,41 @@ class NonCircularTest:
 
 def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, residual_by_ring=None,
              test: NonCircularTest = NonCircularTest(), bar_range=None):
-    """Return (per-ring columns dict, per-ring flag sets, summary dict)."""
+    """Return (per-ring columns dict, per-ring flag sets, summary dict).
+
+    The columns carry their units, ready for a ring table: an astropy Quantity for speeds, a plain
+    float array for pure numbers (fractions, p-values, BIC differences), a list of str for
+    ``flow_model``. Their names and units come from :func:`harmonic_columns` and the registered flow
+    models (:mod:`.flow_models`).
+    """
     n = len(inner)
     radii = 0.5 * (np.asarray(inner) + np.asarray(outer))
     members = gather_rings(pixels, sky_jacobian, rings, inner, outer)
     harm = ring_harmonics(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, members)
     flows = fit_flows(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, test.flows, bar_range, members)
-    sin_i = np.sin(np.radians(np.asarray(rings["inclination"], float)))
-    variances = np.array([harm[f"{c}_err"] ** 2 for c in ("s1", "c2", "s2", "c3", "s3")])
-    measured = np.isfinite(variances).sum(axis=0)
-    amp_err = np.sqrt(np.where(measured > 0, np.nansum(variances, axis=0) / np.maximum(measured, 1), np.nan)) / sin_i
-    strong = ((harm["noncircular_in_plane"] > np.maximum(test.min_amplitude, 3 * amp_err))
-              & (harm["harmonic_p_value"] < test.max_p_value))
+    strong = _strong_harmonics(harm, rings, test)
+    models = flow_models()
     ring_flags = [set() for _ in range(n)]
     amplitude = np.zeros(n)
     for k in range(n):
-        model = flows["flow_model"][k]
-        if model == "bisymmetric":
-            ring_flags[k].add("bisymmetric_flow")
-            amplitude[k] = np.hypot(flows["v_2t"][k], flows["v_2r"][k])
-        elif model == "radial":
-            ring_flags[k].add("radial_flow")
-            amplitude[k] = abs(flows["v_radial_flow"][k])
+        model = flow_model(flows["flow_model"][k])
+        if model.flag is not None:
+            ring_flags[k].add(model.flag)
+            amplitude[k] = model.amplitude({key: flows[key][k] for key in model.table_columns()})[0]
         if strong[k]:
             ring_flags[k].add("strong_harmonics")
             amplitude[k] = max(amplitude[k], harm["noncircular_in_plane"][k])
-    columns = {f"harmonic_{name}": harm[name] for name in HARMONIC_NAMES}
-    columns.update({f"harmonic_{name}_err": harm[f"{name}_err"] for name in HARMONIC_NAMES})
-    for key in ("noncircular_amplitude", "noncircular_in_plane", "noncircular_fraction", "harmonic_p_value"):
-        columns[key] = harm[key]
-    for key in ("flow_model", "v_t_circular", "v_t_radial", "v_t_bisymmetric", "v_radial_flow", "v_radial_flow_err",
-                "v_2t", "v_2t_err", "v_2r", "v_2r_err", "delta_bic_radial", "delta_bic_bisymmetric"):
-        columns[key] = flows[key]
+    columns = {name: _with_unit(harm[key], unit) for name, (key, unit) in harmonic_columns().items()}
+    columns.update(_flow_columns(flows))
     if residual_by_ring is not None:
-        columns["residual_rms"] = residual_by_ring
+        columns["residual_rms"] = np.asarray(residual_by_ring, float) * KM_S
 
     flagged = [k for k in range(n) if ring_flags[k]]
-    kinds = [m for m in ("bisymmetric", "radial") if any(flows["flow_model"][k] == m for k in flagged)]
+    preferred_first = [m for m in reversed(models) if m.flag is not None]
+    kinds = [m.name for m in preferred_first if any(flows["flow_model"][k] == m.name for k in flagged)]
     if not kinds and flagged:
         kinds = ["harmonic"]
+    meanings = ", ".join(m.amplitude_meaning for m in preferred_first)
     summary = {
         "non_circular": {
             "detected": bool(flagged),
@@ -84,18 +85,59 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
             "kind": kinds[0] if kinds else None,
             "kinds": kinds,
             "max_amplitude": float(amplitude[flagged].max()) if flagged else 0.0,
-            "amplitude_meaning": "in the disc plane, km/s: sqrt(v_2t^2 + v_2r^2), |v_radial| or the harmonic amplitude",
-            "bar_angle": flows["disc"].get("bar_angle"),
-            "bar_range": flows["disc"].get("bar_range"),
+            "amplitude_meaning": f"in the disc plane, km/s: {meanings} or the harmonic amplitude",
+            **{key: flows["disc"].get(key) for m in models for key in m.disc_keys},
             "disc_model_bic": flows["disc"].get("bic"),
             "disc_preferred_model": flows["disc"].get("preferred"),
-            "radial_flow_sign": "v_radial_flow > 0: the minor-axis half at position_angle + 90 recedes; outflow if "
-                                "that half is the far side, inflow if it is the near side",
+            **{key: text for m in models for key, text in m.notes.items()},
             "thresholds": {"min_delta_bic": test.flows.min_delta_bic, "min_flow_amplitude": test.flows.min_amplitude,
                            "min_harmonic_amplitude": test.min_amplitude, "max_p_value": test.max_p_value},
         }
     }
     return columns, ring_flags, summary
+
+
+def harmonic_columns() -> dict:
+    """Ring-table columns of the harmonic decomposition: column name -> (key of :func:`.ring_harmonics`, unit)."""
+    out = {f"harmonic_{name}": (name, KM_S) for name in HARMONIC_NAMES}
+    out.update({f"harmonic_{name}_err": (f"{name}_err", KM_S) for name in HARMONIC_NAMES})
+    out.update({"noncircular_amplitude": ("noncircular_amplitude", KM_S),
+                "noncircular_in_plane": ("noncircular_in_plane", KM_S),
+                "noncircular_fraction": ("noncircular_fraction", None),
+                "harmonic_p_value": ("harmonic_p_value", None)})
+    return out
+
+
+def flow_columns() -> dict:
+    """Ring-table columns of the registered flow models, in table order: name -> unit (None: a pure
+    number; str: text)."""
+    models = flow_models()
+    out = {"flow_model": str}
+    out.update({f"v_t_{m.name}": KM_S for m in models})
+    for m in models:
+        out.update(m.table_columns())
+    out.update({f"delta_bic_{m.name}": None for m in models[1:]})
+    return out
+
+
+def _flow_columns(flows) -> dict:
+    return {name: ([str(v) for v in flows[name]] if unit is str else _with_unit(flows[name], unit))
+            for name, unit in flow_columns().items()}
+
+
+def _with_unit(values, unit):
+    values = np.asarray(values, float)
+    return values if unit is None else values * unit
+
+
+def _strong_harmonics(harm, rings, test) -> np.ndarray:
+    """Rings whose harmonic amplitude in the disc plane is significant (:class:`NonCircularTest`)."""
+    sin_i = np.sin(np.radians(np.asarray(rings["inclination"], float)))
+    variances = np.array([harm[f"{c}_err"] ** 2 for c in NON_CIRCULAR])
+    measured = np.isfinite(variances).sum(axis=0)
+    amp_err = np.sqrt(np.where(measured > 0, np.nansum(variances, axis=0) / np.maximum(measured, 1), np.nan)) / sin_i
+    return ((harm["noncircular_in_plane"] > np.maximum(test.min_amplitude, 3 * amp_err))
+            & (harm["harmonic_p_value"] < test.max_p_value))
 
 
 def asymmetry_summary(v_approaching, v_receding, usable) -> dict:

@@ -1,10 +1,15 @@
-"""The fixed vocabulary of ring flags (the ``flags`` column of the ring table).
+"""The vocabulary of ring flags (the ``flags`` column of the ring table).
 
 A flag never removes a ring: the ring stays in the table and the flag says why its numbers need
 care. ``flags`` holds the flag names of a ring joined by ``,`` (empty when none).
+
+The vocabulary is the fixed flags of the ring fit and the geometry below, the flag of each
+registered flow model (:mod:`.flow_models`, in registration order) and ``strong_harmonics``.
 """
 
-FLAGS = {
+__all__ = ["RING_FLAGS", "HARMONIC_FLAGS", "vocabulary", "join", "split"]
+
+RING_FLAGS = {
     "few_pixels": "fewer pixels than a few independent beams' worth: the ring's values rest on little data",
     "poor_coverage": "pixels cover less than half of the usable azimuth: geometry and speed are poorly tied down",
     "fit_failed": "the least-squares fit did not converge or had too few pixels; fitted values are blank",
@@ -15,19 +20,31 @@ FLAGS = {
                        "than the speed and 100 km/s): its values are not measurements and are not plotted",
     "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
     "warp": "beyond the warp onset: position angle and inclination follow the warp profile",
-    "radial_flow": "a circular + radial flow model fits the ring much better (BIC) with a significant v_radial",
-    "bisymmetric_flow": "a bisymmetric (m=2, bar-like) flow fits the ring much better (BIC) with a significant amplitude",
+}
+
+HARMONIC_FLAGS = {
     "strong_harmonics": "significant non-circular harmonics (orders 1-3) in the ring's velocities",
 }
+
+
+def vocabulary() -> dict:
+    """Every flag name with its one-line meaning, in the order flags are written."""
+    from .flow_models import flow_models
+
+    out = dict(RING_FLAGS)
+    out.update({m.flag: m.flag_meaning for m in flow_models() if m.flag is not None})
+    out.update(HARMONIC_FLAGS)
+    return out
 
 
 def join(names) -> str:
     """Flags in vocabulary order, comma-joined."""
     chosen = set(names)
-    unknown = chosen - FLAGS.keys()
+    known = vocabulary()
+    unknown = chosen - known.keys()
     if unknown:
         raise ValueError(f"unknown flag(s) {sorted(unknown)}")
-    return ",".join(name for name in FLAGS if name in chosen)
+    return ",".join(name for name in known if name in chosen)
 
 
 def split(text: str) -> list:

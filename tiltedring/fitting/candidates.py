@@ -14,19 +14,32 @@ selection reaches either end of its slice is looked at again through a wider one
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 
 from .geometry import centre_angle, disc_coordinates
+from .parameters import CENTRE, GEOMETRY
+from .parameters import Parameter as P
 
-__all__ = ["SortedPixels", "ring_members", "gather_rings"]
+__all__ = ["Pixels", "SortedPixels", "ring_members", "gather_rings"]
 
-_X, _Y, _PA, _INC = 0, 1, 3, 4  # columns of a ring table in PARAMETERS order
+_ENOUGH = max(GEOMETRY) + 1  # a ring table needs the columns up to the last geometry parameter
+
+
+class Pixels(NamedTuple):
+    """Valid pixels of a map: positions (0-based pixels), velocities and their errors (km/s)."""
+
+    x: np.ndarray
+    y: np.ndarray
+    v: np.ndarray
+    sigma: np.ndarray
 
 
 class SortedPixels:
     """Pixels ``(x, y, v, sigma)`` sorted by disc radius under the median geometry of ``rings``.
 
-    ``rings``: (n_rings, >= 5) parameters in :data:`.kinematics.PARAMETERS` order (centre in
+    ``rings``: (n_rings, >= 5) parameters in :class:`.parameters.Parameter` order (centre in
     pixels, angles in deg). ``pixels``: the sorted arrays; ``order``: the sorting permutation;
     ``radius``: the sorted radii; ``margin``: twice the largest step in that radius between
     neighbouring pixels (a ring's pixels closer than this to a slice's end may continue beyond it).
@@ -36,19 +49,22 @@ class SortedPixels:
         rings = np.asarray(rings, float)
         self.sky_jacobian = np.asarray(sky_jacobian, float)
         self.inner, self.outer = np.asarray(inner, float), np.asarray(outer, float)
-        ref = np.nanmedian(rings[:, :5], axis=0)
-        ref[_PA] = centre_angle(rings[:, _PA], rings[0, _PA]).mean()
-        radius, _, _ = disc_coordinates(pixels[0], pixels[1], ref[_X], ref[_Y], self.sky_jacobian, ref[_PA], ref[_INC])
+        pa, inc = rings[:, P.position_angle], rings[:, P.inclination]
+        ref = np.nanmedian(rings[:, :_ENOUGH], axis=0)
+        ref[P.position_angle] = centre_angle(pa, pa[0]).mean()
+        radius, _, _ = disc_coordinates(pixels[0], pixels[1], ref[P.x_center], ref[P.y_center], self.sky_jacobian,
+                                        ref[P.position_angle], ref[P.inclination])
         self.order = np.argsort(radius)
         self.radius = radius[self.order]
-        self.pixels = tuple(np.ascontiguousarray(np.asarray(a)[self.order]) for a in pixels)
-        d_pa = np.radians(np.abs(centre_angle(rings[:, _PA], ref[_PA]) - ref[_PA]))
-        cos_ref, cos_k = np.cos(np.radians(ref[_INC])), np.cos(np.radians(rings[:, _INC]))
+        self.pixels = Pixels(*(np.ascontiguousarray(np.asarray(a)[self.order]) for a in pixels))
+        d_pa = np.radians(np.abs(centre_angle(pa, ref[P.position_angle]) - ref[P.position_angle]))
+        cos_ref, cos_k = np.cos(np.radians(ref[P.inclination])), np.cos(np.radians(inc))
         self._stretch = np.maximum(cos_ref, cos_k) / np.maximum(np.minimum(cos_ref, cos_k), 1e-3)
-        self._shift = np.hypot(*(self.sky_jacobian @ (rings[:, [_X, _Y]] - ref[[_X, _Y]]).T))
+        centre = list(CENTRE)
+        self._shift = np.hypot(*(self.sky_jacobian @ (rings[:, centre] - ref[centre]).T))
         self._grow = 2.0 * d_pa + (self._stretch - 1.0)
         pixel = np.max(np.hypot(self.sky_jacobian[0], self.sky_jacobian[1]))  # arcsec per pixel step, the worse axis
-        self.margin = 2.0 * pixel / max(np.cos(np.radians(ref[_INC])), 1e-3)
+        self.margin = 2.0 * pixel / max(np.cos(np.radians(ref[P.inclination])), 1e-3)
 
     def bounds(self, wander: float) -> np.ndarray:
         """(n_rings, 2) slice bounds into the sorted pixels (module docstring)."""
@@ -71,8 +87,10 @@ def ring_members(sorted_pixels: SortedPixels, rings) -> list:
     out = []
     for k, (lo, hi) in enumerate(sorted_pixels.bounds(0.02)):
         while True:
-            radius, cos_t, sin_t = disc_coordinates(x[lo:hi], y[lo:hi], rings[k, _X], rings[k, _Y],
-                                                    sorted_pixels.sky_jacobian, rings[k, _PA], rings[k, _INC])
+            ring = rings[k]
+            radius, cos_t, sin_t = disc_coordinates(x[lo:hi], y[lo:hi], ring[P.x_center], ring[P.y_center],
+                                                    sorted_pixels.sky_jacobian, ring[P.position_angle],
+                                                    ring[P.inclination])
             inside = np.flatnonzero((radius >= sorted_pixels.inner[k]) & (radius < sorted_pixels.outer[k]))
             r_ref, margin = sorted_pixels.radius, sorted_pixels.margin
             at_edge = len(inside) and ((lo > 0 and r_ref[lo + inside[0]] - r_ref[lo] < margin)
@@ -91,9 +109,9 @@ def gather_rings(pixels, sky_jacobian, rings: dict, inner, outer) -> list:
     ``pixels`` = (x, y, v, sigma); ``rings`` holds per-ring ``x_center``, ``y_center``,
     ``position_angle`` and ``inclination``.
     """
-    table = np.zeros((len(inner), 5))
-    for column, name in ((_X, "x_center"), (_Y, "y_center"), (_PA, "position_angle"), (_INC, "inclination")):
-        table[:, column] = np.asarray(rings[name], float)
+    table = np.zeros((len(inner), _ENOUGH))
+    for member in GEOMETRY:
+        table[:, member] = np.asarray(rings[member.name], float)
     ordered = SortedPixels(pixels, sky_jacobian, table, inner, outer)
     v, sigma = ordered.pixels[2], ordered.pixels[3]
     return [(cos_t, sin_t, v[at], sigma[at]) for at, cos_t, sin_t in ring_members(ordered, table)]

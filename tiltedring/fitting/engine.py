@@ -24,7 +24,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "fit_rings", "AZIMUTH_WEIGHTS", "HALVES"]
+from .parameters import COUNT
+
+__all__ = ["RingFitOptions", "RingSolution", "fit_ring", "fit_rings", "fit_settings", "AZIMUTH_WEIGHTS", "HALVES"]
 
 AZIMUTH_WEIGHTS = {"none": 0, "abs-cos": 1, "cos-squared": 2}  # name -> power p of |cos theta|^p
 HALVES = ("whole", "approaching", "receding")
@@ -71,8 +73,18 @@ class RingSolution:
     chi2_reduced: float
     rms: float
     converged: bool
-    free: np.ndarray = field(default_factory=lambda: np.zeros(7, bool))
+    free: np.ndarray = field(default_factory=lambda: np.zeros(COUNT, bool))
     truncated: bool = False  # the ring reached the edge of its candidate pixels (see :func:`fit_rings`)
+
+
+def fit_settings(options: RingFitOptions, free=None, min_pixels: int = 0, pixels_per_beam: float = 1.0):
+    """The compiled fit's :class:`.ring_solver.FitSettings` for ``options`` and the ``free`` parameter mask."""
+    from .ring_solver import FitSettings
+
+    free = np.zeros(COUNT, bool) if free is None else np.ascontiguousarray(free, bool)
+    return FitSettings(free, AZIMUTH_WEIGHTS[options.azimuth_weight], float(np.sin(np.radians(options.minor_axis_gap))),
+                       HALVES.index(options.half), float(options.clip or 0.0), int(options.max_iterations),
+                       int(options.geometry_updates), int(min_pixels), float(pixels_per_beam))
 
 
 def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, options=RingFitOptions(),
@@ -86,31 +98,29 @@ def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, 
     ring edges (arcsec). Rings are shared among ``threads`` threads (default: the machine's cores,
     at most 4); the compiled fit releases the interpreter lock. Returns a list of :class:`RingSolution`.
     """
-    from .ring_solver import fit_ring_list
+    from .ring_solver import PixelSet, RingOutputs, RingTasks, fit_ring_list
     from .threads import run_parts, thread_count
 
-    arrays = [np.ascontiguousarray(a, float) for a in (x, y, v, sigma)]
+    x, y, v, sigma = (np.ascontiguousarray(a, float) for a in (x, y, v, sigma))
     bounds = np.asarray(bounds, np.int64).reshape(-1, 2)
     m = len(bounds)
-    starts = np.ascontiguousarray(np.broadcast_to(np.asarray(starts, float), (m, 7)))
-    free = np.asarray(free, bool)
-    params, errors, stats = np.empty((m, 7)), np.empty((m, 7)), np.empty((m, 6))
+    order_radius = np.zeros(len(x)) if order_radius is None else np.ascontiguousarray(order_radius, float)
+    pixels = PixelSet(x, y, v, sigma, order_radius, float(margin), np.ascontiguousarray(sky_jacobian, float))
+    column = lambda a: np.ascontiguousarray(np.broadcast_to(a, m), float)  # noqa: E731
+    tasks = RingTasks(np.ascontiguousarray(bounds[:, 0]), np.ascontiguousarray(bounds[:, 1]),
+                      np.ascontiguousarray(np.broadcast_to(np.asarray(starts, float), (m, COUNT))), column(inner),
+                      column(outer))
+    settings = fit_settings(options, free, min_pixels, pixels_per_beam)
+    out = RingOutputs(np.empty((m, COUNT)), np.empty((m, COUNT)), np.zeros(m, np.int64), np.zeros(m), np.zeros(m),
+                      np.zeros(m), np.zeros(m, bool), np.zeros(m, bool))
     # the largest rings first, dealt out in turn, so the threads finish together
     order = np.argsort(bounds[:, 0] - bounds[:, 1], kind="stable")
     threads = min(threads or thread_count(), max(m, 1))
-    order_radius = np.zeros(len(arrays[0])) if order_radius is None else np.ascontiguousarray(order_radius, float)
-    shared = (*arrays, order_radius, float(margin), np.ascontiguousarray(bounds[:, 0]),
-              np.ascontiguousarray(bounds[:, 1]), starts, free,
-              np.ascontiguousarray(sky_jacobian, float), np.ascontiguousarray(np.broadcast_to(inner, m), float),
-              np.ascontiguousarray(np.broadcast_to(outer, m), float), AZIMUTH_WEIGHTS[options.azimuth_weight],
-              float(np.sin(np.radians(options.minor_axis_gap))), HALVES.index(options.half), float(options.clip or 0.0),
-              options.max_iterations, options.geometry_updates, int(min_pixels), float(pixels_per_beam),
-              params, errors, stats)
-
     parts = [np.ascontiguousarray(order[t::threads]) for t in range(threads)]
-    run_parts(lambda part: fit_ring_list(part, *shared), parts, threads)
-    return [RingSolution(params[k], errors[k], int(stats[k, 0]), float(stats[k, 1]), float(stats[k, 2]),
-                         float(stats[k, 3]), bool(stats[k, 4]), free.copy(), bool(stats[k, 5])) for k in range(m)]
+    run_parts(lambda part: fit_ring_list(part, pixels, tasks, settings, out), parts, threads)
+    return [RingSolution(out.params[k], out.errors[k], int(out.n_pixels[k]), float(out.coverage[k]),
+                         float(out.chi2_reduced[k]), float(out.rms[k]), bool(out.converged[k]), settings.free.copy(),
+                         bool(out.truncated[k])) for k in range(m)]
 
 
 def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=RingFitOptions(),
@@ -118,7 +128,7 @@ def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=Ri
     """Fit one ring spanning disc radii ``[inner, outer)`` arcsec.
 
     ``x, y, v, sigma``: coordinates, velocities and errors (km/s) of all candidate pixels.
-    ``start``: the seven parameters in :data:`.kinematics.PARAMETERS` order; ``free``: a boolean
+    ``start``: the seven parameters in :class:`.parameters.Parameter` order; ``free``: a boolean
     mask of those to fit. A ring with fewer than ``max(min_pixels, 2 * n_free)`` pixels is
     returned unfitted (``converged`` False, parameters at ``start``).
     """

@@ -18,18 +18,20 @@ from scipy.optimize import least_squares
 
 from ..io.maps import VelocityMap
 from .geometry import disc_coordinates
+from .parameters import GuessParameter as Q
 
 __all__ = ["first_guess", "FIRST_GUESS_PARAMETERS"]
 
-FIRST_GUESS_PARAMETERS = ("x_center", "y_center", "v_systemic", "position_angle", "inclination", "v_flat", "r_turn")
+FIRST_GUESS_PARAMETERS = tuple(q.name for q in Q)
 _MAX_PIXELS = 20000
 _GRID_PIXELS = 5000
 
 
 def _arctan_model(q, x, y, jac):
-    xc, yc, vsys, pa, inc, vflat, rturn = q
-    radius, cos_t, _ = disc_coordinates(x, y, xc, yc, jac, pa, inc)
-    return vsys + np.sin(np.radians(inc)) * vflat * (2 / np.pi) * np.arctan(radius / abs(rturn)) * cos_t
+    inc = q[Q.inclination]
+    radius, cos_t, _ = disc_coordinates(x, y, q[Q.x_center], q[Q.y_center], jac, q[Q.position_angle], inc)
+    return q[Q.v_systemic] + np.sin(np.radians(inc)) * q[Q.v_flat] * (2 / np.pi) * np.arctan(
+        radius / abs(q[Q.r_turn])) * cos_t
 
 
 def _moments(vmap: VelocityMap, x, y, v):
@@ -60,8 +62,11 @@ def _fit_arctan(q0, free, x, y, v, sigma, jac, scale, pixel_scale):
         return (v - _arctan_model(q, x, y, jac)) / sigma
 
     # v_flat >= 0 picks the receding side; with the position angle held, the sign is left to the data
-    lower = np.array([-np.inf, -np.inf, -np.inf, -np.inf, 5.0, 0.0 if free[3] else -np.inf, 0.1 * pixel_scale])[free]
-    upper = np.array([np.inf, np.inf, np.inf, np.inf, 85.0, np.inf, np.inf])[free]
+    lower, upper = np.full(len(Q), -np.inf), np.full(len(Q), np.inf)
+    lower[Q.inclination], upper[Q.inclination] = 5.0, 85.0
+    lower[Q.v_flat] = 0.0 if free[Q.position_angle] else -np.inf
+    lower[Q.r_turn] = 0.1 * pixel_scale
+    lower, upper = lower[free], upper[free]
     start = np.clip(q0[free], lower + 1e-9, upper - 1e-9)
     sol = least_squares(residual, start, bounds=(lower, upper), loss="soft_l1", f_scale=scale / np.median(sigma),
                         x_scale="jac", max_nfev=400)
@@ -92,25 +97,26 @@ def first_guess(vmap: VelocityMap, initial: dict | None = None, fixed=(), seed: 
     fixed = set(fixed)
     free = np.array([name not in fixed for name in FIRST_GUESS_PARAMETERS])
     if "v_rotation" in fixed:
-        free[5] = False
+        free[Q.v_flat] = False
     scale = float(np.maximum(np.median(np.abs(v - mom["v_systemic"])), 1.0))
     few = slice(None, None, max(1, len(v) // _GRID_PIXELS))  # the draw is random, so every k-th is too
     inclinations = [initial["inclination"]] if "inclination" in initial else [30.0, 50.0, 70.0]
     best = None
     for inc in inclinations:
         vflat = initial.get("v_rotation", mom["half_range"] / max(np.sin(np.radians(inc)), 0.2))
-        q0 = np.array([base["x_center"], base["y_center"], base["v_systemic"], base["position_angle"], inc,
-                       max(vflat, 5.0), max(0.2 * mom["extent"], 2 * vmap.pixel_scale)])
+        r_turn = max(0.2 * mom["extent"], 2 * vmap.pixel_scale)
+        start = dict(base, inclination=inc, v_flat=max(vflat, 5.0), r_turn=r_turn)
+        q0 = np.array([start[name] for name in FIRST_GUESS_PARAMETERS])
         q, cost = _fit_arctan(q0, free, x[few], y[few], v[few], sigma[few], vmap.sky_jacobian, scale, vmap.pixel_scale)
         if best is None or cost < best[1]:
             best = (q, cost)
     q = best[0]
     if len(v[few]) < len(v):
         q, _ = _fit_arctan(q, free, x, y, v, sigma, vmap.sky_jacobian, scale, vmap.pixel_scale)
-    if q[5] < 0 and free[3]:
-        q[3] += 180.0
-        q[5] = -q[5]
-    q[3] %= 360.0
+    if q[Q.v_flat] < 0 and free[Q.position_angle]:
+        q[Q.position_angle] += 180.0
+        q[Q.v_flat] = -q[Q.v_flat]
+    q[Q.position_angle] %= 360.0
     out = {name: float(val) for name, val in zip(FIRST_GUESS_PARAMETERS, q)}
     resid = v - _arctan_model(q, x, y, vmap.sky_jacobian)
     out["rms"] = float(np.sqrt(np.mean(resid**2)))

@@ -17,10 +17,13 @@ radians only inside the kernels.
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 from numba import njit
 
-__all__ = ["centre_angle", "disc_coordinates", "sky_from_disc", "assign_to_rings", "wrap_angle"]
+__all__ = ["centre_angle", "disc_coordinates", "sky_from_disc", "assign_to_rings", "wrap_angle", "RingPlanes",
+           "ring_planes"]
 
 DEG = np.pi / 180.0
 
@@ -88,11 +91,15 @@ def sky_from_disc(radius, azimuth, x_center, y_center, sky_jacobian, position_an
     return x_center + dx.reshape(shape), y_center + dy.reshape(shape)
 
 
-@njit(cache=True, inline="always")
-def _offset(x, y, jac, radius, xc, yc, sp, cp, ci):
-    """Disc radius of a pixel under one ring's geometry, minus that ring's radius."""
-    xd, yd = project(x, y, xc, yc, jac, sp, cp, ci)
-    return np.sqrt(xd * xd + yd * yd) - radius
+class RingPlanes(NamedTuple):
+    """Per-ring radius (arcsec), centre (pixels) and orientation as the pixel placement uses them."""
+
+    radius: np.ndarray
+    x_center: np.ndarray
+    y_center: np.ndarray
+    sin_pa: np.ndarray
+    cos_pa: np.ndarray
+    cos_inc: np.ndarray
 
 
 @njit(cache=True)
@@ -101,18 +108,33 @@ def ring_trig(pa, inc):
     return np.sin(pa * DEG), np.cos(pa * DEG), np.cos(inc * DEG)
 
 
+@njit(cache=True)
+def ring_planes(radius, x_center, y_center, position_angle, inclination):
+    """:class:`RingPlanes` of rings given by radius, centre and angles (deg)."""
+    sp, cp, ci = ring_trig(position_angle, inclination)
+    return RingPlanes(radius, x_center, y_center, sp, cp, ci)
+
+
 @njit(cache=True, inline="always")
-def place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer):
+def _offset(x, y, jac, planes, j, radius):
+    """Disc radius of a pixel under ring ``j``'s geometry, minus ``radius``."""
+    xd, yd = project(x, y, planes.x_center[j], planes.y_center[j], jac, planes.sin_pa[j], planes.cos_pa[j],
+                     planes.cos_inc[j])
+    return np.sqrt(xd * xd + yd * yd) - radius
+
+
+@njit(cache=True, inline="always")
+def place_pixel(x, y, jac, planes, r_outer):
     """(fractional ring index, disc radius) of one pixel; (-1, NaN) beyond ``r_outer`` (see :func:`assign_to_rings`)."""
+    radii = planes.radius
     m = radii.shape[0]
-    mid = m // 2
     # start from the ring the middle ring's geometry suggests, then walk to the sign change of f
-    start = _offset(x, y, jac, 0.0, xc[mid], yc[mid], sp[mid], cp[mid], ci[mid])
+    start = _offset(x, y, jac, planes, m // 2, 0.0)
     j = min(max(np.searchsorted(radii, start), 0), m - 1)
-    fj = _offset(x, y, jac, radii[j], xc[j], yc[j], sp[j], cp[j], ci[j])
+    fj = _offset(x, y, jac, planes, j, radii[j])
     if fj >= 0.0:
         while j + 1 < m:
-            f_next = _offset(x, y, jac, radii[j + 1], xc[j + 1], yc[j + 1], sp[j + 1], cp[j + 1], ci[j + 1])
+            f_next = _offset(x, y, jac, planes, j + 1, radii[j + 1])
             if f_next < 0.0:
                 w = fj / (fj - f_next)
                 return j + w, radii[j] + w * (radii[j + 1] - radii[j])
@@ -122,7 +144,7 @@ def place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer):
             return m - 1.0, fj + radii[m - 1]
         return -1.0, np.nan
     while j > 0:
-        f_prev = _offset(x, y, jac, radii[j - 1], xc[j - 1], yc[j - 1], sp[j - 1], cp[j - 1], ci[j - 1])
+        f_prev = _offset(x, y, jac, planes, j - 1, radii[j - 1])
         if f_prev >= 0.0:
             w = f_prev / (f_prev - fj)
             return j - 1 + w, radii[j - 1] + w * (radii[j] - radii[j - 1])
@@ -132,13 +154,12 @@ def place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer):
 
 
 @njit(cache=True)
-def _assign(x, y, jac, radii, xc, yc, pa, inc, r_outer):
+def _assign(x, y, jac, planes, r_outer):
     n = x.shape[0]
     position = np.empty(n)
     radius_out = np.empty(n)
-    sp, cp, ci = ring_trig(pa, inc)
     for k in range(n):
-        position[k], radius_out[k] = place_pixel(x[k], y[k], jac, radii, xc, yc, sp, cp, ci, r_outer)
+        position[k], radius_out[k] = place_pixel(x[k], y[k], jac, planes, r_outer)
     return position, radius_out
 
 
@@ -155,5 +176,6 @@ def assign_to_rings(x, y, sky_jacobian, radii, x_center, y_center, position_angl
     to ``r_outer``. Returns (fractional ring index, -1 where unassigned; disc radius in arcsec).
     """
     as_arr = lambda a: np.ascontiguousarray(a, dtype=float).ravel()  # noqa: E731
-    return _assign(as_arr(x), as_arr(y), np.ascontiguousarray(sky_jacobian, float), as_arr(radii),
-                   as_arr(x_center), as_arr(y_center), as_arr(position_angle), as_arr(inclination), float(r_outer))
+    planes = ring_planes(as_arr(radii), as_arr(x_center), as_arr(y_center), as_arr(position_angle),
+                         as_arr(inclination))
+    return _assign(as_arr(x), as_arr(y), np.ascontiguousarray(sky_jacobian, float), planes, float(r_outer))

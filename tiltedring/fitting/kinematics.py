@@ -10,29 +10,29 @@ phi + 90 recedes. Whether that is outflow or inflow depends on which side is nea
 which a velocity map alone does not tell (use dust lanes or spiral-arm winding).
 
 The kernel :func:`ring_model` also returns the analytic Jacobian of v_los with respect to the
-seven ring parameters, in the order of :data:`PARAMETERS` (angles per degree).
+seven ring parameters, in the order of :class:`.parameters.Parameter` (angles per degree).
 """
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import numpy as np
 from numba import njit
 
-from .geometry import DEG, place_pixel, project, ring_trig
+from .geometry import DEG, place_pixel, project, ring_planes
+from .parameters import COUNT, PARAMETERS, UNITS, ParameterColumns
+from .parameters import Parameter as P
 from .threads import run_parts, thread_count
 
-__all__ = ["PARAMETERS", "ring_model", "line_of_sight", "model_field"]
-
-PARAMETERS = ("x_center", "y_center", "v_systemic", "position_angle", "inclination", "v_rotation", "v_radial")
-UNITS = {"x_center": "pix", "y_center": "pix", "v_systemic": "km/s", "position_angle": "deg",
-         "inclination": "deg", "v_rotation": "km/s", "v_radial": "km/s"}
+__all__ = ["PARAMETERS", "UNITS", "ring_model", "line_of_sight", "model_field"]
 
 
 @njit(cache=True, inline="always")
 def ring_constants(p, jac):
     """Per-ring constants of :func:`pixel_velocity`: sines and cosines, and d(x_m, y_m)/d(centre)."""
-    sp, cp = np.sin(p[3] * DEG), np.cos(p[3] * DEG)
-    si, ci = np.sin(p[4] * DEG), np.cos(p[4] * DEG)
+    sp, cp = np.sin(p[P.position_angle] * DEG), np.cos(p[P.position_angle] * DEG)
+    si, ci = np.sin(p[P.inclination] * DEG), np.cos(p[P.inclination] * DEG)
     # the centre moves the pixel's sky offset by -J[:, col]
     return (sp, cp, si, ci, -(jac[0, 0] * sp + jac[1, 0] * cp), -(jac[0, 0] * cp - jac[1, 0] * sp),
             -(jac[0, 1] * sp + jac[1, 1] * cp), -(jac[0, 1] * cp - jac[1, 1] * sp))
@@ -42,14 +42,14 @@ def ring_constants(p, jac):
 def pixel_velocity(x, y, p, jac, const, deriv):
     """v_los at one pixel for ring parameters ``p``; writes d v_los / d p (angles per degree) to ``deriv``."""
     sp, cp, si, ci, dxm_dxc, dym_dxc, dxm_dyc, dym_dyc = const
-    vrot, vrad = p[5], p[6]
-    xd, yd = project(x, y, p[0], p[1], jac, sp, cp, ci)
+    vrot, vrad = p[P.v_rotation], p[P.v_radial]
+    xd, yd = project(x, y, p[P.x_center], p[P.y_center], jac, sp, cp, ci)
     r = np.sqrt(xd * xd + yd * yd)
     if r <= 0.0:
-        for j in range(7):
+        for j in range(COUNT):
             deriv[j] = 0.0
-        deriv[2] = 1.0
-        return p[2]
+        deriv[P.v_systemic] = 1.0
+        return p[P.v_systemic]
     c = xd / r
     s = yd / r
     circ = vrot * c + vrad * s
@@ -58,19 +58,19 @@ def pixel_velocity(x, y, p, jac, const, deriv):
     ds_dxd, ds_dyd = -c * s / r, c * c / r
     dv_dc, dv_ds = si * vrot, si * vrad
     dxd, dyd = dxm_dxc, dym_dxc / ci
-    deriv[0] = dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd)
+    deriv[P.x_center] = dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd)
     dxd, dyd = dxm_dyc, dym_dyc / ci
-    deriv[1] = dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd)
-    deriv[2] = 1.0
+    deriv[P.y_center] = dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd)
+    deriv[P.v_systemic] = 1.0
     # position angle: d x_m/d phi = y_m, d y_m/d phi = -x_m
     dxd, dyd = yd * ci, -xd / ci
-    deriv[3] = DEG * (dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd))
+    deriv[P.position_angle] = DEG * (dv_dc * (dc_dxd * dxd + dc_dyd * dyd) + dv_ds * (ds_dxd * dxd + ds_dyd * dyd))
     # inclination: d y_d/d i = y_d tan i
     dyd = yd * si / ci
-    deriv[4] = DEG * (ci * circ + dv_dc * dc_dyd * dyd + dv_ds * ds_dyd * dyd)
-    deriv[5] = si * c
-    deriv[6] = si * s
-    return p[2] + si * circ
+    deriv[P.inclination] = DEG * (ci * circ + dv_dc * dc_dyd * dyd + dv_ds * ds_dyd * dyd)
+    deriv[P.v_rotation] = si * c
+    deriv[P.v_radial] = si * s
+    return p[P.v_systemic] + si * circ
 
 
 @njit(cache=True)
@@ -78,7 +78,7 @@ def _ring_model(x, y, p, jac):
     """v_los and d v_los / d p for one ring's parameters ``p`` at pixels (x, y)."""
     n = x.shape[0]
     model = np.empty(n)
-    deriv = np.zeros((n, 7))
+    deriv = np.zeros((n, COUNT))
     const = ring_constants(p, jac)
     for k in range(n):
         model[k] = pixel_velocity(x[k], y[k], p, jac, const, deriv[k])
@@ -86,24 +86,27 @@ def _ring_model(x, y, p, jac):
 
 
 def ring_model(x, y, params, sky_jacobian):
-    """Line-of-sight velocity (km/s) and its Jacobian (n, 7) for one ring's parameters."""
+    """Line-of-sight velocity (km/s) and its Jacobian (n, 7; columns in :class:`.parameters.Parameter` order)
+    for one ring's parameters."""
     return _ring_model(np.ascontiguousarray(x, float), np.ascontiguousarray(y, float),
                        np.ascontiguousarray(params, float), np.ascontiguousarray(sky_jacobian, float))
 
 
 @njit(cache=True)
-def _line_of_sight(x, y, jac, xc, yc, vsys, pa, inc, vrot, vrad):
+def _line_of_sight(x, y, jac, pixel_params):
+    """v_los at each pixel for its own parameters (a :class:`.parameters.ParameterColumns` of per-pixel arrays)."""
+    q = pixel_params
     n = x.shape[0]
     out = np.empty(n)
     for k in range(n):
-        sp, cp = np.sin(pa[k] * DEG), np.cos(pa[k] * DEG)
-        si, ci = np.sin(inc[k] * DEG), np.cos(inc[k] * DEG)
-        xd, yd = project(x[k], y[k], xc[k], yc[k], jac, sp, cp, ci)
+        sp, cp = np.sin(q.position_angle[k] * DEG), np.cos(q.position_angle[k] * DEG)
+        si, ci = np.sin(q.inclination[k] * DEG), np.cos(q.inclination[k] * DEG)
+        xd, yd = project(x[k], y[k], q.x_center[k], q.y_center[k], jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         if r > 0.0:
-            out[k] = vsys[k] + si * (vrot[k] * xd / r + vrad[k] * yd / r)
+            out[k] = q.v_systemic[k] + si * (q.v_rotation[k] * xd / r + q.v_radial[k] * yd / r)
         else:
-            out[k] = vsys[k]
+            out[k] = q.v_systemic[k]
     return out
 
 
@@ -111,23 +114,39 @@ def line_of_sight(x, y, sky_jacobian, **params):
     """v_los at pixels for per-pixel (or scalar) parameters named as in :data:`PARAMETERS`."""
     x = np.ascontiguousarray(x, float).ravel()
     y = np.ascontiguousarray(y, float).ravel()
-    arrays = [np.ascontiguousarray(np.broadcast_to(np.asarray(params.get(name, 0.0), float), x.shape))
-              for name in PARAMETERS]
-    return _line_of_sight(x, y, np.ascontiguousarray(sky_jacobian, float), *arrays)
+    columns = ParameterColumns(*(np.ascontiguousarray(np.broadcast_to(np.asarray(params.get(name, 0.0), float),
+                                                                      x.shape)) for name in PARAMETERS))
+    return _line_of_sight(x, y, np.ascontiguousarray(sky_jacobian, float), columns)
+
+
+class ModelGrid(NamedTuple):
+    """Which pixels of a map :func:`_model_pixels` evaluates, and how the map sits on the sky.
+
+    ``flat``: flat indices into rows of ``nx`` pixels (empty: every pixel in order); ``jac``: the sky
+    Jacobian; ``r_outer``: the disc radius (arcsec) beyond which pixels stay blank.
+    """
+
+    flat: np.ndarray
+    nx: int
+    jac: np.ndarray
+    r_outer: float
 
 
 @njit(cache=True, nogil=True)
-def _model_pixels(flat, nx, jac, radii, xc, yc, vsys, pa, inc, vrot, vrad, r_outer, out, lo, hi):
-    """v_los of pixels ``flat[lo:hi]`` (flat indices into rows of ``nx``; every pixel when ``flat`` is
-    empty) on their rings (:func:`.geometry.place_pixel`), parameters interpolated between rings; NaN
-    beyond ``r_outer``."""
-    last = radii.shape[0] - 1
-    sp, cp, ci = ring_trig(pa, inc)
+def _model_pixels(grid, planes, rings, out, lo, hi):
+    """v_los of pixels ``lo:hi`` of ``grid`` on their rings (:func:`.geometry.place_pixel` with ``planes``),
+    the ring parameters ``rings`` (:class:`.parameters.ParameterColumns`) interpolated between rings; NaN
+    beyond ``grid.r_outer``."""
+    flat, nx, jac = grid.flat, grid.nx, grid.jac
+    xc, yc, vsys, pa, inc = rings.x_center, rings.y_center, rings.v_systemic, rings.position_angle, rings.inclination
+    vrot, vrad = rings.v_rotation, rings.v_radial
+    sp, cp, ci = planes.sin_pa, planes.cos_pa, planes.cos_inc
+    last = planes.radius.shape[0] - 1
     si = np.sin(inc * DEG)
     for k in range(lo, hi):
         at = flat[k] if flat.shape[0] else k  # no index list: every pixel of the map in order
         x, y = float(at % nx), float(at // nx)
-        pos, _ = place_pixel(x, y, jac, radii, xc, yc, sp, cp, ci, r_outer)
+        pos, _ = place_pixel(x, y, jac, planes, grid.r_outer)
         if pos < 0.0:
             out[k] = np.nan
             continue
@@ -163,11 +182,13 @@ def model_field(shape, sky_jacobian, rings: dict, r_outer: float, mask=None):
              if k in PARAMETERS or k == "radius"}
     table.setdefault("v_radial", np.zeros_like(table["radius"]))
     table["position_angle"] = np.degrees(np.unwrap(np.radians(table["position_angle"])))  # no jump at 0/360
+    columns = ParameterColumns(*(table[name] for name in PARAMETERS))
+    planes = ring_planes(table["radius"], columns.x_center, columns.y_center, columns.position_angle,
+                         columns.inclination)
+    grid = ModelGrid(flat, nx, np.ascontiguousarray(sky_jacobian, float), float(r_outer))
     values = np.empty(count)
-    args = (flat, nx, np.ascontiguousarray(sky_jacobian, float), table["radius"],
-            *(table[name] for name in PARAMETERS), float(r_outer), values)
     edges = np.linspace(0, count, thread_count() + 1).astype(int)
-    run_parts(lambda part: _model_pixels(*args, *part), zip(edges[:-1], edges[1:]))
+    run_parts(lambda part: _model_pixels(grid, planes, columns, values, *part), zip(edges[:-1], edges[1:]))
     if mask is None:
         return values.reshape(shape)
     out = np.full(shape, np.nan)

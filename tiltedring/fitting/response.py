@@ -23,23 +23,22 @@ import numpy as np
 
 from .candidates import SortedPixels, ring_members
 from .geometry import centre_angle
-from .kinematics import PARAMETERS, ring_model
+from .kinematics import ring_model
+from .parameters import SPEEDS, Parameter
 
 __all__ = ["FitResponse"]
-
-_INDEX = {name: k for k, name in enumerate(PARAMETERS)}
 
 
 def _ring_designs(pixels, sky_jacobian, params, ok, inner, outer, options):
     """Yield, ring by ring, (ring, pixel indices, sqrt-weights, d v_los / d p) at ``params`` as the ring fit
     selects them (usable rings only; one ring's Jacobian in memory at a time)."""
-    from .engine import AZIMUTH_WEIGHTS, HALVES
+    from .engine import fit_settings
     from .ring_solver import angular_weights
 
     ordered = SortedPixels(pixels, sky_jacobian, params, inner, outer)
     sigma = ordered.pixels[3]
-    rule = (AZIMUTH_WEIGHTS[options.azimuth_weight], float(np.sin(np.radians(options.minor_axis_gap))),
-            HALVES.index(options.half))
+    settings = fit_settings(options)
+    rule = (settings.power, settings.sin_gap, settings.half)
     for k, (at, cos_t, _) in enumerate(ring_members(ordered, params)):
         if not ok[k]:
             continue
@@ -77,21 +76,22 @@ class FitResponse:
         if self.names:
             free_idx = list(np.flatnonzero(free_b))
             for name in self.names:
-                k = _INDEX[name]
-                values = params_b[:, k] if name != "position_angle" else centre_angle(params_b[:, k], reference_pa)
+                values = params_b[:, Parameter[name]]
+                if name == "position_angle":
+                    values = centre_angle(values, reference_pa)
                 self.base[name] = float(np.nansum(weights[name] * np.where(weights[name] > 0, values, 0.0)))
                 self.geometry_influence[name] = np.zeros(n_pix)
             for r, index, w_sqrt, deriv in _ring_designs(pixels, jac, params_b, ok_b, layout.inner, layout.outer,
                                                          options):
                 rows = _influence(deriv, w_sqrt, free_idx)
                 for name in self.names:
-                    self.geometry_influence[name][index] += weights[name][r] * rows[free_idx.index(_INDEX[name])]
+                    self.geometry_influence[name][index] += weights[name][r] * rows[free_idx.index(Parameter[name])]
         # stage final: speeds at the adopted geometry, and their coupling to it
         self.adopted = {name: float(adopted[name]) for name in self.names}
-        self.speed = np.where(ok_c, params_c[:, _INDEX["v_rotation"]], np.nan)
-        speeds = [k for k in np.flatnonzero(free_c) if k in (_INDEX["v_rotation"], _INDEX["v_radial"])]
-        row = speeds.index(_INDEX["v_rotation"])
-        geometry = [_INDEX[name] for name in self.names]
+        self.speed = np.where(ok_c, params_c[:, Parameter.v_rotation], np.nan)
+        speeds = [k for k in np.flatnonzero(free_c) if k in SPEEDS]
+        row = speeds.index(Parameter.v_rotation)
+        geometry = [Parameter[name] for name in self.names]
         index_parts, coef_parts, ring_parts = [], [], []
         self.coupling = np.zeros((n_rings, len(geometry)))
         for r, index, w_sqrt, deriv in _ring_designs(pixels, jac, params_c, ok_c, layout.inner, layout.outer, options):

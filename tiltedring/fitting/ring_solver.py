@@ -5,19 +5,95 @@ that threads can share the rings of a stage). Each ring reads a contiguous slice
 sorted by disc radius, so no pixel array is copied per ring. Normal equations are accumulated on
 the fly (J^T W J and J^T W r over the free parameters) instead of storing the (n, 7) Jacobian, and
 the damped system is solved by Cholesky decomposition.
+
+The entry point :func:`fit_ring_list` takes its inputs grouped: the pixels shared by every ring
+(:class:`PixelSet`), each ring's slice, start and edges (:class:`RingTasks`), how rings are
+fitted (:class:`FitSettings`), and the arrays the results are written to (:class:`RingOutputs`).
 """
 
 from __future__ import annotations
+
+from typing import NamedTuple
 
 import numpy as np
 from numba import njit
 
 from .geometry import project, ring_trig
 from .kinematics import pixel_velocity, ring_constants
+from .parameters import COUNT, GEOMETRY, LINEAR
+from .parameters import Parameter as P
 
 AZIMUTH_BINS = 36
 INC_BOUNDS = (1.0, 89.0)
-GEOMETRY = (0, 1, 3, 4)  # x_center, y_center, position_angle, inclination
+
+
+class PixelSet(NamedTuple):
+    """Pixels shared by every ring, sorted by ``order_radius`` (the disc radius of :mod:`.candidates`).
+
+    ``margin``: a ring's pixels this close (in ``order_radius``) to an end of its slice may continue beyond
+    it; ``jac``: the sky Jacobian (arcsec per pixel).
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    v: np.ndarray
+    sigma: np.ndarray
+    order_radius: np.ndarray
+    margin: float
+    jac: np.ndarray
+
+
+class RingTasks(NamedTuple):
+    """Per ring (one row each): its slice ``lo:hi`` of the pixels, starting parameters and edges (arcsec)."""
+
+    lo: np.ndarray
+    hi: np.ndarray
+    starts: np.ndarray
+    inner: np.ndarray
+    outer: np.ndarray
+
+
+class FitSettings(NamedTuple):
+    """How every ring is fitted (see :class:`.engine.RingFitOptions`).
+
+    ``free``: mask over the parameters; ``power``: of |cos theta| in the weight; ``sin_gap``: sine of the
+    minor-axis gap; ``half``: 0 whole, 1 approaching, 2 receding; ``clip``: robust sigmas (0: off).
+    """
+
+    free: np.ndarray
+    power: int
+    sin_gap: float
+    half: int
+    clip: float
+    max_iterations: int
+    geometry_updates: int
+    min_pixels: int
+    pixels_per_beam: float
+
+
+class RingOutputs(NamedTuple):
+    """Per ring results, written in place: parameters and errors (n_rings, 7) and the fit statistics.
+
+    ``truncated`` is True when the ring's pixels came within the margin of an end of its slice.
+    """
+
+    params: np.ndarray
+    errors: np.ndarray
+    n_pixels: np.ndarray
+    coverage: np.ndarray
+    chi2_reduced: np.ndarray
+    rms: np.ndarray
+    converged: np.ndarray
+    truncated: np.ndarray
+
+
+class Selection(NamedTuple):
+    """Buffers of one ring's selected pixels: positions in the pixel set, sqrt-weights and cos/sin theta."""
+
+    at: np.ndarray
+    w_sqrt: np.ndarray
+    cos_t: np.ndarray
+    sin_t: np.ndarray
 
 
 @njit(cache=True, nogil=True)
@@ -53,39 +129,40 @@ def cholesky_solve(a, b):
 
 @njit(cache=True, nogil=True)
 def _clamp(p):
-    p[4] = min(max(p[4], INC_BOUNDS[0]), INC_BOUNDS[1])
+    p[P.inclination] = min(max(p[P.inclination], INC_BOUNDS[0]), INC_BOUNDS[1])
 
 
 @njit(cache=True, nogil=True, inline="always")
-def angular_weight(c, sigma, power, sin_wedge, side):
-    """sqrt of a pixel's weight, |cos theta|^(power/2) / sigma, or -1 where the exclusion wedge about the
-    minor axis or the chosen side (0 both, 1 approaching: cos < 0, 2 receding: cos > 0) leaves it out."""
-    if abs(c) < sin_wedge or (side == 1 and not c < 0.0) or (side == 2 and not c > 0.0):
+def angular_weight(c, sigma, power, sin_gap, half):
+    """sqrt of a pixel's weight, |cos theta|^(power/2) / sigma, or -1 where the gap about the
+    minor axis or the chosen half (0 whole, 1 approaching: cos < 0, 2 receding: cos > 0) leaves it out."""
+    if abs(c) < sin_gap or (half == 1 and not c < 0.0) or (half == 2 and not c > 0.0):
         return -1.0
     return abs(c) ** (0.5 * power) / sigma
 
 
 @njit(cache=True)
-def angular_weights(cos_t, sigma, power, sin_wedge, side):
+def angular_weights(cos_t, sigma, power, sin_gap, half):
     """:func:`angular_weight` of each pixel."""
     out = np.empty(cos_t.shape[0])
     for j in range(cos_t.shape[0]):
-        out[j] = angular_weight(cos_t[j], sigma[j], power, sin_wedge, side)
+        out[j] = angular_weight(cos_t[j], sigma[j], power, sin_gap, half)
     return out
 
 
 @njit(cache=True, nogil=True)
-def _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, sel, w_sqrt, cos_t, sin_t):
-    """Pixels of slice [lo, hi) inside the ring at geometry ``p``; fills the buffers.
+def _select(pixels, lo, hi, p, inner, outer, settings, buf):
+    """Pixels of slice [lo, hi) inside the ring at geometry ``p``; fills the :class:`Selection` ``buf``.
 
     Returns (count, first, last): ``first``/``last`` are the lowest and highest slice positions
-    whose disc radius falls in the ring (wedge and side aside; -1 if none).
+    whose disc radius falls in the ring (gap and half aside; -1 if none).
     """
-    sp, cp, ci = ring_trig(p[3], p[4])
+    x, y, sigma, jac = pixels.x, pixels.y, pixels.sigma, pixels.jac
+    sp, cp, ci = ring_trig(p[P.position_angle], p[P.inclination])
     n = 0
     first, last = -1, -1
     for k in range(lo, hi):
-        xd, yd = project(x[k], y[k], p[0], p[1], jac, sp, cp, ci)
+        xd, yd = project(x[k], y[k], p[P.x_center], p[P.y_center], jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         if r < inner or r >= outer:
             continue
@@ -93,13 +170,13 @@ def _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, s
             first = k
         last = k
         c, s = (xd / r, yd / r) if r > 0.0 else (1.0, 0.0)
-        weight = angular_weight(c, sigma[k], power, sin_wedge, side)
+        weight = angular_weight(c, sigma[k], settings.power, settings.sin_gap, settings.half)
         if weight < 0.0:
             continue
-        sel[n] = k
-        w_sqrt[n] = weight
-        cos_t[n] = c
-        sin_t[n] = s
+        buf.at[n] = k
+        buf.w_sqrt[n] = weight
+        buf.cos_t[n] = c
+        buf.sin_t[n] = s
         n += 1
     return n, first, last
 
@@ -116,16 +193,17 @@ def _reaches_edge(order_radius, lo, hi, first, last, margin):
 
 
 @njit(cache=True, nogil=True)
-def normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac):
+def normal_equations(pixels, buf, n, p, fidx):
     """(chi^2, J^T W J, J^T W r) over the free parameters ``fidx`` for the ``n`` selected pixels."""
+    x, y, v, jac, at, w_sqrt = pixels.x, pixels.y, pixels.v, pixels.jac, buf.at, buf.w_sqrt
     nf = fidx.shape[0]
     h = np.zeros((nf, nf))
     g = np.zeros(nf)
-    d = np.empty(7)
+    d = np.empty(COUNT)
     const = ring_constants(p, jac)
     cost = 0.0
     for j in range(n):
-        k = sel[j]
+        k = at[j]
         w = w_sqrt[j]
         r = (v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)) * w
         cost += r * r
@@ -141,10 +219,10 @@ def normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac):
 
 
 @njit(cache=True, nogil=True)
-def _levenberg_marquardt(x, y, v, sel, n, w_sqrt, p, fidx, jac, max_iterations):
+def _levenberg_marquardt(pixels, buf, n, p, fidx, max_iterations):
     """Minimise chi^2 over p[fidx] from ``p``; returns (p, chi^2, J^T W J, converged)."""
     lam = 1e-3
-    cost, h, g = normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac)
+    cost, h, g = normal_equations(pixels, buf, n, p, fidx)
     nf = fidx.shape[0]
     converged = max_iterations == 0
     for _ in range(max_iterations):
@@ -162,7 +240,7 @@ def _levenberg_marquardt(x, y, v, sel, n, w_sqrt, p, fidx, jac, max_iterations):
             for a in range(nf):
                 trial[fidx[a]] += step[a]
             _clamp(trial)
-            c_new, h_new, g_new = normal_equations(x, y, v, sel, n, w_sqrt, trial, fidx, jac)
+            c_new, h_new, g_new = normal_equations(pixels, buf, n, trial, fidx)
             if np.isfinite(c_new) and c_new <= cost:
                 improved = True
                 # converged once chi^2 falls by less than a thousandth of the reduced chi^2
@@ -178,23 +256,30 @@ def _levenberg_marquardt(x, y, v, sel, n, w_sqrt, p, fidx, jac, max_iterations):
 
 
 @njit(cache=True, nogil=True)
-def _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, fidx, jac, max_iterations, clip):
+def _residuals(pixels, buf, n, p):
+    """v - v_los(p) at the ``n`` selected pixels (unweighted)."""
+    x, y, v, jac, at = pixels.x, pixels.y, pixels.v, pixels.jac, buf.at
+    d = np.empty(COUNT)
+    const = ring_constants(p, jac)
+    out = np.empty(n)
+    for j in range(n):
+        k = at[j]
+        out[j] = v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _fit_selected(pixels, buf, n, p, fidx, max_iterations, clip):
     """LM on the selection, with iterative clipping at ``clip`` robust sigmas (0: off).
 
     Clipped pixels are removed from the buffers in place. Returns (p, chi^2, J^T W J, converged, n).
     """
     rounds = 4 if clip > 0 else 1
-    d = np.empty(7)
     for _ in range(rounds):
-        p_new, cost, h, converged = _levenberg_marquardt(x, y, v, sel, n, w_sqrt, p.copy(), fidx, jac,
-                                                         max_iterations)
+        p_new, cost, h, converged = _levenberg_marquardt(pixels, buf, n, p.copy(), fidx, max_iterations)
         if clip <= 0:
             break
-        raw = np.empty(n)
-        const = ring_constants(p_new, jac)
-        for j in range(n):
-            k = sel[j]
-            raw[j] = v[k] - pixel_velocity(x[k], y[k], p_new, jac, const, d)
+        raw = _residuals(pixels, buf, n, p_new)
         mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
         limit = clip * max(mad, 1e-9)
         kept = 0
@@ -205,7 +290,9 @@ def _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, fidx, jac, max_itera
         m = 0
         for j in range(n):
             if abs(raw[j]) <= limit:
-                sel[m], w_sqrt[m], cos_t[m], sin_t[m] = sel[j], w_sqrt[j], cos_t[j], sin_t[j]
+                for column in (buf.w_sqrt, buf.cos_t, buf.sin_t):
+                    column[m] = column[j]
+                buf.at[m] = buf.at[j]
                 m += 1
         n = m
     return p_new, cost, h, converged, n
@@ -228,77 +315,83 @@ def _scaled_errors(h, cost, n, pixels_per_beam):
 
 
 @njit(cache=True, nogil=True)
-def _coverage(cos_t, sin_t, n, sin_wedge, side):
-    """Fraction of the usable azimuth (outside the wedge, on the chosen side) holding pixels."""
+def _coverage(buf, n, settings):
+    """Fraction of the usable azimuth (outside the gap, on the chosen half) holding pixels."""
     hit = np.zeros(AZIMUTH_BINS, np.bool_)
     for j in range(n):
-        theta = np.arctan2(sin_t[j], cos_t[j]) % (2 * np.pi)
+        theta = np.arctan2(buf.sin_t[j], buf.cos_t[j]) % (2 * np.pi)
         hit[min(int(theta / (2 * np.pi) * AZIMUTH_BINS), AZIMUTH_BINS - 1)] = True
     usable = 0
     covered = 0
     for b in range(AZIMUTH_BINS):
-        if angular_weight(np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS), 1.0, 0, sin_wedge, side) >= 0.0:
+        if angular_weight(np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS), 1.0, 0, settings.sin_gap, settings.half) >= 0.0:
             usable += 1
             covered += hit[b]
     return covered / max(usable, 1)
 
 
-@njit(cache=True, nogil=True)
-def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac, inner, outer, power, sin_wedge, side,
-                 clip, max_iterations, geometry_updates, min_pixels, pixels_per_beam, params, errors, stats):
-    """Fit one ring from the pixels in slice [lo, hi) (see :mod:`.engine`); writes the outputs in place.
+@njit(cache=True, nogil=True, inline="always")
+def _mask_of(members):
+    """Boolean vector over the parameters, True at ``members``."""
+    out = np.zeros(COUNT, np.bool_)
+    for j in members:
+        out[j] = True
+    return out
 
-    ``stats`` receives (n_pixels, coverage, chi2_reduced, rms, converged, truncated); ``truncated`` is
-    1 when the ring's pixels came within ``margin`` of an end of its slice (in ``order_radius``, the
-    radius the pixels are sorted by), i.e. the ring may extend beyond its candidates and should be
-    refitted from a wider slice. Since a ring is a connected band on the sky, a ring that continued
-    beyond the slice would have pixels all the way to its end, so a gap wider than the pixel spacing
-    between the ring's pixels and the slice's end means nothing was cut off.
+
+@njit(cache=True, nogil=True)
+def fit_one_ring(pixels, tasks, k, settings, out):
+    """Fit ring ``k`` of ``tasks`` from the pixels in its slice (see :mod:`.engine`); writes row ``k`` of ``out``.
+
+    ``out.truncated[k]`` is set when the ring's pixels came within ``pixels.margin`` of an end of its slice
+    (in ``pixels.order_radius``, the radius the pixels are sorted by), i.e. the ring may extend beyond its
+    candidates and should be refitted from a wider slice. Since a ring is a connected band on the sky, a ring
+    that continued beyond the slice would have pixels all the way to its end, so a gap wider than the pixel
+    spacing between the ring's pixels and the slice's end means nothing was cut off.
     """
+    lo, hi, inner, outer = tasks.lo[k], tasks.hi[k], tasks.inner[k], tasks.outer[k]
+    free = settings.free
     size = max(hi - lo, 1)
-    sel = np.empty(size, np.int64)
-    w_sqrt = np.empty(size)
-    cos_t = np.empty(size)
-    sin_t = np.empty(size)
+    buf = Selection(np.empty(size, np.int64), np.empty(size), np.empty(size), np.empty(size))
     fidx = np.flatnonzero(free)
     nf = fidx.shape[0]
-    geometry_free = free[0] or free[1] or free[3] or free[4]
-    vel = np.flatnonzero(free & np.array([False, False, True, False, False, True, True]))
-    need = max(min_pixels, 2 * nf, 3)
-    p = start.copy()
+    is_geometry = _mask_of(GEOMETRY)
+    geometry_free = np.any(free & is_geometry)
+    vel = np.flatnonzero(free & _mask_of(LINEAR))
+    need = max(settings.min_pixels, 2 * nf, 3)
+    p = tasks.starts[k].copy()
     _clamp(p)
-    errors[:] = np.nan
-    stats[:] = np.array([0.0, 0.0, np.nan, np.nan, 0.0, 0.0])
-    last_step = np.zeros(7)
+    out.errors[k, :] = np.nan
+    out.n_pixels[k], out.coverage[k], out.chi2_reduced[k], out.rms[k] = 0, 0.0, np.nan, np.nan
+    out.converged[k], out.truncated[k] = False, False
+    last_step = np.zeros(COUNT)
     damping = 0.0
     n = 0
     cost, h, converged = 0.0, np.zeros((nf, nf)), False
-    updates = geometry_updates if geometry_free else 1
+    updates = settings.geometry_updates if geometry_free else 1
     for update in range(updates + 1):
-        n, first, last = _select(x, y, sigma, lo, hi, p, jac, inner, outer, sin_wedge, side, power, sel, w_sqrt,
-                                 cos_t, sin_t)
-        if _reaches_edge(order_radius, lo, hi, first, last, margin):
-            stats[5] = 1.0
+        n, first, last = _select(pixels, lo, hi, p, inner, outer, settings, buf)
+        if _reaches_edge(pixels.order_radius, lo, hi, first, last, pixels.margin):
+            out.truncated[k] = True
         if n < need:
-            params[:] = p
-            stats[0], stats[1] = n, _coverage(cos_t, sin_t, n, sin_wedge, side)
+            out.params[k, :] = p
+            out.n_pixels[k], out.coverage[k] = n, _coverage(buf, n, settings)
             return
         if update == updates:
             # not settled: hold the damped geometry and refit the velocities on its own pixel selection
             if vel.shape[0] > 0:
-                p, cost, h, converged, n = _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, vel, jac,
-                                                         max_iterations, clip)
-            cost, h, _ = normal_equations(x, y, v, sel, n, w_sqrt, p, fidx, jac)  # all free parameters, for errors
+                p, cost, h, converged, n = _fit_selected(pixels, buf, n, p, vel, settings.max_iterations,
+                                                         settings.clip)
+            cost, h, _ = normal_equations(pixels, buf, n, p, fidx)  # all free parameters, for errors
             converged = True
             break
-        p_new, cost, h, converged, n = _fit_selected(x, y, v, sel, n, w_sqrt, cos_t, sin_t, p, fidx, jac,
-                                                     max_iterations, clip)
+        p_new, cost, h, converged, n = _fit_selected(pixels, buf, n, p, fidx, settings.max_iterations, settings.clip)
         # settled when no geometry parameter moved by more than 0.02 (deg or pixel) or a tenth of its error
-        scaled = _scaled_errors(h, cost, n, pixels_per_beam)
+        scaled = _scaled_errors(h, cost, n, settings.pixels_per_beam)
         moved = False
         for a in range(nf):
             j = fidx[a]
-            if (j == 0 or j == 1 or j == 3 or j == 4) and abs(p_new[j] - p[j]) > max(0.02, 0.1 * scaled[a]):
+            if is_geometry[j] and abs(p_new[j] - p[j]) > max(0.02, 0.1 * scaled[a]):
                 moved = True
         if not geometry_free or not moved:
             p = p_new
@@ -315,38 +408,30 @@ def fit_one_ring(x, y, v, sigma, order_radius, margin, lo, hi, start, free, jac,
             p_new[j] -= damping * last_step[j]
         p = p_new
     chi2_red = cost / max(n - nf, 1)
-    scaled = _scaled_errors(h, cost, n, pixels_per_beam)
+    scaled = _scaled_errors(h, cost, n, settings.pixels_per_beam)
     if np.isfinite(scaled).all():
         for a in range(nf):
-            errors[fidx[a]] = scaled[a]
+            out.errors[k, fidx[a]] = scaled[a]
     else:
         converged = False
-    d = np.empty(7)
-    const = ring_constants(p, jac)
     squares = 0.0
-    for j in range(n):
-        k = sel[j]
-        squares += (v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)) ** 2
-    if p[5] < 0 and free[3]:  # a free position angle turns half a circle instead (same v_los field); with the
-        p[3] += 180.0          # position angle held, the sign of v_rotation is the measurement
-        p[5] = -p[5]
-        p[6] = -p[6]
-    p[3] = p[3] % 360.0
-    if p[3] >= 360.0:
-        p[3] = 0.0
-    params[:] = p
-    stats[0], stats[1], stats[2], stats[3] = n, _coverage(cos_t, sin_t, n, sin_wedge, side), chi2_red, np.sqrt(
-        squares / max(n, 1))
-    stats[4] = 1.0 if converged else 0.0
+    for r in _residuals(pixels, buf, n, p):
+        squares += r * r
+    if p[P.v_rotation] < 0 and free[P.position_angle]:  # a free position angle turns half a circle instead (same
+        p[P.position_angle] += 180.0                      # v_los field); with the position angle held, the sign
+        p[P.v_rotation] = -p[P.v_rotation]                # of v_rotation is the measurement
+        p[P.v_radial] = -p[P.v_radial]
+    p[P.position_angle] = p[P.position_angle] % 360.0
+    if p[P.position_angle] >= 360.0:
+        p[P.position_angle] = 0.0
+    out.params[k, :] = p
+    out.n_pixels[k], out.coverage[k], out.chi2_reduced[k] = n, _coverage(buf, n, settings), chi2_red
+    out.rms[k] = np.sqrt(squares / max(n, 1))
+    out.converged[k] = converged
 
 
 @njit(cache=True, nogil=True)
-def fit_ring_list(rings, x, y, v, sigma, order_radius, margin, lo, hi, starts, free, jac, inner, outer, power,
-                  sin_wedge, side, clip, max_iterations, geometry_updates, min_pixels, pixels_per_beam, params, errors,
-                  stats):
-    """:func:`fit_one_ring` for each ring index in ``rings`` (rows of the per-ring arrays)."""
+def fit_ring_list(rings, pixels, tasks, settings, out):
+    """:func:`fit_one_ring` for each ring index in ``rings`` (rows of ``tasks`` and ``out``)."""
     for k in rings:
-        fit_one_ring(x, y, v, sigma, order_radius, margin, lo[k], hi[k], starts[k], free, jac, inner[k], outer[k],
-                     power, sin_wedge, side, clip, max_iterations, geometry_updates, min_pixels, pixels_per_beam,
-                     params[k], errors[k], stats[k])
-
+        fit_one_ring(pixels, tasks, k, settings, out)

@@ -31,7 +31,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import fft
 
-from .kinematics import PARAMETERS
+from .parameters import PARAMETERS
 
 __all__ = ["BeamKernel", "smear", "correct_beam_smearing"]
 
@@ -93,7 +93,7 @@ def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed: dict, mea
                           tolerance: float = 0.5, kernel: BeamKernel | None = None, max_gain: float = 3.0):
     """Iterate to the disc whose smeared model the fit turns into what the data gave (module docstring).
 
-    ``rings``: per-ring ``radius`` and :data:`.kinematics.PARAMETERS` columns (the starting model).
+    ``rings``: per-ring ``radius`` and :data:`.parameters.PARAMETERS` columns (the starting model).
     ``observed``: what the fit gave on the data, by parameter name — ``v_rotation`` per ring and, when
     the geometry is constant, scalar ``inclination`` / ``position_angle``. ``measure(map)`` must return
     the same quantities fitted the same way to another map. Each is corrected by

@@ -130,7 +130,7 @@ class VelocityMap:
     @property
     def pixel_scale(self) -> float:
         """Geometric-mean pixel size in arcsec."""
-        return float(np.sqrt(self.pixel_area))
+        return pixel_scale_of(self.sky_jacobian)
 
     @property
     def north_angle(self) -> float:
@@ -212,12 +212,17 @@ def load_image(source, role: str = "velocity map", hdu=None):
     The first HDU with image data of two or more axes is used unless ``hdu`` names another.
     Length-1 extra axes (common in moment maps) are squeezed; a real cube is refused.
     """
+    data, header, name = open_image(source, role, hdu)
+    return _squeeze(data, header, role, name), header, name
+
+
+def open_image(source, role: str = "velocity map", hdu=None):
+    """Like :func:`load_image` but keeps every axis: ``(data as float with NaN blanks, header, name)``."""
     name = str(source) if isinstance(source, (str, Path)) else type(source).__name__
     if isinstance(source, tuple):
         data, meta = source
         header = meta.to_header() if isinstance(meta, WCS) else fits.Header(meta or {})
-        data = np.asarray(data)
-        return _squeeze(data, header, role, "array"), header, "array"
+        return np.asarray(data, dtype=float), header, "array"
     if isinstance(source, (str, Path)):
         from .input_files import check_input_file
 
@@ -239,14 +244,14 @@ def load_image(source, role: str = "velocity map", hdu=None):
             raise
         except Exception as exc:  # astropy raises many kinds for damaged files
             raise InputError(f"{role} {path} is a damaged or truncated FITS file ({exc}); re-export it") from None
-        return _squeeze(data, header, role, name), header, name
+        return data, header, name
     if isinstance(source, fits.HDUList):
         data, header = _pick_hdu(source, role, name, hdu)
-        return _squeeze(data, header, role, name), header, name
+        return data, header, name
     if isinstance(source, (fits.PrimaryHDU, fits.ImageHDU, fits.CompImageHDU)):
         if source.data is None:
             raise InputError(f"{role}: the HDU has no image data")
-        return _squeeze(_blank_to_nan(source, role, name), source.header, role, name), source.header.copy(), name
+        return _blank_to_nan(source, role, name), source.header.copy(), name
     raise InputError(f"{role}: cannot read a {type(source).__name__}; give a FITS path, an HDU, or (array, header)")
 
 
@@ -289,7 +294,8 @@ def _squeeze(data, header, role, name) -> np.ndarray:
     if any(n != 1 for n in extra):
         raise InputError(
             f"{role} {name} looks like a spectral cube (shape {data.shape}); this tool fits 2-D "
-            "velocity maps: make a moment-1 (intensity-weighted mean velocity) map first"
+            "velocity maps: make a moment-1 or line-centre map from it first with "
+            "'tiltedring maps CUBE --out DIR' (tr.make_velocity_maps in Python)"
         )
     return data.reshape(data.shape[-2:])
 
@@ -348,17 +354,27 @@ def sky_jacobian_from_wcs(wcs: WCS, x0: float, y0: float) -> np.ndarray:
     return np.array([dlon.to_value(u.arcsec), dlat.to_value(u.arcsec)])
 
 
+def centre_jacobian(wcs: WCS, shape) -> np.ndarray:
+    """The sky Jacobian (arcsec per pixel) at the centre of an image of ``shape`` (ny, nx)."""
+    ny, nx = shape[-2:]
+    return sky_jacobian_from_wcs(wcs, (nx - 1) / 2.0, (ny - 1) / 2.0)
+
+
+def pixel_scale_of(sky_jacobian) -> float:
+    """Geometric-mean pixel size in arcsec: sqrt(|det J|)."""
+    return float(np.sqrt(abs(np.linalg.det(sky_jacobian))))
+
+
 def _grid(data, header, name, role, pixel_scale, notes=None):
     """Celestial WCS (or None) and the sky Jacobian for an image."""
     from .map_checks import check_grid
 
     wcs = _celestial_wcs(header, data.shape, role, name)
     if wcs is not None:
-        ny, nx = data.shape
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                jacobian = sky_jacobian_from_wcs(wcs, (nx - 1) / 2.0, (ny - 1) / 2.0)
+                jacobian = centre_jacobian(wcs, data.shape)
         except Exception as exc:  # astropy cannot evaluate this WCS at the map centre
             raise InputError(f"{role} {name}: its WCS cannot be evaluated at the map centre ({exc}); correct the "
                              "header, or remove the celestial WCS and give --pixel-scale") from None

@@ -4,28 +4,34 @@
     curve = read_curve("fit/curve.ecsv")
     baryons = read_components("components.ecsv")   # v_gas, v_disc, v_bulge for M/L = 1
     result = fit_mass_model(curve, baryons, MassModelSettings(model="burkert"))
+
+The models that can be fitted are named by :func:`model_names`; a new halo is a subclass of
+:class:`Halo` offered with :func:`register_halo`. Names are imported on first use, so that the
+command line can list the models without importing numerics.
 """
 
-from .components import (
-           ExponentialDisc,
-           HernquistBulge,
-           PointMass,
-           TabulatedSpeed,
-           ThinDisc,
-)
-from .fitting import (
-           MODELS,
-           Baryons,
-           CurveData,
-           MassModelResult,
-           MassModelSettings,
-           fit_mass_model,
-)
-from .halos import NFW, Burkert, Einasto, PseudoIsothermal, concentration_prior
-from .io import read_components, read_curve, read_sparc_rotmod, write_results
-from .relations import fit_btfr, fit_rar, mond_speed, rar
+from importlib import import_module
 
-__all__ = ["ExponentialDisc", "ThinDisc", "HernquistBulge", "PointMass", "TabulatedSpeed", "PseudoIsothermal", "NFW",
-           "Burkert", "Einasto", "concentration_prior", "CurveData", "Baryons", "MassModelSettings",
-           "MassModelResult", "fit_mass_model", "MODELS", "read_curve", "read_components", "read_sparc_rotmod",
-           "write_results", "mond_speed", "rar", "fit_rar", "fit_btfr"]
+_EXPORTS = {
+    "ExponentialDisc": "components", "ThinDisc": "components", "HernquistBulge": "components",
+    "PointMass": "components", "TabulatedSpeed": "components",
+    "Halo": "halos", "HaloParameter": "halos", "PseudoIsothermal": "halos", "NFW": "halos", "Burkert": "halos",
+    "Einasto": "halos", "concentration_prior": "halos",
+    "register_halo": "registry", "unregister_halo": "registry", "model_names": "registry", "halo_names": "registry",
+    "CurveData": "fitting", "Baryons": "fitting", "MassModelSettings": "fitting", "MassModelResult": "fitting",
+    "fit_mass_model": "fitting",
+    "read_curve": "io", "read_components": "io", "read_sparc_rotmod": "io", "write_results": "io",
+    "mond_speed": "relations", "rar": "relations", "fit_rar": "relations", "fit_btfr": "relations",
+}
+
+__all__ = sorted(_EXPORTS)
+
+
+def __getattr__(name):
+    if name in _EXPORTS:
+        return getattr(import_module(f".{_EXPORTS[name]}", __name__), name)
+    raise AttributeError(f"module 'tiltedring.massmodel' has no attribute {name!r}")
+
+
+def __dir__():
+    return __all__

@@ -26,12 +26,14 @@ from scipy.optimize import least_squares
 
 from ..errors import InputError
 from .components import G
-from .halos import HALOS, NFW, concentration_prior
+from .registry import halo_class, model_names
 from .relations import A0, mond_speed
 
-__all__ = ["CurveData", "Baryons", "MassModelSettings", "MassModelResult", "fit_mass_model", "MODELS"]
+__all__ = ["CurveData", "Baryons", "MassModelSettings", "MassModelResult", "fit_mass_model"]
 
-MODELS = ("isothermal", "nfw", "burkert", "einasto", "mond", "none")
+# units of the fitted and fixed quantities that are not halo parameters (log10_<name>: log10 of the value)
+_UNITS = {"ml_disc": "solMass / solLum", "ml_bulge": "solMass / solLum", "distance_factor": "", "inclination": "deg",
+          "a0": "m / s2"}
 
 
 @dataclass
@@ -72,7 +74,9 @@ class Baryons:
 
 @dataclass
 class MassModelSettings:
-    """How to fit (module docstring). ``model``: one of :data:`MODELS`."""
+    """How to fit (module docstring). ``model``: one of :func:`.registry.model_names` (a registered halo,
+    ``mond`` or ``none``). ``hold``: halo parameters held at a value instead of fitted, by name, in the
+    parameter's unit (e.g. ``{"alpha": 0.17}`` for Einasto)."""
 
     model: str = "nfw"
     ml_mode: str = "lognormal"
@@ -86,34 +90,21 @@ class MassModelSettings:
     a0_free: bool = False
     a0: float = A0
     interpolating: str = "simple"
-    einasto_alpha: float | None = None
+    hold: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        if self.model not in MODELS:
-            raise InputError(f"unknown model {self.model!r}; choose from {', '.join(MODELS)}")
+        if self.model not in model_names():
+            raise InputError(f"unknown model {self.model!r}; choose from {', '.join(model_names())}")
+        halo = halo_class(self.model)
+        declared = [p.name for p in halo.parameters] if halo is not None else []
+        unknown = set(self.hold) - set(declared)
+        if unknown:
+            raise InputError(f"model {self.model!r} has no parameter(s) {sorted(unknown)} to hold"
+                             + (f"; its parameters: {', '.join(declared)}" if declared else ""))
         if self.ml_mode not in ("fixed", "free", "lognormal"):
             raise InputError("ml_mode must be fixed, free or lognormal")
         if self.disc_mode not in ("fit", "maximum", "minimum"):
             raise InputError("disc_mode must be fit, maximum or minimum")
-
-
-# name, start, lower, upper, unit: halo parameters in log10 where they are scales
-_HALO_PARAMETERS = {
-    "isothermal": [("log10_rho0", 7.5, 4.0, 11.0, "M_sun/kpc^3"), ("log10_r_core", 0.3, -2.0, 2.5, "kpc")],
-    "nfw": [("log10_v200", 2.0, 0.7, 3.3, "km/s"), ("log10_concentration", 1.0, 0.0, 1.7, "")],
-    "burkert": [("log10_rho0", 7.5, 4.0, 11.0, "M_sun/kpc^3"), ("log10_r0", 0.5, -2.0, 2.5, "kpc")],
-    "einasto": [("log10_rho_2", 6.5, 3.0, 10.0, "M_sun/kpc^3"), ("log10_r_2", 1.0, -1.5, 2.5, "kpc"),
-                ("alpha", 0.17, 0.05, 1.0, "")],
-}
-
-
-def _halo(model, values):
-    if model == "nfw":
-        return NFW(10 ** values["log10_v200"], 10 ** values["log10_concentration"])
-    if model == "einasto":
-        return HALOS["einasto"](10 ** values["log10_rho_2"], 10 ** values["log10_r_2"], values["alpha"])
-    names = [p[0] for p in _HALO_PARAMETERS[model]]
-    return HALOS[model](*(10 ** values[n] for n in names))
 
 
 @dataclass
@@ -129,6 +120,7 @@ class MassModelResult:
     curves: dict
     samples: np.ndarray | None = None
     notes: list = field(default_factory=list)
+    units: dict = field(default_factory=dict)  # unit of each fitted or fixed quantity (of the value inside log10_)
 
     @property
     def bic(self):
@@ -148,70 +140,91 @@ def _max_disc(data, baryons, ml_bulge):
     return float(max(np.min(allowed), 0.0))
 
 
-def fit_mass_model(data: CurveData, baryons: Baryons, settings: MassModelSettings = MassModelSettings(),
-                   sample: bool = False, n_walkers: int = 32, n_steps: int = 1500, seed: int = 0,
-                   quiet: bool = True) -> MassModelResult:
-    """Fit one model (module docstring); with ``sample`` also run emcee (optional dependency)."""
-    names, start, lower, upper = [], [], [], []
-    for spec in _HALO_PARAMETERS.get(settings.model, []):
-        if spec[0] == "alpha" and settings.einasto_alpha is not None:
-            continue
-        names.append(spec[0]), start.append(spec[1]), lower.append(spec[2]), upper.append(spec[3])
-    fixed = {}
-    if settings.model == "einasto" and settings.einasto_alpha is not None:
-        fixed["alpha"] = settings.einasto_alpha
+@dataclass
+class _Unknowns:
+    """The fitted quantities (names, start, lower and upper bounds, in order) and the fixed ones."""
+
+    names: list = field(default_factory=list)
+    start: list = field(default_factory=list)
+    lower: list = field(default_factory=list)
+    upper: list = field(default_factory=list)
+    fixed: dict = field(default_factory=dict)
+
+    def add(self, name, start, lower, upper):
+        self.names.append(name), self.start.append(start), self.lower.append(lower), self.upper.append(upper)
+
+
+def _unknowns(data, baryons, settings, halo) -> _Unknowns:
+    """Halo parameters (as declared), then a0, mass-to-light ratios, distance and inclination."""
+    out = _Unknowns()
+    for p in halo.parameters if halo is not None else ():
+        if p.name in settings.hold:
+            out.fixed[p.fitted_name] = p.to_fitted(settings.hold[p.name])
+        else:
+            out.add(p.fitted_name, p.start, *p.bounds)
     if settings.model == "mond" and settings.a0_free:
-        names.append("log10_a0"), start.append(np.log10(settings.a0)), lower.append(-11), upper.append(-9)
+        out.add("log10_a0", np.log10(settings.a0), -11, -9)
     else:
-        fixed["log10_a0"] = np.log10(settings.a0)
+        out.fixed["log10_a0"] = np.log10(settings.a0)
     ml = {"ml_disc": settings.ml_disc, "ml_bulge": settings.ml_bulge}
     has = {"ml_disc": baryons.disc is not None, "ml_bulge": baryons.bulge is not None}
     if settings.disc_mode == "minimum":
-        fixed.update(ml_disc=0.0, ml_bulge=0.0)
+        out.fixed.update(ml_disc=0.0, ml_bulge=0.0)
     elif settings.disc_mode == "maximum":
-        fixed["ml_bulge"] = settings.ml_bulge
-        fixed["ml_disc"] = _max_disc(data, baryons, settings.ml_bulge)
+        out.fixed["ml_bulge"] = settings.ml_bulge
+        out.fixed["ml_disc"] = _max_disc(data, baryons, settings.ml_bulge)
     for key in ("ml_disc", "ml_bulge"):
-        if key in fixed:
+        if key in out.fixed:
             continue
         if settings.ml_mode == "fixed" or not has[key]:
-            fixed[key] = ml[key]
+            out.fixed[key] = ml[key]
         else:
-            names.append(f"log10_{key}"), start.append(np.log10(ml[key])), lower.append(-2.0), upper.append(1.0)
+            out.add(f"log10_{key}", np.log10(ml[key]), -2.0, 1.0)
     if settings.fit_distance:
         if not data.distance or not data.distance_err:
             raise InputError("fitting the distance needs the distance and its error")
-        names.append("distance_factor"), start.append(1.0), lower.append(0.3), upper.append(3.0)
+        out.add("distance_factor", 1.0, 0.3, 3.0)
     if settings.fit_inclination:
         if not data.inclination or not data.inclination_err:
             raise InputError("fitting the inclination needs the inclination and its error")
-        names.append("inclination"), start.append(data.inclination), lower.append(5.0), upper.append(89.0)
-    baryon_sq = baryons.squared(data.radius)
-    n_data = len(data.radius)
+        out.add("inclination", data.inclination, 5.0, 89.0)
+    return out
 
-    def unpack(q):
-        values = dict(fixed)
-        values.update(zip(names, q))
+
+class _Problem:
+    """The model curve and the residuals (data and priors) of one fit, as functions of the fitted vector."""
+
+    def __init__(self, data, baryons, settings, halo, unknowns):
+        self.data, self.settings, self.halo, self.unknowns = data, settings, halo, unknowns
+        self.baryon_sq = baryons.squared(data.radius)
+
+    def unpack(self, q) -> dict:
+        values = dict(self.unknowns.fixed)
+        values.update(zip(self.unknowns.names, q))
         for key in ("ml_disc", "ml_bulge"):
             if f"log10_{key}" in values:
                 values[key] = 10 ** values[f"log10_{key}"]
         return values
 
-    def model_speed(values, radius_scale=1.0, sq=baryon_sq, radius=data.radius):
-        f_d = values.get("distance_factor", 1.0) * radius_scale
+    def model_speed(self, values):
+        """(v_model, signed baryonic v^2, halo v^2) at the data's radii."""
+        sq = self.baryon_sq
+        f_d = values.get("distance_factor", 1.0)
         v_bar2 = f_d * (values["ml_disc"] * sq["disc"] + values["ml_bulge"] * sq["bulge"] + sq["gas"])
-        r = radius * f_d
-        if settings.model == "mond":
-            return mond_speed(v_bar2, r, 10 ** values["log10_a0"], settings.interpolating), v_bar2, np.zeros_like(r)
-        v_halo2 = _halo(settings.model, values).v_squared(r) if settings.model in HALOS else np.zeros_like(r)
+        r = self.data.radius * f_d
+        if self.settings.model == "mond":
+            speed = mond_speed(v_bar2, r, 10 ** values["log10_a0"], self.settings.interpolating)
+            return speed, v_bar2, np.zeros_like(r)
+        v_halo2 = self.halo.from_fitted(values).v_squared(r) if self.halo is not None else np.zeros_like(r)
         return np.sqrt(np.clip(v_bar2 + v_halo2, 0, None)), v_bar2, v_halo2
 
-    def residuals(q):
-        values = unpack(q)
+    def residuals(self, q):
+        data, settings = self.data, self.settings
+        values = self.unpack(q)
         stretch = 1.0
         if "inclination" in values:
             stretch = np.sin(np.radians(data.inclination)) / np.sin(np.radians(values["inclination"]))
-        v_model, _, _ = model_speed(values)
+        v_model, _, _ = self.model_speed(values)
         out = [(v_model - data.v * stretch) / (data.v_err * stretch)]
         if settings.ml_mode == "lognormal":
             for key, centre in (("ml_disc", settings.ml_disc), ("ml_bulge", settings.ml_bulge)):
@@ -221,39 +234,54 @@ def fit_mass_model(data: CurveData, baryons: Baryons, settings: MassModelSetting
             out.append([(values["distance_factor"] - 1.0) / (data.distance_err / data.distance)])
         if "inclination" in values:
             out.append([(values["inclination"] - data.inclination) / data.inclination_err])
-        if settings.model == "nfw" and settings.use_concentration_prior:
-            halo = _halo("nfw", values)
-            mean, scatter = concentration_prior(halo.m200)
-            out.append([(values["log10_concentration"] - mean) / scatter])
+        if self.halo is not None and settings.use_concentration_prior:
+            relation = self.halo.from_fitted(values).relation_residuals(values)
+            if relation:
+                out.append(relation)
         return np.concatenate([np.atleast_1d(np.asarray(o, float)) for o in out])
 
+
+def _least_squares(problem) -> tuple:
+    """Best fitted vector and its errors (from the Jacobian); several starts for a halo's shallow valleys."""
+    unknowns = problem.unknowns
+    if not unknowns.names:
+        return np.array([]), np.array([])
+    starts = [np.array(unknowns.start)]
+    if problem.halo is not None:
+        for shift in (-1.0, 1.0):
+            s = np.array(unknowns.start, float)
+            s[0] += shift
+            starts.append(np.clip(s, np.array(unknowns.lower) + 1e-6, np.array(unknowns.upper) - 1e-6))
     best = None
-    if names:
-        starts = [np.array(start)]
-        if settings.model in HALOS:  # a few starting points: halo fits have shallow valleys
-            for shift in (-1.0, 1.0):
-                s = np.array(start, float)
-                s[0] += shift
-                starts.append(np.clip(s, np.array(lower) + 1e-6, np.array(upper) - 1e-6))
-        for s in starts:
-            sol = least_squares(residuals, s, bounds=(lower, upper), x_scale="jac", max_nfev=2000)
-            if best is None or sol.cost < best.cost:
-                best = sol
-        q = best.x
-        try:
-            cov = np.linalg.inv(best.jac.T @ best.jac)
-            err = np.sqrt(np.clip(np.diag(cov), 0, None))
-        except np.linalg.LinAlgError:
-            err = np.full(len(q), np.nan)
-    else:
-        q, err = np.array([]), np.array([])
-    values = unpack(q)
-    chi2 = float(np.sum(residuals(q)[:n_data] ** 2))
-    v_model, v_bar2, v_halo2 = model_speed(values)
+    for s in starts:
+        sol = least_squares(problem.residuals, s, bounds=(unknowns.lower, unknowns.upper), x_scale="jac", max_nfev=2000)
+        if best is None or sol.cost < best.cost:
+            best = sol
+    try:
+        cov = np.linalg.inv(best.jac.T @ best.jac)
+        err = np.sqrt(np.clip(np.diag(cov), 0, None))
+    except np.linalg.LinAlgError:
+        err = np.full(len(best.x), np.nan)
+    return best.x, err
+
+
+def fit_mass_model(data: CurveData, baryons: Baryons, settings: MassModelSettings = MassModelSettings(),
+                   sample: bool = False, n_walkers: int = 32, n_steps: int = 1500, seed: int = 0,
+                   quiet: bool = True) -> MassModelResult:
+    """Fit one model (module docstring); with ``sample`` also run emcee (optional dependency)."""
+    halo = halo_class(settings.model)
+    unknowns = _unknowns(data, baryons, settings, halo)
+    names = unknowns.names
+    problem = _Problem(data, baryons, settings, halo, unknowns)
+    n_data = len(data.radius)
+    q, err = _least_squares(problem)
+    values = problem.unpack(q)
+    chi2 = float(np.sum(problem.residuals(q)[:n_data] ** 2))
+    v_model, v_bar2, v_halo2 = problem.model_speed(values)
     errors = dict(zip(names, err))
     samples = None
     if sample and names:
-        samples = _sample(residuals, q, err, lower, upper, n_walkers, n_steps, seed, quiet)
+        samples = _sample(problem.residuals, q, err, unknowns.lower, unknowns.upper, n_walkers, n_steps, seed, quiet)
         errors = dict(zip(names, np.std(samples, axis=0)))
     f_d = values.get("distance_factor", 1.0)
     curves = {"radius": data.radius * f_d, "v_obs": data.v, "v_err": data.v_err, "v_model": v_model,
@@ -261,11 +289,18 @@ def fit_mass_model(data: CurveData, baryons: Baryons, settings: MassModelSetting
               "v_halo": np.sqrt(np.clip(v_halo2, 0, None))}
     for name in ("gas", "disc", "bulge"):
         scale = 1.0 if name == "gas" else values[f"ml_{name}"]
-        v2 = f_d * scale * baryon_sq[name]
+        v2 = f_d * scale * problem.baryon_sq[name]
         curves[f"v_{name}"] = np.sign(v2) * np.sqrt(np.abs(v2))
-    derived = _derived(settings.model, values, data, baryons, curves)
+    derived = _derived(halo, values, baryons, curves)
     return MassModelResult(settings.model, {k: float(values[k]) for k in names}, {k: float(v) for k, v in errors.items()},
-                           {k: float(v) for k, v in fixed.items()}, chi2, n_data, len(names), derived, curves, samples)
+                           {k: float(v) for k, v in unknowns.fixed.items()}, chi2, n_data, len(names), derived, curves,
+                           samples, units=_units(halo, [*names, *unknowns.fixed]))
+
+
+def _units(halo, fitted_names) -> dict:
+    """Unit of each fitted or fixed quantity (for ``log10_<name>``: the unit of the value inside the log)."""
+    declared = {p.fitted_name: p.unit.to_string() for p in (halo.parameters if halo is not None else ())}
+    return {name: declared.get(name, _UNITS.get(name.removeprefix("log10_"), "")) for name in fitted_names}
 
 
 def _sample(residuals, q, err, lower, upper, n_walkers, n_steps, seed, quiet):
@@ -294,39 +329,20 @@ def _sample(residuals, q, err, lower, upper, n_walkers, n_steps, seed, quiet):
     return sampler.get_chain(discard=n_steps // 3, flat=True)
 
 
-def _derived(model, values, data, baryons, curves) -> dict:
+def _derived(halo, values, baryons, curves) -> dict:
     """M200, dark-to-baryonic mass inside the last radius, baryonic share of v at 2.2 disc scale lengths."""
     r_last = curves["radius"][-1]
     m_bar = max(curves["v_baryon"][-1], 0.0) ** 2 * r_last / G
     out = {"last_radius_kpc": float(r_last), "baryonic_mass_inside_last_radius": float(m_bar)}
-    if model in HALOS:
-        halo = _halo(model, values)
+    if halo is not None:
+        halo = halo.from_fitted(values)
         m_dm = float(halo.enclosed_mass(r_last))
         out["dark_mass_inside_last_radius"] = m_dm
         out["dark_to_baryonic_inside_last_radius"] = m_dm / m_bar if m_bar > 0 else None
-        out["m200"] = float(_m200(halo))
+        out["m200"] = float(halo.m200)
     if baryons.disc_scale_length:
         r22 = 2.2 * baryons.disc_scale_length * values.get("distance_factor", 1.0)
         vb = np.interp(r22, curves["radius"], curves["v_baryon"])
         vm = np.interp(r22, curves["radius"], curves["v_model"])
         out["baryon_speed_fraction_at_2.2h"] = float(vb / vm) if vm > 0 else None
     return out
-
-
-def _m200(halo):
-    """Mass inside the radius where the mean density is 200 times critical (H0 = 70 km/s/Mpc)."""
-    if isinstance(halo, NFW):
-        return halo.m200
-    from scipy.optimize import brentq
-
-    from .halos import H0_KM_S_KPC
-
-    rho_crit = 3 * H0_KM_S_KPC**2 / (8 * np.pi * G)
-
-    def excess(r):
-        return halo.enclosed_mass(r) / (4 / 3 * np.pi * r**3) - 200 * rho_crit
-
-    try:
-        return halo.enclosed_mass(brentq(excess, 1e-3, 1e4))
-    except ValueError:
-        return np.nan

@@ -1,4 +1,5 @@
-"""Dark-halo profiles, each with an analytic enclosed mass (radius kpc, speed km/s, mass M_sun).
+"""Dark-halo profiles, one class each, with declared parameters and an analytic enclosed mass
+(radius kpc, speed km/s, mass M_sun, density M_sun/kpc^3).
 
 - :class:`PseudoIsothermal` (Begeman, Broeils & Sanders 1991): rho = rho_0 / (1 + (r/r_c)^2),
   M(<r) = 4 pi rho_0 r_c^3 [x - arctan x].
@@ -9,47 +10,142 @@
 - :class:`Einasto` (Einasto 1965; Navarro et al. 2004): rho = rho_-2 exp(-(2/alpha)[(r/r_-2)^alpha - 1]),
   M(<r) = 4 pi rho_-2 r_-2^3 e^(2/alpha) (alpha/2)^(3/alpha) / alpha * gamma(3/alpha, (2/alpha)(r/r_-2)^alpha).
 
-Densities in M_sun/kpc^3. ``concentration_prior`` gives the Dutton & Maccio 2014 (MNRAS 441, 3359)
-NFW concentration-mass relation at z = 0 (log10 c = 0.905 - 0.101 log10(M200 / 1e12 h^-1 M_sun),
-scatter 0.11 dex; coefficients from memory).
+A halo is a subclass of :class:`Halo` that declares its ``parameters`` (:class:`HaloParameter`:
+name, unit, where the fit starts, bounds, whether it is fitted in log10) and supplies
+``_enclosed_mass(r)``; the base class derives the rest (construction, circular speed, M200,
+construction from fitted values). It becomes a mass model once registered
+(:func:`.registry.register_halo`).
+
+M200 is the mass inside the radius where the mean density is 200 times the critical density for
+H0 = 70 km/s/Mpc (closed form for NFW, a root search otherwise). ``concentration_prior`` gives the
+Dutton & Maccio 2014 (MNRAS 441, 3359) NFW concentration-mass relation at z = 0 (log10 c = 0.905 -
+0.101 log10(M200 / 1e12 h^-1 M_sun), scatter 0.11 dex; coefficients from memory).
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
+from astropy import units as u
 from scipy import special
 
 from .components import Component, G
 
-__all__ = ["PseudoIsothermal", "NFW", "Burkert", "Einasto", "HALOS", "concentration_prior", "H0_KM_S_KPC"]
+__all__ = ["HaloParameter", "Halo", "PseudoIsothermal", "NFW", "Burkert", "Einasto", "concentration_prior",
+           "H0_KM_S_KPC"]
 
 H0_KM_S_KPC = 0.07  # 70 km/s/Mpc, as commonly used for V200 definitions
+DENSITY = u.Msun / u.kpc**3
 
 
-class _Halo(Component):
+@dataclass(frozen=True)
+class HaloParameter:
+    """One declared parameter of a halo.
+
+    ``start`` and ``bounds`` (lower, upper) are in the fitted scale: log10 of the value in ``unit``
+    when ``log10`` (scales and densities, which span decades), the value itself otherwise.
+    ``default``: the value the constructor takes when none is given (None: required).
+    """
+
+    name: str
+    unit: u.UnitBase
+    start: float
+    bounds: tuple
+    log10: bool = True
+    default: float | None = None
+    description: str = ""
+
+    @property
+    def fitted_name(self) -> str:
+        """Name of the fitted quantity (``log10_<name>`` for log10 parameters)."""
+        return f"log10_{self.name}" if self.log10 else self.name
+
+    def from_fitted(self, x):
+        return 10**x if self.log10 else x
+
+    def to_fitted(self, value):
+        return np.log10(value) if self.log10 else value
+
+
+class Halo(Component):
+    """A spherical dark halo (module docstring). Subclasses declare ``name`` and ``parameters`` and
+    supply ``_enclosed_mass(r)`` for an array of radii in kpc."""
+
+    name = "halo"
+    parameters: tuple = ()
+
+    def __init__(self, *values, **named):
+        declared = [p.name for p in self.parameters]
+        if len(values) > len(declared):
+            raise TypeError(f"{type(self).__name__} takes {len(declared)} parameters ({', '.join(declared)})")
+        given = dict(zip(declared, values))
+        twice = given.keys() & named.keys()
+        unknown = named.keys() - set(declared)
+        if twice or unknown:
+            raise TypeError(f"{type(self).__name__}: parameter(s) {sorted(twice | unknown)} given twice or unknown")
+        given.update(named)
+        for p in self.parameters:
+            value = given.get(p.name, p.default)
+            if value is None:
+                raise TypeError(f"{type(self).__name__} needs {p.name} ({p.description or p.unit})")
+            setattr(self, p.name, float(value))
+
+    @classmethod
+    def from_fitted(cls, values: dict):
+        """The halo at fitted values (keyed by :attr:`HaloParameter.fitted_name`)."""
+        return cls(**{p.name: p.from_fitted(values[p.fitted_name]) for p in cls.parameters})
+
+    def _enclosed_mass(self, r):
+        raise NotImplementedError
+
+    def enclosed_mass(self, r):
+        return self._enclosed_mass(np.asarray(r, float))
+
     def v_circ(self, r):
         r = np.maximum(np.asarray(r, float), 1e-9)
         return np.sqrt(np.clip(G * self.enclosed_mass(r) / r, 0, None))
 
+    @property
+    def m200(self):
+        """Mass inside the radius where the mean density is 200 times critical (NaN when not found in 1 pc-10 Mpc)."""
+        from scipy.optimize import brentq
 
-class PseudoIsothermal(_Halo):
+        rho_crit = 3 * H0_KM_S_KPC**2 / (8 * np.pi * G)
+
+        def excess(r):
+            return self.enclosed_mass(r) / (4 / 3 * np.pi * r**3) - 200 * rho_crit
+
+        try:
+            return self.enclosed_mass(brentq(excess, 1e-3, 1e4))
+        except ValueError:
+            return np.nan
+
+    def relation_residuals(self, fitted: dict) -> list:
+        """Residuals of a published relation between the halo's parameters, added to the fit as priors when
+        asked (``MassModelSettings.use_concentration_prior``); none by default."""
+        return []
+
+
+class PseudoIsothermal(Halo):
     name = "pseudo-isothermal"
-    parameters = ("rho0", "r_core")
+    parameters = (HaloParameter("rho0", DENSITY, 7.5, (4.0, 11.0), description="central density"),
+                  HaloParameter("r_core", u.kpc, 0.3, (-2.0, 2.5), description="core radius"))
 
-    def __init__(self, rho0: float, r_core: float):
-        self.rho0, self.r_core = float(rho0), float(r_core)
-
-    def enclosed_mass(self, r):
-        x = np.asarray(r, float) / self.r_core
+    def _enclosed_mass(self, r):
+        x = r / self.r_core
         return 4 * np.pi * self.rho0 * self.r_core**3 * (x - np.arctan(x))
 
 
-class NFW(_Halo):
+class NFW(Halo):
     name = "NFW"
-    parameters = ("v200", "concentration")
+    parameters = (HaloParameter("v200", u.km / u.s, 2.0, (0.7, 3.3), description="circular speed at r200"),
+                  HaloParameter("concentration", u.dimensionless_unscaled, 1.0, (0.0, 1.7),
+                                description="r200 / scale radius"))
 
     def __init__(self, v200: float, concentration: float, h0: float = H0_KM_S_KPC):
-        self.v200, self.concentration, self.h0 = float(v200), float(concentration), float(h0)
+        super().__init__(v200, concentration)
+        self.h0 = float(h0)
 
     @property
     def r200(self):
@@ -63,40 +159,40 @@ class NFW(_Halo):
     def scale_radius(self):
         return self.r200 / self.concentration
 
-    def enclosed_mass(self, r):
+    def _enclosed_mass(self, r):
         c = self.concentration
-        cx = c * np.asarray(r, float) / self.r200
+        cx = c * r / self.r200
         norm = np.log(1 + c) - c / (1 + c)
         return self.m200 * (np.log1p(cx) - cx / (1 + cx)) / norm
 
+    def relation_residuals(self, fitted):
+        """The Dutton & Maccio (2014) concentration-mass relation (:func:`concentration_prior`)."""
+        mean, scatter = concentration_prior(self.m200)
+        return [(fitted["log10_concentration"] - mean) / scatter]
 
-class Burkert(_Halo):
+
+class Burkert(Halo):
     name = "Burkert"
-    parameters = ("rho0", "r0")
+    parameters = (HaloParameter("rho0", DENSITY, 7.5, (4.0, 11.0), description="central density"),
+                  HaloParameter("r0", u.kpc, 0.5, (-2.0, 2.5), description="core radius"))
 
-    def __init__(self, rho0: float, r0: float):
-        self.rho0, self.r0 = float(rho0), float(r0)
-
-    def enclosed_mass(self, r):
-        x = np.asarray(r, float) / self.r0
+    def _enclosed_mass(self, r):
+        x = r / self.r0
         return np.pi * self.rho0 * self.r0**3 * (np.log((1 + x) ** 2 * (1 + x**2)) - 2 * np.arctan(x))
 
 
-class Einasto(_Halo):
+class Einasto(Halo):
     name = "Einasto"
-    parameters = ("rho_2", "r_2", "alpha")
+    parameters = (HaloParameter("rho_2", DENSITY, 6.5, (3.0, 10.0), description="density where the slope is -2"),
+                  HaloParameter("r_2", u.kpc, 1.0, (-1.5, 2.5), description="radius where the slope is -2"),
+                  HaloParameter("alpha", u.dimensionless_unscaled, 0.17, (0.05, 1.0), log10=False, default=0.17,
+                                description="shape index"))
 
-    def __init__(self, rho_2: float, r_2: float, alpha: float = 0.17):
-        self.rho_2, self.r_2, self.alpha = float(rho_2), float(r_2), float(alpha)
-
-    def enclosed_mass(self, r):
+    def _enclosed_mass(self, r):
         a = self.alpha
-        t = (2 / a) * (np.asarray(r, float) / self.r_2) ** a
+        t = (2 / a) * (r / self.r_2) ** a
         lower_gamma = special.gammainc(3 / a, t) * special.gamma(3 / a)
         return 4 * np.pi * self.rho_2 * self.r_2**3 * np.exp(2 / a) * (a / 2) ** (3 / a) / a * lower_gamma
-
-
-HALOS = {"isothermal": PseudoIsothermal, "nfw": NFW, "burkert": Burkert, "einasto": Einasto}
 
 
 def concentration_prior(m200: float, h: float = 0.7):

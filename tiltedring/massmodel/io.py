@@ -158,7 +158,8 @@ def read_gas(path):
 
 
 def write_results(folder, results: dict, curve: CurveData, overwrite: bool = False) -> Path:
-    """Write ``models.ecsv`` (comparison), ``parameters.ecsv``, ``components_<model>.ecsv`` and ``massmodel.json``."""
+    """Write ``models.ecsv`` (comparison), ``parameters.ecsv`` (one row per fitted or fixed quantity of each model,
+    with its unit), ``components_<model>.ecsv`` and ``massmodel.json``."""
     from ..io.atomic import atomic_folder, write_json
 
     with atomic_folder(folder, overwrite=overwrite, kind="massmodel") as tmp:
@@ -172,11 +173,12 @@ def write_results(folder, results: dict, curve: CurveData, overwrite: bool = Fal
         rows = []
         for name, r in results.items():
             for key, value in r.parameters.items():
-                rows.append((name, key, value, r.errors.get(key, np.nan), "free"))
+                rows.append((name, key, value, r.errors.get(key, np.nan), "free", r.units.get(key, "")))
             for key, value in r.fixed.items():
-                rows.append((name, key, value, np.nan, "fixed"))
-        Table(rows=rows, names=("model", "parameter", "value", "error", "status")).write(
-            tmp / "parameters.ecsv", format="ascii.ecsv")
+                rows.append((name, key, value, np.nan, "fixed", r.units.get(key, "")))
+        table = Table(rows=rows, names=("model", "parameter", "value", "error", "status", "unit"))
+        table.meta["comment"] = ["unit: of the value, or of the quantity inside the logarithm for log10_<name>"]
+        table.write(tmp / "parameters.ecsv", format="ascii.ecsv")
         for name, r in results.items():
             t = QTable({k: v * (u.kpc if k == "radius" else u.km / u.s) for k, v in r.curves.items()})
             t.write(tmp / f"components_{name}.ecsv", format="ascii.ecsv")

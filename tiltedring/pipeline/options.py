@@ -2,7 +2,8 @@
 
 - :class:`FitOptions`: how the rings are laid out and fitted (the ``[fit]`` table of a run file);
 - :class:`InputOptions`: what is read besides the velocity map (``[inputs]``);
-- :class:`CurveOptions`: the rotation-curve product, ``curve.ecsv`` (``[curve]``).
+- :class:`CurveOptions`: the rotation-curve product, ``curve.ecsv`` (``[curve]``);
+- :class:`CubeOptions`: how velocity maps are made when the input is a spectral cube (``[cube]``).
 
 Each field is declared with :func:`.option_fields.option` (help, choices, metavar, form); the
 command line, TOML run files, batch manifest columns and ``fit.json`` are generated from these
@@ -16,17 +17,21 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 from ..errors import InputError
+from ..fitting.parameters import PARAMETERS
 from .option_fields import Bounds, coerce, field_specs, option, recorded_values, validate
 
-__all__ = ["FitOptions", "InputOptions", "CurveOptions", "RING_PARAMETER_NAMES", "AZIMUTH_WEIGHT_NAMES",
+__all__ = ["FitOptions", "InputOptions", "CurveOptions", "CubeOptions", "RING_PARAMETER_NAMES",
+           "AZIMUTH_WEIGHT_NAMES",
            "HALF_NAMES"]
 
-# Spelled here so that the command line is built without importing the numerics; tests check them
-# against fitting.kinematics.PARAMETERS, fitting.engine.AZIMUTH_WEIGHTS and fitting.engine.HALVES.
-RING_PARAMETER_NAMES = ("x_center", "y_center", "v_systemic", "position_angle", "inclination", "v_rotation",
-                        "v_radial")
+# The parameter names come from their one definition (fitting/parameters.py imports no numerics). The
+# choices below are spelled here so that the command line is built without importing the numerics;
+# tests check them against fitting.engine.AZIMUTH_WEIGHTS and fitting.engine.HALVES.
+RING_PARAMETER_NAMES = PARAMETERS
 AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
 HALF_NAMES = ("whole", "approaching", "receding")
+VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
+EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
 
 SPEED_OF_LIGHT = 299792.458  # km/s (CODATA, as astropy.constants.c)
 STARTING_BOUNDS = {
@@ -118,8 +123,6 @@ class FitOptions:
                          help="no progress messages (on the command line: -q/--quiet)")
 
     def __post_init__(self):
-        from ..fitting.kinematics import PARAMETERS
-
         validate(self)
         for name in ("ring_edges", "bar_range"):
             if getattr(self, name) is not None:
@@ -268,3 +271,48 @@ def check_cosmology(name: str) -> str:
     if name not in available:
         raise InputError(f"cosmology {name!r} is not one astropy provides; choose one of {', '.join(available)}")
     return name
+
+
+@dataclass
+class CubeOptions:
+    """How velocity maps are made when the input is a spectral cube (``[cube]``; :mod:`..io.velocity_fields`)."""
+
+    velocity_kind: str = option("hermite", group="cube", choices=VELOCITY_KIND_NAMES,
+                                help="line centre per spectrum: moment (moment 1), peak, gaussian, or hermite "
+                                     "(the peak of a Gauss-Hermite fit with h3)")
+    exclude_velocities: str | None = option(None, group="cube", metavar="LO:HI[,LO:HI]",
+                                            help="velocity ranges (km/s, the cube's convention) holding foreground, "
+                                                 "e.g. Galactic HI; a range starting with a minus sign needs the "
+                                                 "'=' form: --exclude-velocities=-60:5")
+    exclusion: str = option("interpolate", group="cube", choices=EXCLUSION_NAMES,
+                            help="how the excluded ranges are treated: interpolate (vetoed off the galaxy; on it the "
+                                 "foreground interpolated from around the galaxy is subtracted) or veto (left out of "
+                                 "every spectrum; lines near them are blanked)")
+    all_regions: bool = option(False, group="cube",
+                               help="keep every emission region of the mask (default: only the largest, the galaxy)")
+    mask_threshold: float = option(4.0, group="cube", metavar="SIGMA", bounds=Bounds(above=0, maximum=1000),
+                                   help="clip level of the smoothed cube, in units of its robust noise")
+    minimum_run: int = option(3, group="cube", metavar="CHANNELS", bounds=Bounds(minimum=1, maximum=10000),
+                              help="fewest adjacent channels a masked line must span")
+    brightness_unit: str | None = option(None, group="cube", metavar="UNIT",
+                                         help="unit of the cube when BUNIT is missing or wrong (Jy/beam, K)")
+    rest_frequency: float | None = option(None, group="cube", metavar="HZ", bounds=Bounds(above=0),
+                                          help="rest frequency in Hz when the cube states none")
+    velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
+                                             help="velocities in this convention (default: the cube's own; radio "
+                                                  "for a frequency axis, optical for a wavelength axis)")
+
+    def __post_init__(self):
+        validate(self)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def map_arguments(self) -> dict:
+        """Keyword arguments of :func:`..io.velocity_fields.make_velocity_maps`."""
+        return {"kind": self.velocity_kind, "exclude_velocities": self.exclude_velocities or (),
+                "exclusion": self.exclusion, "keep_regions": "all" if self.all_regions else "largest",
+                "mask_threshold": self.mask_threshold, "minimum_run": self.minimum_run,
+                "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
+                "convention": self.velocity_convention}
+

@@ -53,11 +53,7 @@ class MapComparison:
             table.meta["maps"] = self.names
             table.meta["notes"] = self.notes
             table.write(tmp / "statistics.ecsv", format="ascii.ecsv")
-            import matplotlib.pyplot as plt
-
-            fig = self.plot()
-            fig.savefig(tmp / "comparison.png", dpi=130)
-            plt.close(fig)
+            self.plot().savefig(tmp / "comparison.png", dpi=130)
         return Path(folder)
 
 

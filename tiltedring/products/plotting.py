@@ -1,7 +1,9 @@
-"""Every figure of the tool (nothing else imports matplotlib).
+"""Every figure of the tool (with :mod:`.figure`, the only code importing matplotlib).
 
 Each function takes the objects the API returns, an optional ``ax`` (or ``axes``) to draw into,
-and returns the figure. Layout choices are our own: maps carry the beam as a filled ellipse in the
+and returns the figure: a new ``matplotlib.figure.Figure`` (:mod:`.figure`: made without pyplot,
+so the user's backend and rcParams stay as they were; it displays itself in Jupyter) or, when
+axes are given, the figure they belong to. Layout choices are our own: maps carry the beam as a filled ellipse in the
 lower-left corner, every second ring as a thin dotted ellipse and the kinematic centre as a small
 diamond; velocity maps use a diverging purple-orange scale centred on the systemic velocity,
 residual maps a brown-teal scale centred on zero (both colour-blind safe); profile plots show
@@ -22,30 +24,16 @@ STAGE_STYLE = {"free": dict(marker="o", mfc="none", color="0.55", ms=4, ls="none
                "centred": dict(marker="s", mfc="none", color="tab:blue", ms=4, ls="none", label="stage centred")}
 
 
-def _plt():
-    import matplotlib
+def _figure(figsize, layout="constrained"):
+    from .figure import new_figure
 
-    if matplotlib.get_backend().lower() not in ("agg", "pdf", "svg") and not _interactive():
-        matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
-
-
-def _interactive():
-    try:
-        from IPython import get_ipython
-
-        return get_ipython() is not None
-    except ImportError:
-        return False
+    return new_figure(figsize, layout)
 
 
 def _axes(ax, figsize, projection=None):
-    plt = _plt()
     if ax is not None:
         return ax.figure, ax
-    fig = plt.figure(figsize=figsize, layout="constrained")
+    fig = _figure(figsize)
     return fig, fig.add_subplot(111, projection=projection)
 
 
@@ -122,9 +110,8 @@ def plot_map(image, result=None, kind: str = "velocity", ax=None, rings: bool = 
 
 def plot_maps(result, axes=None):
     """Data, model and residual side by side; data and model share one colour scale."""
-    plt = _plt()
     if axes is None:
-        fig = plt.figure(figsize=(PAGE * 1.3, PAGE * 0.45), layout="constrained")
+        fig = _figure((PAGE * 1.3, PAGE * 0.45))
         proj = result.vmap.wcs
         axes = [fig.add_subplot(1, 3, k + 1, projection=proj) for k in range(3)]
     fig = axes[0].figure
@@ -136,9 +123,8 @@ def plot_maps(result, axes=None):
 
 def plot_geometry(result, axes=None):
     """Position angle, inclination and rotation speed against radius: stages and the adopted profile."""
-    plt = _plt()
     if axes is None:
-        fig, axes = plt.subplots(3, 1, figsize=(COLUMN, COLUMN * 1.9), sharex=True, layout="constrained")
+        axes = _figure((COLUMN, COLUMN * 1.9)).subplots(3, 1, sharex=True)
     fig = axes[0].figure
     r = _value(result.rings["radius"])
     for ax, name, unit in zip(axes, ("position_angle", "inclination", "v_rotation"), ("deg", "deg", "km/s")):
@@ -175,12 +161,11 @@ def _unwrap_to(values, reference):
 def plot_rotation_curve(result, ax=None, components: bool = True):
     """The rotation curve with its total error, the uncorrected (smeared) curve, both sides, and the
     error budget in a lower panel."""
-    plt = _plt()
     t = result.rings
     r = _value(t["radius"])
     if ax is None:
-        fig, (ax, ax2) = plt.subplots(2, 1, figsize=(COLUMN, COLUMN * 1.3), sharex=True, layout="constrained",
-                                      gridspec_kw={"height_ratios": [3, 1.3]})
+        fig = _figure((COLUMN, COLUMN * 1.3))
+        ax, ax2 = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 1.3]})
     else:
         fig, ax2 = ax.figure, None
     ax.errorbar(r, _value(t["v_rotation"]), yerr=_value(t["v_rotation_err"]), color="black", marker="o", ms=3,
@@ -253,10 +238,8 @@ def plot_harmonics(result, ax=None):
 
 def plot_warp(result, ax=None):
     """Tilt and line of nodes (Briggs 1990) as a polar diagram: angle = line of nodes, radius = tilt."""
-    plt = _plt()
     if ax is None:
-        fig = plt.figure(figsize=(COLUMN, COLUMN), layout="constrained")
-        ax = fig.add_subplot(111, projection="polar")
+        ax = _figure((COLUMN, COLUMN)).add_subplot(111, projection="polar")
     fig = ax.figure
     t = result.rings
     tilt, lon = _value(t["warp_tilt"]), _value(t["warp_line_of_nodes"])
@@ -291,10 +274,9 @@ def plot_mass_model(mass_result, ax=None):
 
 def plot_comparison(maps, names, wcs=None, axes=None):
     """Maps side by side on one shared, zero-centred colour scale (residual or difference maps)."""
-    plt = _plt()
     n = len(maps)
     if axes is None:
-        fig = plt.figure(figsize=(PAGE, PAGE / max(n, 2) * 1.05), layout="constrained")
+        fig = _figure((PAGE, PAGE / max(n, 2) * 1.05))
         axes = [fig.add_subplot(1, n, k + 1, projection=wcs) for k in range(n)]
     fig = axes[0].figure
     half = max(np.nanpercentile(np.abs(m), 98) for m in maps if np.isfinite(m).any())
@@ -305,8 +287,8 @@ def plot_comparison(maps, names, wcs=None, axes=None):
     return fig
 
 
-def _summary_page(result, plt):
-    fig = plt.figure(figsize=(8.27, 11.69))
+def _summary_page(result):
+    fig = _figure((8.27, 11.69), layout=None)
     lines = ["tiltedring fit of " + str(result.vmap.source), ""] + result.summary().splitlines()
     d = result.diagnostics
     warp, nc = d.get("warp", {}), d.get("non_circular", {})
@@ -334,13 +316,12 @@ def _summary_page(result, plt):
 
 def write_report(result, path, png_folder=None) -> list:
     """Write ``report.pdf`` (summary page, maps, geometry and curve, slice/harmonics/warp); PNGs on request."""
-    plt = _plt()
     from matplotlib.backends.backend_pdf import PdfPages
 
     from ..io.atomic import atomic_path
 
-    pages = [("summary", _summary_page(result, plt)), ("maps", plot_maps(result))]
-    fig = plt.figure(figsize=(PAGE, PAGE * 0.8), layout="constrained")
+    pages = [("summary", _summary_page(result)), ("maps", plot_maps(result))]
+    fig = _figure((PAGE, PAGE * 0.8))
     grid = fig.add_gridspec(3, 2)
     geo_axes = [fig.add_subplot(grid[k, 0]) for k in range(3)]
     for ax in geo_axes[1:]:
@@ -348,7 +329,7 @@ def write_report(result, path, png_folder=None) -> list:
     plot_geometry(result, axes=geo_axes)
     plot_rotation_curve(result, ax=fig.add_subplot(grid[:, 1]))
     pages.append(("profiles", fig))
-    fig = plt.figure(figsize=(PAGE * 1.3, PAGE * 0.45), layout="constrained")
+    fig = _figure((PAGE * 1.3, PAGE * 0.45))
     plot_major_axis_slice(result, ax=fig.add_subplot(1, 3, 1))
     plot_harmonics(result, ax=fig.add_subplot(1, 3, 2))
     plot_warp(result, ax=fig.add_subplot(1, 3, 3, projection="polar"))
@@ -363,6 +344,4 @@ def write_report(result, path, png_folder=None) -> list:
             out = f"{png_folder}/report_{name}.png"
             page.savefig(out, dpi=150)
             written.append(out)
-    for _, page in pages:
-        plt.close(page)
     return written

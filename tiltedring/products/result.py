@@ -25,7 +25,7 @@ from astropy import units as u
 from astropy.table import QTable
 
 from ..diagnostics import flags as ringflags
-from ..fitting.kinematics import PARAMETERS, UNITS
+from ..fitting.parameters import SPEEDS, Parameter
 
 __all__ = ["FitResult", "stage_table", "write_table", "plain_table", "ERROR_COLUMNS"]
 
@@ -51,14 +51,14 @@ def stage_table(vmap, layout, solutions, ring_flags) -> QTable:
     par = np.array([s.params for s in solutions])
     err = np.array([s.errors for s in solutions])
     failed = np.array(["fit_failed" in f for f in ring_flags])
-    for k, name in enumerate(PARAMETERS):
-        if name == "v_radial" and not any(s.free[k] for s in solutions):
+    for p in Parameter:
+        if p is Parameter.v_radial and not any(s.free[p] for s in solutions):
             continue
-        values = par[:, k].copy()
-        if name in ("v_rotation", "v_radial"):
+        values = par[:, p].copy()
+        if p in SPEEDS:
             values[failed] = np.nan
-        t[name] = values * u.Unit(UNITS[name])
-        t[f"{name}_err"] = err[:, k] * u.Unit(UNITS[name])
+        t[p.name] = values * u.Unit(p.unit)
+        t[f"{p.name}_err"] = err[:, p] * u.Unit(p.unit)
     t["n_pixels"] = np.array([s.n_pixels for s in solutions])
     t["coverage"] = np.array([s.coverage for s in solutions])
     t["chi2_reduced"] = np.array([s.chi2_reduced for s in solutions])
@@ -165,7 +165,7 @@ class FitResult:
             "stages": stage_summaries,
             "statistics": self.statistics(),
             "error_columns": ERROR_COLUMNS,
-            "flag_vocabulary": ringflags.FLAGS,
+            "flag_vocabulary": ringflags.vocabulary(),
             "cautions": self.cautions,
         }
 
