@@ -214,6 +214,7 @@ def test_gzip_compressed_fits_is_read(field, tmp_path, quiet):
     ({"CDELT2": "NaN"}, ["CDELT2"]),
     ({"CRVAL1": "12h30m"}, ["CRVAL1", "not a finite number"]),  # issue: taken as 0
     ({"CDELT1": 0.0}, ["singular"]),
+    ({"CD1_1": 1e-4, "CD1_2": 1e-4, "CD2_1": 1e-4, "CD2_2": 1e-4}, ["singular"]),
     ({"BMAJ": "big"}, ["beam major axis 'big'"]),
     ({"BMAJ": "NaN"}, ["beam major axis"]),
     ({"BPA": "north"}, ["beam position angle 'north'"]),

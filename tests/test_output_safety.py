@@ -102,6 +102,29 @@ def test_an_output_that_is_a_file_a_link_or_too_long_is_refused(small_map, tmp_p
     assert "is a file" in capsys.readouterr().err
 
 
+def test_a_parent_that_cannot_be_written_is_refused_before_any_work(small_map, tmp_path, monkeypatch, capsys):
+    """Simulated: the tests run as root, whom file modes do not stop, so opening the claim is made to fail."""
+    import errno
+
+    real_open = os.open
+
+    def read_only(path, flags, *args):
+        if str(path).endswith(".claim"):
+            raise OSError(errno.EROFS, "Read-only file system", str(path))
+        return real_open(path, flags, *args)
+
+    monkeypatch.setattr(os, "open", read_only)
+    monkeypatch.setattr(jobs, "read_maps", lambda job: pytest.fail("work started before the refusal"))
+    assert main(["fit", str(small_map), "--out", str(tmp_path / "fit"), *FAST]) == 2
+    assert "read-only file system" in capsys.readouterr().err
+
+
+def test_odd_output_names_are_refused_cleanly(small_map, tmp_path, capsys):
+    for out in ("", "a\0b"):
+        assert main(["fit", str(small_map), "--out", out, *FAST]) == 2
+        assert "Traceback" not in capsys.readouterr().err
+
+
 # ---------------------------------------------------------------------------------------------- rule 2
 def test_overwrite_replaces_only_a_folder_the_tool_wrote(small_map, tmp_path, capsys):
     mine = tmp_path / "papers"

@@ -25,6 +25,8 @@ def check_input_file(path, role: str = "input file") -> Path:
     """``path`` as a :class:`Path` when it is a readable, non-empty regular file; else :class:`InputError`."""
     if path is None or not str(path).strip():
         raise InputError(f"{role}: no file name given")
+    if "\0" in str(path):
+        raise InputError(f"{role} {str(path)!r}: the name holds a NUL character; give a plain file name")
     path = Path(path)
     try:
         mode = os.stat(path).st_mode

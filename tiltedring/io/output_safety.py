@@ -144,7 +144,7 @@ def paths_of(values) -> list:
     for value in values:
         if isinstance(value, (list, tuple)):
             out += paths_of(value)
-        elif isinstance(value, (str, os.PathLike)) and str(value) and os.path.exists(value):
+        elif isinstance(value, (str, os.PathLike)) and str(value) and "\0" not in str(value) and os.path.exists(value):
             out.append(Path(value))
     return out
 
@@ -177,6 +177,8 @@ def _protected(folder: Path) -> str | None:
 def _validate_path(folder: Path) -> None:
     if not str(folder).strip():
         raise InputError("the output folder name is empty; give --out FOLDER")
+    if "\0" in str(folder):
+        raise InputError("the output folder name holds a NUL character; give a plain folder name")
     for part in folder.parts:
         if len(part.encode("utf-8", "surrogateescape")) > MAX_NAME_BYTES:
             raise InputError(f"output folder {folder}: the name {part[:40]!r}... is longer than {MAX_NAME_BYTES} bytes, "
