@@ -320,3 +320,15 @@ def test_a_map_of_one_row_is_refused(field, tmp_path, capsys):
     """Issue: a 128x1 map was fitted to inclination 9.1e5 deg with exit 0."""
     path = _variant(field, tmp_path, "strip", data=field.velocity_hdu.data[20:21, :])
     _refused(["fit", str(path), "--out", str(tmp_path / "o"), *FAST], capsys, "too few")
+
+
+def test_an_error_map_of_fill_values_is_refused(field, small_map, tmp_path, capsys):
+    fits.PrimaryHDU(np.full((48, 48), 1e30, np.float32), header=field.velocity_hdu.header).writeto(tmp_path / "e.fits")
+    _refused(["fit", str(small_map), "--error-map", str(tmp_path / "e.fits"), "--out", str(tmp_path / "o"), *FAST],
+             capsys, "no pixel with both a finite velocity and a positive error")
+
+
+def test_a_map_without_rotation_gets_a_caution(field, tmp_path):
+    path = _variant(field, tmp_path, "flat", data=np.full((48, 48), 1450.0, np.float32), BUNIT="m/s")
+    with pytest.warns(FitCaution, match="span only"):
+        read_velocity_map(path)

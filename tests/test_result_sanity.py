@@ -286,3 +286,14 @@ def test_compare_refusals(field, tmp_path, capsys):
         err = capsys.readouterr().err
         assert words in err and "Traceback" not in err
     assert not (tmp_path / "o").exists()
+
+
+def test_disc_wide_position_angles_are_medians_on_the_circle():
+    """Rings either side of north (359 and 1 deg) are neighbours: the disc-wide value is near 0, not 180."""
+    from tiltedring.products.sanity import angle_median
+
+    assert angle_median([358.0, 359.0, 0.0, 1.0, 2.0]) == pytest.approx(0.0, abs=1e-9)
+    assert angle_median([10.0, 20.0, 30.0]) == 20.0  # no wrap: the plain median, exactly
+    assert angle_median([350.0, 10.0, 20.0]) == pytest.approx(10.0, abs=1e-9)
+    assert 0.0 <= angle_median([359.0, 1.0]) < 360.0
+    assert np.isnan(angle_median([np.nan]))

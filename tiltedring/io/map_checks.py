@@ -13,8 +13,8 @@ pixels to distinct sky positions, a beam in the right unit, and velocities a dis
   line-of-sight velocities of one galaxy span well under 3000 km/s. A map whose central 96 per cent
   (2nd to 98th percentile) spans more is refused with the unit hint (values in m/s labelled km/s);
   single pixels that are faster than light or lie more than 3000 km/s from the median are blanked
-  with a caution (fill values such as 1e30). Values that span less than 2 km/s in a map labelled
-  m/s get a caution (km/s labelled m/s).
+  with a caution (fill values such as 1e30). Values that span less than 2 km/s get a caution
+  (km/s labelled or stated as m/s, or a map without rotation).
 - **The data's footprint**: valid pixels that lie along a line (the smaller principal spread of
   their positions under 0.6 pixel, e.g. a map of one or two rows) cannot constrain a disc's geometry.
 - **Integer maps** whose fill value has no ``BLANK`` keyword: the most negative integer of the
@@ -130,10 +130,10 @@ def plausible_velocities(data, role: str, name: str, unit_stated: bool, bunit: s
         _caution(f"{role} {name}: {int(wild.sum())} pixel(s) faster than light or more than {MAX_SPREAD:g} km/s from "
                  f"the median ({centre:.1f} km/s) were blanked (fill values or artefacts)", notes)
         data = np.where(wild, np.nan, data)
-    if not unit_stated and bunit and bunit.strip().lower() in ("m/s", "m s-1", "m.s-1", "m s^-1") and \
-            high - low < 2.0 and values.size > 10:
-        _caution(f"{role} {name}: its velocities span only {high - low:.3g} km/s with BUNIT {bunit!r}; if the map is "
-                 "in km/s, give --velocity-unit km/s", notes)
+    if high - low < 2.0 and values.size > 10 and (unit_stated or bunit):
+        said = "the unit you stated" if unit_stated else f"BUNIT {bunit!r}"
+        _caution(f"{role} {name}: in {said} its velocities span only {high - low:.3g} km/s; no rotation is measurable "
+                 "at that spread: if the map is in km/s rather than m/s, give --velocity-unit km/s", notes)
     return data
 
 

@@ -336,8 +336,9 @@ def _celestial_wcs(header, data_shape, role: str = "map", name: str = ""):
         except Exception as exc:
             if celestial:
                 raise InputError(f"{role} {name}: its celestial WCS cannot be read ({str(exc).splitlines()[0][:160]}); "
-                                 "a CDELT or CD entry of 0 makes it singular: correct the header, or remove the WCS "
-                                 "and give --pixel-scale") from None
+                                 "e.g. a singular pixel matrix (a CDELT or CD entry of 0) or a declination beyond +-90 "
+                                 "deg: correct the header, "
+                                 "or remove the WCS and give --pixel-scale") from None
             return None
     if not wcs.has_celestial or sorted((wcs.wcs.lng, wcs.wcs.lat)) != [0, 1]:
         return None
@@ -456,8 +457,19 @@ def _velocity_like(source, role, vmap, own_unit, velocity_unit, notes):
     Its unit: ``own_unit`` if given, else its BUNIT, else the velocity map's stated unit."""
     data, header, name = load_image(source, role)
     unit = own_unit if own_unit is not None else (velocity_unit if not header.get("BUNIT") else None)
+    from .map_checks import SPEED_OF_LIGHT
+
     data = data * _velocity_factor(header, unit, name, role)
-    return _finite_check(regrid(data, header, vmap, role, name, notes), role, name, notes), name
+    data = _finite_check(regrid(data, header, vmap, role, name, notes), role, name, notes)
+    with np.errstate(invalid="ignore"):
+        wild = np.abs(data) >= SPEED_OF_LIGHT
+    if wild.any():
+        msg = (f"{role} {name}: {int(wild.sum())} pixel(s) at or beyond the speed of light are treated as blank "
+               "(fill values?)")
+        notes.append(msg)
+        warnings.warn(msg, FitCaution, stacklevel=3)
+        data = np.where(wild, np.nan, data)
+    return data, name
 
 
 def read_velocity_map(

@@ -118,9 +118,12 @@ class FitResult:
         """Disc-wide geometry: centre and systemic velocity, median position angle and inclination."""
         t = self.rings
         out = {}
+        from .sanity import angle_median
+
         for name in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination"):
             col = np.asarray(t[name].value if hasattr(t[name], "value") else t[name], float)
-            out[name] = float(np.nanmedian(col))
+            median = angle_median if name in ("position_angle", "ra_center") else np.nanmedian
+            out[name] = float(median(col)) if np.isfinite(col).any() else float("nan")
         out["profile"] = self.diagnostics.get("warp", {}).get("profile", "constant")
         return out
 
@@ -132,6 +135,8 @@ class FitResult:
 
         from .. import __version__
 
+        from .sanity import angle_median
+
         stage_summaries = {}
         for name, table in self.stages.items():
             ok = np.isfinite(np.asarray(table["v_rotation"].value))
@@ -139,7 +144,7 @@ class FitResult:
                 "n_rings": len(table),
                 "n_fitted": int(ok.sum()),
                 "median_chi2_reduced": float(np.nanmedian(table["chi2_reduced"])) if ok.any() else None,
-                "median_position_angle": float(np.nanmedian(table["position_angle"].value)),
+                "median_position_angle": float(angle_median(table["position_angle"].value)),
                 "median_inclination": float(np.nanmedian(table["inclination"].value)),
             }
         return {

@@ -23,10 +23,24 @@ import numpy as np
 from ..diagnostics import flags as ringflags
 from ..errors import ResultNotPhysical
 
-__all__ = ["check_physical", "ill_conditioned"]
+__all__ = ["check_physical", "ill_conditioned", "angle_median"]
 
 SPEED_OF_LIGHT = 299792.458  # km/s (astropy.constants.c)
 ERROR_LIMIT = 100.0  # km/s: a v_rotation error beyond both this and |v_rotation| measures nothing
+
+
+def angle_median(degrees) -> float:
+    """Median of angles (deg) in [0, 360), taken about their circular mean so that values either side of
+    0/360 (359 and 1) count as neighbours; NaN when none is finite."""
+    a = np.asarray(degrees, float)
+    a = a[np.isfinite(a)]
+    if a.size == 0:
+        return float("nan")
+    if np.ptp(a) <= 180.0:  # no neighbours across 0/360: the plain median
+        return float(np.median(a))
+    rad = np.radians(a)
+    centre = np.degrees(np.arctan2(np.mean(np.sin(rad)), np.mean(np.cos(rad))))
+    return float((centre + np.median((a - centre + 180.0) % 360.0 - 180.0)) % 360.0 % 360.0)
 
 
 def _values(table, name):
