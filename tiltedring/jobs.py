@@ -169,11 +169,11 @@ def read_maps(job: Job):
 
 def read_job_maps(job: Job) -> tuple:
     """Steps read and bin: (the job's :class:`.io.maps.VelocityMap`, the :class:`.io.velocity_fields.VelocityMaps`
-    made from it when ``velocity_map`` is a spectral cube, else None)."""
+    made from it and the :class:`.io.cube.LineCube` when ``velocity_map`` is a spectral cube, else None, None)."""
     from .io.binning import bin_map, check_memory
     from .io.maps import read_velocity_map
 
-    cube_maps = cube_velocity_maps(job)
+    cube_maps, cube = cube_velocity_maps(job)
     if cube_maps is not None:
         vmap = cube_maps.to_velocity_map(beam=job.inputs.beam)
     else:
@@ -181,11 +181,11 @@ def read_job_maps(job: Job) -> tuple:
     if job.inputs.bin is not None:
         vmap = bin_map(vmap, job.inputs.bin)
     check_memory(vmap, options=job.fit)
-    return vmap, cube_maps
+    return vmap, cube_maps, cube
 
 
 def cube_velocity_maps(job: Job):
-    """Velocity maps made from the job's input when it is a spectral cube (:mod:`.io.velocity_fields`), else None.
+    """(velocity maps, the cube) when the job's input is a spectral cube (:mod:`.io.velocity_fields`), else (None, None).
 
     Map inputs that the cube replaces are refused, and so are cube options given for a 2-D map."""
     from .io.cube import LineCube, looks_like_cube
@@ -195,7 +195,7 @@ def cube_velocity_maps(job: Job):
         if job.cube != CubeOptions():
             given = [k for k, v in job.cube.__dict__.items() if v != getattr(CubeOptions(), k)]
             raise InputError(f"cube option(s) {', '.join(given)} given, but {source} is not a spectral cube")
-        return None
+        return None, None
     replaced = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale")
                 if getattr(job.inputs, k) is not None]
     if replaced:
@@ -203,7 +203,34 @@ def cube_velocity_maps(job: Job):
                          "be given; make maps with 'tiltedring maps' and fit those to use your own")
     from .io.velocity_fields import make_velocity_maps
 
-    return make_velocity_maps(source, **job.cube.map_arguments())
+    cube = read_job_cube(job)
+    return make_velocity_maps(cube, **job.cube.map_arguments()), cube
+
+
+def read_job_cube(job: Job):
+    """The job's input as a :class:`.io.cube.LineCube` (read with the cube options; a LineCube is kept)."""
+    from .io.cube import LineCube, read_cube
+
+    if isinstance(job.velocity_map, LineCube):
+        return job.velocity_map
+    arguments = job.cube.map_arguments()
+    return read_cube(job.velocity_map, brightness_unit=arguments["brightness_unit"],
+                     rest_frequency=arguments["rest_frequency"], convention=arguments["convention"])
+
+
+def curve_from_cube(job: Job, result, cube) -> None:
+    """Step "curve from the cube" (cube inputs, unless ``curve_from_cube`` is off): the inner rings refitted on
+    the cube, the model cube made (:mod:`.pipeline.cube_curve`). The cube is the one the maps were made
+    from; excluded velocity ranges are left out of the fit."""
+    if cube is None or not job.cube.curve_from_cube:
+        return
+    from .pipeline.cube_curve import excluded_channel_mask, refit_curve_on_cube
+
+    if result.vmap.shape != cube.data.shape[1:]:
+        raise InputError("the curve cannot be fitted on the cube when its maps were binned (bin); leave out bin, "
+                         "or turn the cube fit off (--no-curve-from-cube)")
+    refit_curve_on_cube(result, cube, within_beams=job.cube.cube_fit_beams, response=job.cube.channel_response,
+                        channels=excluded_channel_mask(cube, job.cube.exclude_velocities))
 
 
 def input_record(job: Job, cube_maps=None) -> dict:
@@ -274,6 +301,12 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
                 write_table(table, tmp / f"stage_{name}.ecsv")
         write_map(tmp / "model.fits", result.model, result.vmap, extra={"ORIGIN": "tiltedring model field"})
         write_map(tmp / "residual.fits", result.residual, result.vmap, extra={"ORIGIN": "tiltedring data - model"})
+        if getattr(result, "model_cube", None) is not None:
+            from .io.cube_files import write_cube
+
+            write_cube(tmp / "model_cube.fits", result.model_cube, result.cube, "tiltedring model cube")
+            write_cube(tmp / "residual_cube.fits", result.cube.data - result.model_cube, result.cube,
+                       "tiltedring data - model cube")
         curve.write(tmp / "curve.ecsv")
         if gas is not None:
             write_table(gas, tmp / "gas.ecsv", comment=gas.meta.get("comment"))
@@ -357,15 +390,17 @@ def _broke_down(job: Job, exc: Exception):
 
 
 def _fit_and_curve(job: Job):
-    """Steps read, bin, fit and curve: (result, curve, the maps made from a cube or None)."""
+    """Steps read, bin, fit (and the curve from the cube) and curve: (result, curve, the maps made from a cube or
+    None)."""
     import numpy as np
 
     from .pipeline.staged import fit_velocity_map
     from .products.sanity import check_physical
 
-    vmap, cube_maps = read_job_maps(job)
+    vmap, cube_maps, cube = read_job_maps(job)
     try:
         result = fit_velocity_map(vmap, job.fit)
+        curve_from_cube(job, result, cube)
     except (ZeroDivisionError, FloatingPointError, np.linalg.LinAlgError) as exc:
         _broke_down(job, exc)
     check_physical(result)

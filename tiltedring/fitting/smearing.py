@@ -63,11 +63,14 @@ class BeamKernel:
         self.transfer = np.exp(-2 * np.pi**2 * quad)
         self._last_norm = None
 
-    def __call__(self, image):
+    def __call__(self, image, workers: int = -1):
+        """``image`` (ny, nx) convolved with the beam; a stack (..., ny, nx), e.g. the channels of a cube, is
+        convolved plane by plane. NaN counts as 0. ``workers``: FFT threads (each plane's transform is the same
+        whatever their number)."""
         ny, nx = self.shape
-        spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, workers=-1)
+        spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, axes=(-2, -1), workers=workers)
         spectrum *= self.transfer
-        return fft.irfft2(spectrum, s=self.padded, workers=-1)[:ny, :nx].copy()
+        return fft.irfft2(spectrum, s=self.padded, axes=(-2, -1), workers=workers)[..., :ny, :nx].copy()
 
     def normalisation(self, intensity, inside):
         """G * (I on the modelled pixels), reused while I and the footprint ``inside`` stay the same (the

@@ -32,6 +32,7 @@ AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
 HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
 EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
+CHANNEL_RESPONSE_NAMES = ("boxcar", "hanning")  # fitting.cube_model.CHANNEL_RESPONSES
 
 SPEED_OF_LIGHT = 299792.458  # km/s (CODATA, as astropy.constants.c)
 STARTING_BOUNDS = {
@@ -301,6 +302,16 @@ class CubeOptions:
     velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
                                              help="velocities in this convention (default: the cube's own; radio "
                                                   "for a frequency axis, optical for a wavelength axis)")
+
+    curve_from_cube: bool = option(True, group="cube",
+                                   help="skip refitting the inner rings' rotation speed and dispersion on the cube "
+                                        "itself (on by default for cubes; also makes model_cube.fits)")
+    cube_fit_beams: float = option(4.0, group="cube", metavar="BEAMS", bounds=Bounds(above=0, maximum=1000),
+                                   help="rings whose radius is within this many beams are fitted on the cube; the "
+                                        "others keep the map's rotation speed")
+    channel_response: str = option("boxcar", group="cube", choices=CHANNEL_RESPONSE_NAMES,
+                                   help="spectral response of a channel in the model cube: boxcar (one channel "
+                                        "wide) or hanning (boxcar then Hanning-smoothed, for Hanning-smoothed cubes)")
 
     def __post_init__(self):
         validate(self)

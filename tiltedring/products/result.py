@@ -9,6 +9,8 @@ renamed into place once every file, the report included, is written:
 - ``gas.ecsv``: gas surface density on the rings (intensity map and distance given; :mod:`..massmodel.gas`)
 - ``stage_free.ecsv``, ``stage_centred.ecsv``: the earlier stages' tables
 - ``model.fits``, ``residual.fits``: full-size maps on the input grid (input WCS, BUNIT km/s)
+- ``model_cube.fits``, ``residual_cube.fits`` (cube inputs): the model cube of the final rings and
+  data minus model, on the cube's grid and channels, in the cube's unit (:mod:`..fitting.cube_model`)
 - ``report.pdf`` (on request): summary page and figures (:mod:`.plotting`)
 - ``fit.json``: the run record (inputs with checksums, options, versions, first guess, stage
   summaries, global statistics, cautions, what each error column means)
@@ -99,6 +101,8 @@ class FitResult:
     diagnostics: dict = field(default_factory=dict)
     inputs: dict = field(default_factory=dict)
     timings: dict = field(default_factory=dict)  # wall seconds per step of the fit (not written to files)
+    cube: object = None  # the io.cube.LineCube the maps came from, when the curve was refitted on it
+    model_cube: np.ndarray | None = None  # the observed model cube of the final rings (fitting.cube_model)
 
     # ------------------------------------------------------------------ summaries
     def statistics(self) -> dict:

