@@ -466,7 +466,7 @@ def _claimed(args):
     out = getattr(args, "out", None)
     if out is None or args.command == "batch":
         return nullcontext()
-    inputs = [value for key, value in vars(args).items() if key != "out"]
+    inputs = [value for key, value in vars(args).items() if key not in ("out", "argv")]  # argv holds --out itself
     return claim_output(out, getattr(args, "overwrite", False), inputs, command=f"tiltedring {args.command}")
 
 
