@@ -274,7 +274,7 @@ def test_compare_refusals(field, tmp_path, capsys):
     far["CRVAL1"] = (far["CRVAL1"] + 40.0) % 360
     fits.PrimaryHDU(hdu.data, header=far).writeto(tmp_path / "far.fits")
     a, b = str(tmp_path / "a.fits"), str(tmp_path / "far.fits")
-    cases = [([a, b], "have no pixel with values in both"),
+    cases = [([a, b], "do not overlap"),
              ([a, a, "--names", "x"], "1 name(s) for 2 maps"),
              ([a, a, "--names", "x,x"], "its own non-empty name"),
              ([a, a, "--rings", str(tmp_path / "none.ecsv")], "does not exist"),
