@@ -88,8 +88,9 @@ def test_report_has_readable_pages(tmp_path, demo_fields):
 
 def test_no_report_skips_it(tmp_path, demo_fields):
     out = tmp_path / "fit"
-    assert main(["fit", str(demo_fields / "calloway_velocity.fits"), "--resamples", "0", "--no-report", "--out",
-                 str(out), "-q"]) == 0
+    # without the beam correction, which diverges on this field until issue 14 lands (an unphysical result exits 1)
+    assert main(["fit", str(demo_fields / "calloway_velocity.fits"), "--resamples", "0", "--no-report",
+                 "--no-beam-correction", "--out", str(out), "-q"]) == 0
     assert not (out / "report.pdf").exists()
 
 

@@ -111,8 +111,10 @@ def test_same_command_twice_gives_identical_outputs(tmp_path, demo_fields):
     outs = []
     for k in range(2):
         out = tmp_path / f"run{k}"
+        # without the beam correction, which diverges on this field until issue 14 lands (its unphysical
+        # result now exits 1: tests/test_result_sanity.py)
         assert main(["fit", str(demo_fields / "calloway_velocity.fits"), "--resamples", "5", "--no-report",
-                     "--out", str(out), "-q"]) == 0
+                     "--no-beam-correction", "--out", str(out), "-q"]) == 0
         outs.append(out)
     for name in ("rings.ecsv", "curve.ecsv", "stage_free.ecsv"):
         assert (outs[0] / name).read_bytes() == (outs[1] / name).read_bytes(), name

@@ -25,7 +25,7 @@ _EXPORTS = {
     "LineCube": "io.cube", "read_cube": "io.cube", "VelocityMaps": "io.velocity_fields",
     "make_velocity_maps": "io.velocity_fields",
     "FitResult": "products.result", "InputError": "errors", "FitCaution": "errors",
-    "Job": "jobs", "run_job": "jobs",
+    "ResultNotPhysical": "errors", "Job": "jobs", "run_job": "jobs",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import time
 import traceback
 from pathlib import Path
@@ -34,7 +35,8 @@ from .errors import InputError
 
 __all__ = ["read_manifest", "fit_one", "run_batch"]
 
-_ROW_COLUMNS = ("name", "velocity_map")  # the galaxy itself; every other column is a job option
+CATALOGUE_COMMENT = "tiltedring batch catalogue"
+_ROW_COLUMNS = ("name", "velocity_map", "_row")  # the galaxy itself; every other column is a job option
 
 
 def _manifest_columns() -> tuple:
@@ -42,53 +44,75 @@ def _manifest_columns() -> tuple:
     from .jobs import OUTPUT_SWITCHES, job_specs
 
     specs = job_specs()
-    known = set(_ROW_COLUMNS) | set(specs) | set(OUTPUT_SWITCHES)
+    known = {"name", "velocity_map"} | set(specs) | set(OUTPUT_SWITCHES)
     paths = {"velocity_map"} | {name for name, spec in specs.items() if spec.path}
     return known, paths
 
 
 def read_manifest(path) -> list:
-    """Rows of the manifest as dicts with absolute map paths and a unique ``name``."""
-    from astropy.table import Table
+    """Rows of the manifest as dicts with absolute map paths and a checked, unique ``name``.
+
+    Names (given, or the velocity map's file name without ``.fits``) must be single plain path
+    components and unique (:func:`.io.output_safety.check_names`); refusals name the rows.
+    """
+    from .io.input_files import read_table
+    from .io.output_safety import check_names
 
     path = Path(path)
-    if not path.exists():
-        raise InputError(f"manifest {path} does not exist")
-    try:
-        fmt = "ascii.ecsv" if path.suffix == ".ecsv" else "ascii.csv"
-        table = Table.read(path, format=fmt)
-    except Exception as exc:
-        raise InputError(f"cannot read manifest {path}: {exc}; give a CSV or ECSV table") from None
+    fmt = "ascii.ecsv" if path.suffix.lower() == ".ecsv" else "ascii.csv"
+    table = read_table(path, "manifest", fmt)
     if "velocity_map" not in table.colnames:
-        raise InputError(f"manifest {path} has no velocity_map column (one path per galaxy, relative to the manifest)")
+        hint = (" (it has one column: are the columns separated by something other than commas?)"
+                if len(table.colnames) == 1 else "")
+        raise InputError(f"manifest {path} has no velocity_map column{hint}; give one path per galaxy, relative to "
+                         "the manifest, under a header line such as name,velocity_map")
     known, path_columns = _manifest_columns()
     unknown = [c for c in table.colnames if c not in known]
     if unknown:
         raise InputError(f"manifest {path}: unknown column(s) {unknown}; columns are name, velocity_map and the "
                          f"options of 'tiltedring fit' by their run-file names: {', '.join(sorted(known))}")
-    rows, seen = [], set()
+    if len(table) == 0:
+        raise InputError(f"manifest {path} has a header but no rows; add one row per galaxy")
+    rows, labels, missing = [], [], []
     for k, row in enumerate(table):
+        label = f"row {k + 1}" + (f" (line {k + 2})" if fmt == "ascii.csv" else "")
         item = {}
         for name in table.colnames:
             value = row[name]
             if np.ma.is_masked(value) or (isinstance(value, str) and not value.strip()):
                 continue
             item[name] = value.item() if hasattr(value, "item") else value
+        if "velocity_map" not in item:
+            missing.append(label)
+            continue
         for key in path_columns:
             if key in item:
-                item[key] = str((path.parent / str(item[key])).resolve())
-        name = str(item.get("name") or Path(item["velocity_map"]).stem)
-        if name in seen:
-            name = f"{name}_{k}"
-        seen.add(name)
-        item["name"] = name
+                item[key] = str((path.parent / str(item[key]).strip()).resolve())
+        item["name"] = str(item["name"]) if "name" in item else _stem(item["velocity_map"])
         rows.append(item)
+        labels.append(label)
+    if missing:
+        raise InputError(f"manifest {path}: {', '.join(missing)}: no velocity_map; fill in the map of every row or "
+                         "remove the row")
+    check_names([r["name"] for r in rows], labels, where=f"manifest {path}")
+    for row, label in zip(rows, labels):
+        row["_row"] = label
     return rows
+
+
+def _stem(map_path: str) -> str:
+    """A galaxy's default name: its map's file name without .fits, .fits.gz and the like."""
+    name = Path(str(map_path)).name
+    for suffix in (".gz", ".bz2", ".fz", ".fits", ".fit", ".fts"):
+        if name.lower().endswith(suffix) and len(name) > len(suffix):
+            name = name[: -len(suffix)]
+    return name
 
 
 def _key(row: dict, shared: dict) -> str:
     from . import __version__
 
+    row = {k: v for k, v in row.items() if k != "_row"}
     text = json.dumps({"row": row, "shared": shared, "version": __version__}, sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
 
@@ -142,20 +166,25 @@ def _finished(row, shared, out_dir):
         fit = json.loads(record.read_text())
     except (OSError, ValueError):
         return None
-    if fit.get("inputs", {}).get("batch_key") != _key(row, shared):
+    if not isinstance(fit, dict) or not isinstance(fit.get("inputs"), dict) or \
+            fit["inputs"].get("batch_key") != _key(row, shared):
         return None
     from astropy.table import QTable
 
-    rings = QTable.read(folder / "rings.ecsv")
-    g = fit["geometry"]
-    return {"name": row["name"], "status": "ok", "error": "", "seconds": 0.0,
-            **{k: g[k] for k in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
-                                 "inclination")},
-            "v_flat": _v_flat(rings), "cautions": len(fit.get("cautions", [])),
-            "residual_rms": (fit.get("statistics") or {}).get("residual_rms"),
-            "warp": bool(fit.get("warp", {}).get("detected")),
-            "non_circular": bool(fit.get("non_circular", {}).get("detected")),
-            "flags": ";".join(sorted({f for s in rings["flags"] for f in str(s).split(",") if f})), "skipped": True}
+    try:  # a damaged folder is refitted, never fatal to the batch
+        rings = QTable.read(folder / "rings.ecsv", format="ascii.ecsv")
+        g = fit["geometry"]
+        entry = {"name": row["name"], "status": "ok", "error": "", "seconds": 0.0,
+                 **{k: g[k] for k in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
+                                      "inclination")},
+                 "v_flat": _v_flat(rings), "cautions": len(fit.get("cautions", [])),
+                 "residual_rms": (fit.get("statistics") or {}).get("residual_rms"),
+                 "warp": bool(fit.get("warp", {}).get("detected")),
+                 "non_circular": bool(fit.get("non_circular", {}).get("detected")),
+                 "flags": ";".join(sorted({f for s in rings["flags"] for f in str(s).split(",") if f})), "skipped": True}
+    except Exception:
+        return None
+    return entry
 
 
 def _write_catalogue(out_dir, entries):
@@ -177,9 +206,9 @@ def _write_catalogue(out_dir, entries):
     table = Table(data)
     for c, unit in units.items():
         table[c].unit = unit
-    table.meta["comment"] = ("tiltedring batch catalogue; status ok or failed; error gives the reason; cautions: "
-                             "number of cautions in the galaxy's fit.json (-1 for a failed fit); residual_rms: rms of "
-                             "data - model over the modelled pixels")
+    table.meta["comment"] = (CATALOGUE_COMMENT + "; status ok or failed; error gives the reason; cautions: number of "
+                             "cautions in the galaxy's fit.json (-1 for a failed fit); residual_rms: rms of data - model "
+                             "over the modelled pixels")
     with atomic_path(Path(out_dir) / "catalogue.ecsv") as tmp:
         table.write(tmp, format="ascii.ecsv")
 
@@ -207,15 +236,67 @@ class _Counter:
             self.progress.shown = True
 
 
+def check_rows(rows, shared: dict, out_dir, manifest=None) -> None:
+    """Everything about the rows that can be checked before any fit, all rows at once (refusals name them):
+    option values (shared and per row, against the declared options), and each galaxy's folder
+    inside ``out_dir`` (:func:`.io.output_safety.check_output_folder`: a folder written by this tool
+    may be replaced, nothing else; never one holding an input)."""
+    from .io.output_safety import check_output_folder, paths_of
+    from .jobs import Job
+
+    problems = []
+    for row in rows:
+        label = row.get("_row", row["name"])
+        values = dict(shared)
+        values.update({k: v for k, v in row.items() if k not in _ROW_COLUMNS})
+        try:
+            Job.from_values(row["velocity_map"], values, where="column")
+            inputs = paths_of([row["velocity_map"], manifest] + [row[k] for k in _manifest_columns()[1] if k in row])
+            check_output_folder(Path(out_dir) / row["name"], overwrite=True, inputs=inputs)
+        except InputError as exc:
+            problems.append(f"{label} ({row['name']}): {exc}")
+    if problems:
+        shown = "\n  ".join(problems[:20]) + (f"\n  ... and {len(problems) - 20} more" if len(problems) > 20 else "")
+        raise InputError(f"manifest {manifest}: {len(problems)} row(s) cannot be run; nothing was fitted:\n  {shown}")
+
+
+def _check_catalogue(out_dir: Path) -> None:
+    """Refuse to replace a catalogue.ecsv (or anything of that name) this tool did not write."""
+    path = out_dir / "catalogue.ecsv"
+    if not os.path.lexists(path):
+        return
+    try:
+        ours = path.is_file() and not path.is_symlink() and CATALOGUE_COMMENT in path.read_text(errors="replace")[:2000]
+    except OSError:
+        ours = False
+    if not ours:
+        raise InputError(f"{path} exists and was not written by tiltedring batch; it would be replaced by the "
+                         "catalogue: move it away or choose another --out")
+
+
 def run_batch(manifest, out_dir, shared: dict | None = None, workers: int | None = None, scheduler: str | None = None,
               quiet: bool = True) -> dict:
-    """Fit every galaxy of ``manifest`` into ``out_dir`` (module docstring). Returns a summary dict."""
-    import os
+    """Fit every galaxy of ``manifest`` into ``out_dir`` (module docstring). Returns a summary dict.
+
+    Before any fit: the manifest, the options of every row and every galaxy's folder are checked
+    (:func:`check_rows`), and ``out_dir`` is claimed, so a second batch writing it is refused.
+    """
+    from .io.output_safety import claim_output, clean_stale
 
     shared = dict(shared or {})
+    if workers is not None and not (isinstance(workers, int) and 1 <= workers <= 1024):
+        raise InputError(f"--workers {workers}: give a whole number of worker processes from 1 to 1024")
     rows = read_manifest(manifest)
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
+    with claim_output(out_dir, inputs=[manifest], command="tiltedring batch", adding=True):
+        check_rows(rows, shared, out_dir, manifest)
+        _check_catalogue(out_dir)
+        out_dir.mkdir(parents=True, exist_ok=True)
+        clean_stale(out_dir)
+        return _run_rows(rows, shared, out_dir, workers, scheduler, quiet)
+
+
+def _run_rows(rows, shared, out_dir, workers, scheduler, quiet) -> dict:
     entries, todo = {}, []
     for row in rows:
         done = _finished(row, shared, out_dir)
@@ -231,32 +312,7 @@ def run_batch(manifest, out_dir, shared: dict | None = None, workers: int | None
             entries[row["name"]] = fit_one(row, shared, out_dir)
             counter.add(entries[row["name"]])
     elif todo:
-        try:
-            from dask.distributed import Client, LocalCluster, as_completed
-        except ImportError:
-            raise InputError("batch runs use dask.distributed: pip install 'tiltedring[batch]', or run in this "
-                             "process with --workers 1") from None
-
-        cluster = None
-        if scheduler is None:
-            cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, dashboard_address=None)
-            client = Client(cluster)
-        else:
-            client = Client(scheduler)
-        try:
-            futures = {client.submit(fit_one, row, shared, str(out_dir), key=f"fit-{row['name']}-{_key(row, shared)}",
-                                     retries=2, pure=False): row["name"] for row in todo}
-            for future in as_completed(futures):
-                name = futures[future]
-                try:
-                    entries[name] = future.result()
-                except Exception as exc:  # a lost worker after all retries
-                    entries[name] = {"name": name, "status": "failed", "error": f"worker lost: {exc}", "seconds": 0.0}
-                counter.add(entries[name])
-        finally:
-            client.close()
-            if cluster is not None:
-                cluster.close()
+        _run_on_cluster(todo, shared, out_dir, n_workers, scheduler, entries, counter)
     counter.progress.close()
     ordered = [entries[row["name"]] for row in rows]
     _write_catalogue(out_dir, ordered)
@@ -264,3 +320,36 @@ def run_batch(manifest, out_dir, shared: dict | None = None, workers: int | None
     return {"total": len(rows), "skipped": len(rows) - len(todo), "fitted": len(todo),
             "failed": sum(e["status"] != "ok" for e in ordered), "seconds": elapsed,
             "rate_per_minute": len(todo) / elapsed * 60 if elapsed > 0 and todo else None}
+
+
+def _run_on_cluster(todo, shared, out_dir, n_workers, scheduler, entries, counter) -> None:
+    try:
+        from dask.distributed import Client, LocalCluster, as_completed
+    except ImportError:
+        raise InputError("batch runs use dask.distributed: pip install 'tiltedring[batch]', or run in this "
+                         "process with --workers 1") from None
+
+    cluster = None
+    if scheduler is None:
+        cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, dashboard_address=None)
+        client = Client(cluster)
+    else:
+        try:
+            client = Client(scheduler, timeout="15s")
+        except Exception as exc:
+            raise InputError(f"cannot reach the dask scheduler {scheduler!r} ({type(exc).__name__}: {exc}); check the "
+                             "address (tcp://HOST:PORT) or leave out --scheduler to use a local cluster") from None
+    try:
+        futures = {client.submit(fit_one, row, shared, str(out_dir), key=f"fit-{row['name']}-{_key(row, shared)}",
+                                 retries=2, pure=False): row["name"] for row in todo}
+        for future in as_completed(futures):
+            name = futures[future]
+            try:
+                entries[name] = future.result()
+            except Exception as exc:  # a lost worker after all retries
+                entries[name] = {"name": name, "status": "failed", "error": f"worker lost: {exc}", "seconds": 0.0}
+            counter.add(entries[name])
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
 
 EXIT_OK, EXIT_FAILURE, EXIT_BAD_INPUT = 0, 1, 2
 
@@ -175,6 +176,30 @@ def _unit_note(name: str, units: dict) -> str:
     return f" (log10 of {unit})" if name.startswith("log10_") else f" ({unit})"
 
 
+def _check_mass_arguments(args) -> list:
+    """``massmodel``'s numbers checked against their ranges before any work; returns the model names."""
+    from .errors import InputError
+    from .massmodel import MassModelSettings
+    from .pipeline.option_fields import Bounds, check_range
+
+    check_range(args.ml_disc, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-disc", 0.5)
+    check_range(args.ml_bulge, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-bulge", 0.7)
+    if args.disc_scale_length is not None:
+        check_range(args.disc_scale_length, Bounds(above=0, maximum=1000, why="kpc"), "--disc-scale-length")
+    check_range(args.seed, Bounds(minimum=0, maximum=2**32 - 1), "--seed", 0)
+    if args.sample:
+        check_range(args.steps, Bounds(minimum=10, maximum=10**6, why="emcee steps per walker"), "--steps", 1500)
+    models = list(dict.fromkeys(m.strip() for m in args.models.split(",") if m.strip()))
+    if not models:
+        raise InputError(f"--models {args.models!r} names no model; give e.g. --models nfw,burkert,mond")
+    for model in models:
+        try:
+            MassModelSettings(model=model)
+        except InputError as exc:
+            raise InputError(f"--models: {exc}") from None
+    return models
+
+
 def run_massmodel(args) -> int:
     from .errors import InputError
     from .massmodel import (
@@ -186,6 +211,9 @@ def run_massmodel(args) -> int:
         write_results,
     )
 
+    from .massmodel.io import read_gas
+
+    models = _check_mass_arguments(args)
     if args.curve.endswith(".dat") and args.radius_column is None:
         curve, baryons = read_sparc_rotmod(args.curve)
     else:
@@ -195,14 +223,8 @@ def run_massmodel(args) -> int:
     if args.components:
         baryons = read_components(args.components)
     if args.gas:
-        from astropy.table import Table
-
-        from .massmodel import ThinDisc
-
-        gas = Table.read(args.gas, format="ascii.ecsv")
-        baryons.gas = ThinDisc(gas["radius_kpc"], gas["surface_density_gas"], label="gas")
+        baryons.gas = read_gas(args.gas)
     baryons.disc_scale_length = args.disc_scale_length
-    models = [m.strip() for m in args.models.split(",") if m.strip()]
     results = {}
     for model in models:
         settings = MassModelSettings(model=model, ml_mode=args.ml_mode, ml_disc=args.ml_disc, ml_bulge=args.ml_bulge,
@@ -434,8 +456,23 @@ def run_fit(args) -> int:
     return EXIT_OK
 
 
+def _claimed(args):
+    """Claim ``--out`` before any work (:mod:`.io.output_safety`); batch claims its own folder, which it
+    adds to rather than replaces."""
+    from contextlib import nullcontext
+
+    from .io.output_safety import claim_output
+
+    out = getattr(args, "out", None)
+    if out is None or args.command == "batch":
+        return nullcontext()
+    inputs = [value for key, value in vars(args).items() if key not in ("out", "argv")]  # argv holds --out itself
+    return claim_output(out, getattr(args, "overwrite", False), inputs, command=f"tiltedring {args.command}")
+
+
 def main(argv=None) -> int:
-    from .errors import InputError, OutputFolderExists
+    """Run the command; exit codes as the module docstring says, and never a traceback."""
+    from .errors import InputError, OutputFolderExists, ResultNotPhysical
 
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -444,7 +481,8 @@ def main(argv=None) -> int:
         parser.print_help()
         return EXIT_BAD_INPUT
     try:
-        return args.run(args)
+        with _claimed(args):
+            return args.run(args)
     except OutputFolderExists as exc:
         print(f"tiltedring: error: output folder {exc.folder} already exists and is not empty; choose another --out "
               "folder or pass --overwrite to replace it", file=sys.stderr)
@@ -452,8 +490,25 @@ def main(argv=None) -> int:
     except InputError as exc:
         print(f"tiltedring: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except ResultNotPhysical as exc:
+        print(f"tiltedring: failed: {exc}", file=sys.stderr)
+        return EXIT_FAILURE
     except KeyboardInterrupt:
         print("tiltedring: interrupted; no output was left half-written", file=sys.stderr)
+        return EXIT_FAILURE
+    except MemoryError:
+        print("tiltedring: failed: out of memory; bin the map (--bin N) or use fewer rings", file=sys.stderr)
+        return EXIT_FAILURE
+    except OSError as exc:
+        print(f"tiltedring: failed: {exc.strerror or exc} ({exc.filename or 'no file named'}); no output was left "
+              "half-written", file=sys.stderr)
+        return EXIT_FAILURE
+    except Exception as exc:  # a defect: say so in one line rather than a traceback
+        import traceback
+
+        where = traceback.extract_tb(exc.__traceback__)[-1]
+        print(f"tiltedring: failed: unexpected {type(exc).__name__}: {exc} (at {Path(where.filename).name}:"
+              f"{where.lineno}; please report it); no output was left half-written", file=sys.stderr)
         return EXIT_FAILURE
 
 

@@ -20,3 +20,12 @@ class OutputFolderExists(InputError):
         self.folder = folder
         super().__init__(f"output folder {folder} already exists and is not empty; choose another folder or pass "
                          "overwrite=True to replace it")
+
+
+class ResultNotPhysical(RuntimeError):
+    """A fit whose disc-wide result lies outside its physical range (e.g. an inclination outside 0-90
+    deg): nothing is written and the command exits 1. :attr:`result` keeps the fit for inspection."""
+
+    def __init__(self, message: str, result=None):
+        self.result = result
+        super().__init__(message)

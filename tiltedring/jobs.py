@@ -147,13 +147,18 @@ def _load_toml(path) -> dict:
         import tomllib
     except ModuleNotFoundError:  # Python 3.10
         import tomli as tomllib
+    from .io.input_files import read_text
+
+    text = read_text(path, "run file")
     try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise InputError(f"run file {path} does not exist") from None
+        config = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise InputError(f"run file {path} is not valid TOML: {exc}") from None
+        raise InputError(f"run file {path} is not valid TOML: {exc}; see 'tiltedring fit --help' for an example") from None
+    for table, content in config.items():
+        if table in RUN_FILE_TABLES and not isinstance(content, dict):
+            raise InputError(f"run file {path}: {table} must be a table ([{table}] followed by name = value lines), "
+                             f"not a value")
+    return config
 
 
 # ---------------------------------------------------------------------------------------------- the steps
@@ -165,7 +170,7 @@ def read_maps(job: Job):
 def read_job_maps(job: Job) -> tuple:
     """Steps read and bin: (the job's :class:`.io.maps.VelocityMap`, the :class:`.io.velocity_fields.VelocityMaps`
     made from it and the :class:`.io.cube.LineCube` when ``velocity_map`` is a spectral cube, else None, None)."""
-    from .io.binning import bin_map
+    from .io.binning import bin_map, check_memory
     from .io.maps import read_velocity_map
 
     cube_maps, cube = cube_velocity_maps(job)
@@ -175,6 +180,7 @@ def read_job_maps(job: Job) -> tuple:
         vmap = read_velocity_map(job.velocity_map, **job.inputs.read_arguments())
     if job.inputs.bin is not None:
         vmap = bin_map(vmap, job.inputs.bin)
+    check_memory(vmap, options=job.fit)
     return vmap, cube_maps, cube
 
 
@@ -272,14 +278,16 @@ def gas_product(result, curve) -> tuple:
 
 
 def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = None, report: bool = False,
-                     png: bool = False, overwrite: bool = False, cube_maps=None) -> list:
+                     png: bool = False, overwrite: bool = False, cube_maps=None, inputs=()) -> list:
     """Steps report and write: every output into a temporary folder, renamed onto ``folder`` when all
     are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
 
     Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
     ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``; ``report_*.png``
     with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
-    says under ``gas`` whether ``gas.ecsv`` was written and why not.
+    says under ``gas`` whether ``gas.ecsv`` was written and why not. ``inputs``: paths the folder
+    may not be or hold (:mod:`.io.output_safety`; the files named in the result's input record are
+    added).
     """
     from .io.atomic import atomic_folder, write_json
     from .io.maps import write_map
@@ -287,7 +295,8 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
 
     record = result.record()
     record["gas"] = {"written": gas is not None, "note": gas_note}
-    with atomic_folder(folder, overwrite=overwrite) as tmp:
+    inputs = list(inputs) + recorded_paths(result.inputs)
+    with atomic_folder(folder, overwrite=overwrite, inputs=inputs, kind="fit") as tmp:
         write_table(result.rings, tmp / "rings.ecsv")
         for name, table in result.stages.items():
             if name != "final":
@@ -319,9 +328,24 @@ def write_result(result, folder, overwrite: bool = False, curve=None, report: bo
 
     ``curve``: the :class:`.products.curve.RotationCurve` to write (default: one without a distance).
     """
+    from .products.sanity import check_physical
+
+    check_physical(result)
     curve = curve if curve is not None else result.curve()
     gas, note = gas_product(result, curve)
     return write_fit_folder(folder, result, curve, gas, note, report=report, png=png, overwrite=overwrite)
+
+
+def job_inputs(job: Job) -> list:
+    """The files a job reads (the velocity map and every map of its input options)."""
+    from .io.output_safety import paths_of
+
+    return paths_of([job.velocity_map] + [getattr(job.inputs, s.name) for s in field_specs(type(job.inputs)) if s.path])
+
+
+def recorded_paths(inputs: dict) -> list:
+    """The file paths of an input record (``fit.json``'s ``inputs``)."""
+    return [entry["path"] for entry in (inputs or {}).values() if isinstance(entry, dict) and entry.get("path")]
 
 
 def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
@@ -330,26 +354,59 @@ def run_job(job: Job, folder, overwrite: bool = False) -> JobOutcome:
     A spectral cube as ``velocity_map`` is first turned into velocity maps (``job.cube``), written
     into ``folder/maps`` with the rest.
 
-    An existing non-empty ``folder`` is refused before any work unless ``overwrite=True``; nothing
-    is left in ``folder`` when a step fails.
+    The folder is checked and claimed before any work (:mod:`.io.output_safety`): an existing
+    non-empty ``folder`` is refused unless ``overwrite=True`` and written by this tool, a folder
+    holding an input is always refused, and a second run writing the same folder is refused at
+    once. Nothing is left in ``folder`` when a step fails.
     """
     from .errors import FitCaution
-    from .io.atomic import check_output_folder
-    from .pipeline.staged import fit_velocity_map
+    from .io.output_safety import claim_output
 
     folder = Path(folder)
-    check_output_folder(folder, overwrite)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", FitCaution)
-        vmap, cube_maps, cube = read_job_maps(job)
-        result = fit_velocity_map(vmap, job.fit)
-        curve_from_cube(job, result, cube, cube_maps)
-        curve = result.curve(**job.curve.to_dict())
-    if cube_maps is not None:  # the maps' cautions (e.g. a foreground found) reach fit.json and the report
-        result.cautions[:0] = [text for text in cube_maps.record["cautions"] if text not in result.cautions]
-    result.inputs = input_record(job, cube_maps)
-    gas, gas_note = gas_product(result, curve)
-    files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
-                             overwrite=overwrite, cube_maps=cube_maps)
+    inputs = job_inputs(job)
+    with claim_output(folder, overwrite, inputs, command="tiltedring job"):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", FitCaution)
+            result, curve, cube_maps = _fit_and_curve(job)
+        result.inputs = input_record(job, cube_maps)
+        gas, gas_note = gas_product(result, curve)
+        files = write_fit_folder(folder, result, curve, gas, gas_note, report=job.report, png=job.png,
+                                 overwrite=overwrite, cube_maps=cube_maps, inputs=inputs)
     cautions = [str(w.message) for w in caught if issubclass(w.category, FitCaution)]
     return JobOutcome(folder, files, result, curve, gas, gas_note, cautions)
+
+
+def _broke_down(job: Job, exc: Exception):
+    """A fit whose arithmetic broke down: exit 2 when the rings were laid by hand (the usual cause: rings
+    without data), else :class:`.errors.ResultNotPhysical` (exit 1). Never a traceback."""
+    from .errors import ResultNotPhysical
+
+    given = [n for n in ("ring_edges", "first_radius", "max_radius") if getattr(job.fit, n) not in (None, 0, 0.0)]
+    what = f"{type(exc).__name__}: {exc}"
+    if given:
+        raise InputError(f"the fit broke down ({what}) with the rings you laid ({', '.join(given)}): rings that hold no "
+                         "data are the usual cause; give radii inside the valid data of the map") from None
+    raise ResultNotPhysical(f"the fit broke down ({what}); nothing was written. Check the map (units, masking, blank "
+                            "values) or steer the fit with starting values (--inclination, --position-angle, "
+                            "--x-center/--y-center)") from None
+
+
+def _fit_and_curve(job: Job):
+    """Steps read, bin, fit (and the curve from the cube) and curve: (result, curve, the maps made from a cube or
+    None)."""
+    import numpy as np
+
+    from .pipeline.staged import fit_velocity_map
+    from .products.sanity import check_physical
+
+    vmap, cube_maps, cube = read_job_maps(job)
+    try:
+        result = fit_velocity_map(vmap, job.fit)
+        curve_from_cube(job, result, cube, cube_maps)
+    except (ZeroDivisionError, FloatingPointError, np.linalg.LinAlgError) as exc:
+        _broke_down(job, exc)
+    check_physical(result)
+    curve = result.curve(**job.curve.to_dict())
+    if cube_maps is not None:  # the maps' cautions (e.g. a foreground found) reach fit.json and the report
+        result.cautions[:0] = [text for text in cube_maps.record["cautions"] if text not in result.cautions]
+    return result, curve, cube_maps

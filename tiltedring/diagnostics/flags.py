@@ -16,6 +16,8 @@ RING_FLAGS = {
     "low_inclination": "inclination below the low-inclination limit: v_rotation and inclination are degenerate, "
                        "only v_rotation sin i is well measured; v_rotation errors are widened",
     "inside_beam": "ring centre within one beam of the kinematic centre: beam smearing biases v_rotation low",
+    "ill_conditioned": "the ring's fit is ill-conditioned (inclination outside 0-90 deg, or a v_rotation error larger "
+                       "than the speed and 100 km/s): its values are not measurements and are not plotted",
     "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
     "warp": "beyond the warp onset: position angle and inclination follow the warp profile",
 }

@@ -33,7 +33,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import InputError
-from .cube_model import FREE_PER_RING, CubeGrid, model_cube, observe, ring_arrays, sky_cube
+from .cube_model import FREE_PER_RING, CubeGrid, model_cube, observe, sky_cube
 from .geometry import assign_to_rings
 from .kinematics import PARAMETERS, model_field
 from .line_widths import MIN_DISPERSION, line_spread

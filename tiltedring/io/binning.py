@@ -8,6 +8,10 @@ map with 400,000 valid pixels peaks at 0.39 GB in all, a 2048x2048 map at 0.87 G
 estimate exceeds the memory available is refused before anything is computed, with the binning
 factor that would fit.
 
+The ring layout is checked at the same time (:func:`ring_count`): rings narrower than a tenth of a
+pixel, radii far beyond the map's farthest pixel (even deprojected at 85 deg inclination), or more
+than ``MAX_RINGS`` rings are refused before any work, with the option to change.
+
 Binning averages f x f blocks of pixels: a well-sampled map (several pixels across the beam) loses
 nothing a tilted-ring fit can use as long as about two binned pixels still span the beam FWHM. The
 velocity of a block is the intensity-weighted mean of its valid pixels (plain mean without an
@@ -32,12 +36,61 @@ __all__ = ["bin_map", "memory_estimate", "available_memory", "check_memory"]
 
 BYTES_PER_VALID_PIXEL = 350
 BYTES_PER_MAP_PIXEL = 60
+BYTES_PER_RING = 200_000  # a generous bound, not measured: a ring's rows in every table, solutions, diagnostics
+MAX_RINGS = 2000
+MIN_RING_WIDTH = 0.1  # pixels
+MAX_INCLINATION = 85.0  # deg: the disc-plane reach of a map's farthest pixel is computed for this inclination
 
 
-def memory_estimate(vmap: VelocityMap) -> float:
-    """Bytes the fit of ``vmap`` needs beyond the interpreter (module docstring)."""
+def memory_estimate(vmap: VelocityMap, n_rings: int = 0) -> float:
+    """Bytes the fit of ``vmap`` with ``n_rings`` rings needs beyond the interpreter (module docstring)."""
     ny, nx = vmap.shape
-    return BYTES_PER_VALID_PIXEL * float(vmap.valid.sum()) + BYTES_PER_MAP_PIXEL * float(ny * nx)
+    return (BYTES_PER_VALID_PIXEL * float(vmap.valid.sum()) + BYTES_PER_MAP_PIXEL * float(ny * nx)
+            + BYTES_PER_RING * float(n_rings))
+
+
+def ring_count(vmap: VelocityMap, options) -> int:
+    """How many rings ``options`` (a :class:`..pipeline.options.FitOptions`) lay on ``vmap``, an upper estimate;
+    a layout no fit can use is refused first (module docstring)."""
+    from ..errors import InputError
+    from ..fitting.rings import parse_width
+
+    pixel = vmap.pixel_scale
+    beam = vmap.beam.fwhm if vmap.beam is not None else None
+    reach = 0.5 * float(np.hypot(*vmap.shape)) * pixel / np.cos(np.radians(MAX_INCLINATION))
+    if options.ring_edges is not None:
+        widths, first, r_max = np.diff(options.ring_edges), options.ring_edges[0], options.ring_edges[-1]
+        width = float(np.min(widths))
+    else:
+        width = parse_width(options.ring_width, pixel, beam) if options.ring_width is not None else (
+            beam if beam is not None else 2.0 * pixel)
+        first = parse_width(options.first_radius, pixel, beam) if options.first_radius else 0.0
+        given = options.max_radius is not None
+        r_max = parse_width(options.max_radius, pixel, beam) if given else min(reach, 0.5 * float(np.hypot(*vmap.shape))
+                                                                               * pixel)
+    if first >= reach or r_max > reach:
+        where = ("the ring edges reach" if options.ring_edges is not None else "the first radius lies" if first >= reach
+                 else "the maximum radius lies")
+        raise InputError(f"{where} ({first if first >= reach else r_max:.4g} arcsec) far beyond the map: even for "
+                         f"a disc at {MAX_INCLINATION:g} deg inclination no pixel is more than {reach:.4g} arcsec from "
+                         "the centre in the disc plane; give radii within the data")
+    if width < MIN_RING_WIDTH * pixel:
+        why = (f" (the default width is one beam: is the beam, {beam:.3g} arcsec, in the right unit? --beam takes "
+               "arcsec)" if options.ring_width is None and options.ring_edges is None and beam is not None else "")
+        raise InputError(f"rings {width:.3g} arcsec wide are narrower than a tenth of a pixel ({pixel:.3g} arcsec){why}: "
+                         "they would hold almost no pixels; give a ring width of a pixel or more (e.g. --ring-width "
+                         "2pix, or 0.5beam)")
+    if options.ring_edges is not None:
+        count = len(options.ring_edges) - 1
+    elif options.spacing == "logarithmic":
+        count = int(np.ceil(np.log1p(max(r_max - first, 0.0) * (options.growth - 1) / width) / np.log(options.growth)))
+    else:
+        count = int(np.ceil(max(r_max - first, 0.0) / width))
+    if count > MAX_RINGS:
+        raise InputError(f"this layout asks for about {count} rings ({width:.3g} arcsec wide out to {r_max:.4g} arcsec); "
+                         f"the fit takes at most {MAX_RINGS}: give wider rings (--ring-width) or a smaller "
+                         "--max-radius")
+    return count
 
 
 def available_memory() -> float | None:
@@ -55,10 +108,12 @@ def available_memory() -> float | None:
         return None
 
 
-def check_memory(vmap: VelocityMap, available: float | None = None) -> None:
-    """Refuse a map whose fit would not fit in memory, naming the binning factor that would."""
+def check_memory(vmap: VelocityMap, available: float | None = None, options=None) -> None:
+    """Refuse a map whose fit would not fit in memory, naming the binning factor that would.
+
+    With the fit ``options`` the ring layout is checked and counted too (:func:`ring_count`)."""
     available = available_memory() if available is None else available
-    need = memory_estimate(vmap)
+    need = memory_estimate(vmap, ring_count(vmap, options) if options is not None else 0)
     if available is None or need <= 0.8 * available:
         return
     factor = 2

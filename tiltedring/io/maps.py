@@ -31,6 +31,8 @@ from ..errors import FitCaution, InputError
 __all__ = ["Beam", "VelocityMap", "read_velocity_map", "load_image", "parse_velocity_unit"]
 
 KM_S = u.km / u.s
+_COMPRESSED = (b"\x1f\x8b", b"BZh")  # gzip and bzip2, both read by astropy.io.fits
+_CELESTIAL = ("RA--", "DEC-", "GLON", "GLAT", "ELON", "ELAT", "SLON", "SLAT", "HPLN", "HPLT")
 
 
 @dataclass(frozen=True)
@@ -42,11 +44,12 @@ class Beam:
     position_angle: float = 0.0
 
     def __post_init__(self):
-        if not (np.isfinite(self.major) and np.isfinite(self.minor)) or self.minor <= 0:
-            raise InputError(f"beam axes must be positive numbers of arcsec, got {self.major}, {self.minor}")
-        if self.minor > self.major:
-            object.__setattr__(self, "major", self.minor)
-            object.__setattr__(self, "minor", self.major)
+        from .map_checks import checked_beam
+
+        major, minor, angle = checked_beam(self.major, self.minor, self.position_angle, "beam")
+        object.__setattr__(self, "major", major)
+        object.__setattr__(self, "minor", minor)
+        object.__setattr__(self, "position_angle", angle)
 
     @property
     def area(self) -> float:
@@ -74,10 +77,18 @@ class Beam:
         return cls(*parts)
 
     @classmethod
-    def from_header(cls, header) -> "Beam | None":
-        if "BMAJ" not in header or "BMIN" not in header:
+    def from_header(cls, header, where: str = "map header") -> "Beam | None":
+        """From BMAJ, BMIN (deg) and BPA (deg; 0 when missing); None without BMAJ and BMIN."""
+        from .map_checks import checked_beam
+
+        if "BMAJ" not in header and "BMIN" not in header:
             return None
-        return cls(header["BMAJ"] * 3600.0, header["BMIN"] * 3600.0, float(header.get("BPA", 0.0)))
+        if "BMAJ" not in header or "BMIN" not in header:
+            missing = "BMIN" if "BMAJ" in header else "BMAJ"
+            raise InputError(f"{where}: BMAJ and BMIN describe the beam together but {missing} is missing; add it, "
+                             "or give the beam as --beam MAJ[,MIN[,PA]] in arcsec")
+        major, minor, angle = checked_beam(header["BMAJ"], header["BMIN"], header.get("BPA", 0.0), where)
+        return cls(major * 3600.0, minor * 3600.0, angle)
 
 
 @dataclass
@@ -144,14 +155,41 @@ class VelocityMap:
         return j[0, 0] * dx + j[0, 1] * dy, j[1, 0] * dx + j[1, 1] * dy
 
 
+    @property
+    def celestial_frame(self) -> str | None:
+        """Name of the WCS's celestial frame (``icrs``, ``fk5``, ``galactic``...), None without one."""
+        if self.wcs is None:
+            return None
+        try:
+            return self.wcs.pixel_to_world(0, 0).frame.name
+        except Exception:
+            return None
+
+    def pixel_to_icrs(self, x, y):
+        """ICRS right ascension and declination (deg) of pixel positions, converted from the map's own
+        celestial frame with astropy; NaN without a WCS or where astropy cannot convert."""
+        x, y = np.broadcast_arrays(np.asarray(x, float), np.asarray(y, float))
+        nan = np.full(x.shape, np.nan)
+        if self.wcs is None:
+            return nan, nan.copy()
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                sky = self.wcs.pixel_to_world(x, y).icrs
+            return np.asarray(sky.ra.deg, float), np.asarray(sky.dec.deg, float)
+        except Exception:
+            return nan, nan.copy()
+
     def sky_to_pixel(self, ra: float, dec: float):
-        """Pixel (x, y) of a sky position in deg (needs a WCS)."""
+        """Pixel (x, y) of an ICRS position in deg (needs a WCS; astropy converts to the map's frame)."""
         if self.wcs is None:
             raise InputError("a sky position was given but the map has no celestial WCS; give the centre in pixels")
         from astropy.coordinates import SkyCoord
 
-        frame = self.wcs.pixel_to_world(0, 0).frame.name
-        x, y = self.wcs.world_to_pixel(SkyCoord(ra * u.deg, dec * u.deg, frame=frame))
+        x, y = self.wcs.world_to_pixel(SkyCoord(ra * u.deg, dec * u.deg, frame="icrs"))
+        if not (np.isfinite(x) and np.isfinite(y)):
+            raise InputError(f"the sky position RA {ra}, Dec {dec} deg does not fall on the map's grid; give a "
+                             "position on the map (ICRS, deg) or the centre in pixels")
         return float(x), float(y)
 
     def output_header(self, bunit: str = "km/s") -> fits.Header:
@@ -187,21 +225,17 @@ def open_image(source, role: str = "velocity map", hdu=None):
         header = meta.to_header() if isinstance(meta, WCS) else fits.Header(meta or {})
         return np.asarray(data, dtype=float), header, "array"
     if isinstance(source, (str, Path)):
-        path = Path(source)
-        if not path.exists():
-            raise InputError(f"{role} {path} does not exist")
+        from .input_files import check_input_file
+
+        path = check_input_file(source, role)
         try:
             with open(path, "rb") as fh:
                 start = fh.read(30)
-            if start.startswith(b"\x1f\x8b"):  # gzip-compressed (.fits.gz), which astropy reads as it is
-                import gzip
-
-                with gzip.open(path, "rb") as fh:
-                    start = fh.read(30)
         except OSError as exc:
             raise InputError(f"cannot read {role} {path}: {exc}") from None
-        if not start.startswith(b"SIMPLE  ="):
-            raise InputError(f"{role} {path} is not a FITS file (it does not start with a FITS header); give a FITS image")
+        if not start.startswith((b"SIMPLE  =", *_COMPRESSED)):
+            raise InputError(f"{role} {path} is not a FITS file (it does not start with a FITS header, nor is it "
+                             "gzip- or bzip2-compressed FITS); give a FITS image")
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FITSFixedWarning)
@@ -218,7 +252,7 @@ def open_image(source, role: str = "velocity map", hdu=None):
     if isinstance(source, (fits.PrimaryHDU, fits.ImageHDU, fits.CompImageHDU)):
         if source.data is None:
             raise InputError(f"{role}: the HDU has no image data")
-        return _blank_to_nan(source), source.header.copy(), name
+        return _blank_to_nan(source, role, name), source.header.copy(), name
     raise InputError(f"{role}: cannot read a {type(source).__name__}; give a FITS path, an HDU, or (array, header)")
 
 
@@ -230,14 +264,16 @@ def _pick_hdu(hdul, role, name, hdu):
             raise InputError(f"{role} {name} has no HDU {hdu!r}") from None
         if chosen.data is None or chosen.data.ndim < 2:
             raise InputError(f"{role} {name}: HDU {hdu!r} holds no image")
-        return _blank_to_nan(chosen), chosen.header.copy()
+        return _blank_to_nan(chosen, role, name), chosen.header.copy()
     for h in hdul:
         if getattr(h, "is_image", False) and h.data is not None and h.data.ndim >= 2:
-            return _blank_to_nan(h), h.header.copy()
+            return _blank_to_nan(h, role, name), h.header.copy()
     raise InputError(f"{role} {name} holds no image HDU with two or more axes; give a FITS image (moment-1 map)")
 
 
-def _blank_to_nan(h) -> np.ndarray:
+def _blank_to_nan(h, role: str = "map", name: str = "") -> np.ndarray:
+    from .map_checks import integer_fill
+
     data = np.array(h.data)
     if data.dtype.kind in "iu":
         blank = h.header.get("BLANK")
@@ -245,6 +281,9 @@ def _blank_to_nan(h) -> np.ndarray:
         data = data.astype(float)
         if blank is not None:
             data[raw == blank] = np.nan
+        data = integer_fill(data, raw, blank, role, name)
+    if data.dtype.kind not in "fiu":
+        raise InputError(f"{role} {name}: its pixels are of type {data.dtype}, not numbers; give a FITS image of numbers")
     return data.astype(float, copy=False)
 
 
@@ -285,12 +324,22 @@ def parse_velocity_unit(text) -> float:
         raise InputError(f"unit {text!r} is not a velocity; the map must hold line-of-sight velocities (km/s or m/s)") from None
 
 
-def _celestial_wcs(header, data_shape):
+def _celestial_wcs(header, data_shape, role: str = "map", name: str = ""):
+    from .map_checks import check_wcs_keywords
+
+    celestial = any(str(header.get(f"CTYPE{k}", "")).strip()[:4].upper() in _CELESTIAL for k in (1, 2))
+    if celestial:
+        check_wcs_keywords(header, role, name)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FITSFixedWarning)
         try:
             wcs = WCS(header)
-        except Exception:
+        except Exception as exc:
+            if celestial:
+                raise InputError(f"{role} {name}: its celestial WCS cannot be read ({str(exc).splitlines()[0][:160]}); "
+                                 "e.g. a singular pixel matrix (a CDELT or CD entry of 0) or a declination beyond +-90 "
+                                 "deg: correct the header, "
+                                 "or remove the WCS and give --pixel-scale") from None
             return None
     if not wcs.has_celestial or sorted((wcs.wcs.lng, wcs.wcs.lat)) != [0, 1]:
         return None
@@ -318,18 +367,31 @@ def pixel_scale_of(sky_jacobian) -> float:
     return float(np.sqrt(abs(np.linalg.det(sky_jacobian))))
 
 
-def _grid(data, header, name, role, pixel_scale):
+def _grid(data, header, name, role, pixel_scale, notes=None):
     """Celestial WCS (or None) and the sky Jacobian for an image."""
-    wcs = _celestial_wcs(header, data.shape)
+    from .map_checks import check_grid
+
+    wcs = _celestial_wcs(header, data.shape, role, name)
     if wcs is not None:
-        return wcs, centre_jacobian(wcs, data.shape)
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                jacobian = centre_jacobian(wcs, data.shape)
+        except Exception as exc:  # astropy cannot evaluate this WCS at the map centre
+            raise InputError(f"{role} {name}: its WCS cannot be evaluated at the map centre ({exc}); correct the "
+                             "header, or remove the celestial WCS and give --pixel-scale") from None
+        check_grid(jacobian, role, name)
+        if pixel_scale is not None and notes is not None:
+            notes.append(f"the pixel scale you gave ({pixel_scale} arcsec) is not used: {role} {name} has a celestial "
+                         "WCS, which sets the scale")
+        return wcs, jacobian
     if pixel_scale is None:
         raise InputError(
             f"{role} {name} has no celestial WCS, so position angles and radii cannot be put on the "
             "sky; add RA/Dec WCS keywords or give the pixel scale (--pixel-scale ARCSEC, north up, east left)"
         )
     ps = float(pixel_scale)
-    if not ps > 0:
+    if not (np.isfinite(ps) and ps > 0):
         raise InputError(f"pixel scale must be a positive number of arcsec, got {pixel_scale}")
     return None, np.array([[-ps, 0.0], [0.0, ps]])
 
@@ -398,8 +460,19 @@ def _velocity_like(source, role, vmap, own_unit, velocity_unit, notes):
     Its unit: ``own_unit`` if given, else its BUNIT, else the velocity map's stated unit."""
     data, header, name = load_image(source, role)
     unit = own_unit if own_unit is not None else (velocity_unit if not header.get("BUNIT") else None)
+    from .map_checks import SPEED_OF_LIGHT
+
     data = data * _velocity_factor(header, unit, name, role)
-    return _finite_check(regrid(data, header, vmap, role, name, notes), role, name, notes), name
+    data = _finite_check(regrid(data, header, vmap, role, name, notes), role, name, notes)
+    with np.errstate(invalid="ignore"):
+        wild = np.abs(data) >= SPEED_OF_LIGHT
+    if wild.any():
+        msg = (f"{role} {name}: {int(wild.sum())} pixel(s) at or beyond the speed of light are treated as blank "
+               "(fill values?)")
+        notes.append(msg)
+        warnings.warn(msg, FitCaution, stacklevel=3)
+        data = np.where(wild, np.nan, data)
+    return data, name
 
 
 def read_velocity_map(
@@ -430,17 +503,26 @@ def read_velocity_map(
 
     Inputs are never modified: arrays are copied.
     """
+    from .map_checks import check_beam_size, plausible_velocities
+
     notes: list = []
     data, header, name = load_image(source, "velocity map", hdu=hdu)
     data = _finite_check(data * _velocity_factor(header, velocity_unit, name), "velocity map", name, notes)
     if not np.isfinite(data).any():
         raise InputError(f"velocity map {name} is blank everywhere (all NaN/BLANK); check the file or its masking")
-    wcs, jac = _grid(data, header, name, "velocity map", pixel_scale)
+    data = plausible_velocities(data, "velocity map", name, velocity_unit is not None,
+                                str(header.get("BUNIT", "")).strip(), notes)
+    wcs, jac = _grid(data, header, name, "velocity map", pixel_scale, notes)
+    given = beam is not None
     if isinstance(beam, str):
         beam = Beam.parse(beam)
-    beam = beam if beam is not None else Beam.from_header(header)
+    beam = beam if beam is not None else Beam.from_header(header, f"velocity map {name}")
+    check_beam_size(beam, jac, data.shape, f"velocity map {name}", not given, notes)
     vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes,
                        object_name=str(header.get("OBJECT", "")).strip() or None)
+    if wcs is not None and vmap.celestial_frame not in (None, "icrs"):
+        notes.append(f"the map's celestial frame is {vmap.celestial_frame}: ra_center/dec_center in the tables are "
+                     "ICRS, converted with astropy (and --ra-center/--dec-center are read as ICRS)")
 
     if error is not None:
         edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
@@ -458,10 +540,27 @@ def read_velocity_map(
         idata, iheader, iname = load_image(intensity, "intensity map")
         vmap.intensity_unit = str(iheader.get("BUNIT", "")).strip() or None
         idata = _finite_check(regrid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
+        on_disc = np.isfinite(vmap.velocity) & np.isfinite(idata)
+        if not (on_disc & (np.nan_to_num(idata) > 0)).any():
+            raise InputError(f"intensity map {iname} has no positive value where the velocity map has data (it does not "
+                             "overlap it on the sky, or is blank or negative there); give the moment-0 map of the same "
+                             "galaxy")
         vmap.intensity = idata
     if not vmap.valid.any():
         raise InputError(f"velocity map {name} has no pixel with both a finite velocity and a positive error")
+    from .map_checks import check_spread
+
+    check_spread(vmap.valid, name)
     return vmap
+
+
+def read_grid(source, role: str = "grid map", pixel_scale: float | None = None) -> VelocityMap:
+    """A map's grid only (WCS, sky Jacobian, beam) as a :class:`VelocityMap` whose values are left unchecked:
+    the common grid other maps are put on (:mod:`..products.compare`)."""
+    data, header, name = load_image(source, role)
+    wcs, jac = _grid(data, header, name, role, pixel_scale)
+    beam = Beam.from_header(header, f"{role} {name}")
+    return VelocityMap(velocity=data, sky_jacobian=jac, wcs=wcs, beam=beam, source=name)
 
 
 def write_map(path, data: np.ndarray, vmap: VelocityMap, bunit: str = "km/s", extra: dict | None = None) -> None:

@@ -20,37 +20,70 @@ from ..errors import InputError
 from .components import TabulatedSpeed
 from .fitting import Baryons, CurveData
 
-__all__ = ["read_curve", "read_sparc_rotmod", "read_components", "write_results"]
+__all__ = ["read_curve", "read_sparc_rotmod", "read_components", "read_gas", "write_results"]
+
+MAX_ROTATION = 2000.0  # km/s: no disc rotates faster than about 500 km/s (common practice); a wide margin
 
 
-def _column(table, name, unit=None):
+def _column(table, name, unit=None, where: str = "table"):
+    """Column ``name`` as floats in ``unit`` (when the column carries a unit); refusals name the fix."""
     if name not in table.colnames:
-        raise InputError(f"column {name!r} not found; the table has {', '.join(table.colnames)}")
+        raise InputError(f"{where}: column {name!r} not found; the table has {', '.join(table.colnames)}")
     col = table[name]
-    if unit is not None and getattr(col, "unit", None) is not None:
-        return u.Quantity(col).to_value(unit)
-    return np.asarray(col, float)
+    try:
+        if unit is not None and getattr(col, "unit", None) is not None:
+            return np.asarray(u.Quantity(col).to_value(unit), float)
+        return np.asarray(col, float)
+    except u.UnitConversionError:
+        raise InputError(f"{where}: column {name!r} is in {col.unit}, which cannot be turned into {unit}; name a "
+                         f"column in {unit}") from None
+    except (TypeError, ValueError):
+        raise InputError(f"{where}: column {name!r} holds values that are not numbers; fix the table") from None
+
+
+def _check_speeds(v, err, where: str) -> None:
+    """Refuse speeds no rotation curve has: negative beyond their errors, or faster than any galaxy rotates."""
+    ok = np.isfinite(v) & np.isfinite(err)
+    negative = ok & (v < -np.abs(err))
+    if negative.any():
+        raise InputError(f"{where}: {int(negative.sum())} of {int(ok.sum())} speeds are negative beyond their errors "
+                         f"(down to {np.min(v[negative]):.4g} km/s); a mass model needs rotation speeds >= 0: use the "
+                         "absolute values (a curve measured on the approaching side has negative speeds) or fix the "
+                         "column")
+    fast = ok & (np.abs(v) > MAX_ROTATION)
+    if fast.any():
+        raise InputError(f"{where}: speeds up to {np.max(np.abs(v[ok])):.4g} km/s; no disc rotates faster than about "
+                         f"{MAX_ROTATION:g} km/s: is the column in m/s? give speeds in km/s")
+
+
+def _check_finite(values: dict, where: str) -> None:
+    """Refuse a component table with blank or infinite values (its curve would be interpolated through them)."""
+    for name, column in values.items():
+        bad = ~np.isfinite(column)
+        if bad.any():
+            rows = ", ".join(str(k + 1) for k in np.flatnonzero(bad)[:8])
+            raise InputError(f"{where}: column {name} has {int(bad.sum())} blank or infinite value(s) (row(s) {rows}); "
+                             "fill them in or remove those rows")
 
 
 def read_curve(path, radius_column=None, velocity_column=None, error_column=None) -> CurveData:
     """A curve from ``curve.ecsv`` or from any table with the named columns (radius in kpc)."""
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"curve table {path} does not exist")
+    from ..io.input_files import check_input_file, read_table
+
+    path = check_input_file(path, "curve table")
     if path.suffix == ".dat" and radius_column is None:
         return read_sparc_rotmod(path)[0]
-    try:
-        table = Table.read(path, format="ascii.ecsv") if path.suffix == ".ecsv" else Table.read(path)
-    except Exception as exc:
-        raise InputError(f"cannot read table {path}: {exc}") from None
+    table = read_table(path, "curve table")
     if radius_column is None and "radius_kpc" not in table.colnames and "radius" in table.colnames:
         raise InputError(f"{path} has radii in arcsec only: rerun the fit with --distance (or --redshift), or name a "
                          "radius column in kpc with --radius-column")
-    radius = _column(table, radius_column or "radius_kpc", u.kpc)
+    where = f"curve table {path}"
+    radius = _column(table, radius_column or "radius_kpc", u.kpc, where)
     default_v = "v_circular" if "v_circular" in table.colnames else "v_rotation"
-    v = _column(table, velocity_column or default_v, u.km / u.s)
+    v = _column(table, velocity_column or default_v, u.km / u.s, where)
     err_name = error_column or ("v_circular_err" if default_v == "v_circular" else "v_rotation_err")
-    err = _column(table, err_name, u.km / u.s)
+    err = _column(table, err_name, u.km / u.s, where)
+    _check_speeds(v, err, where)
     meta = table.meta
     distance = (meta.get("distance") or {}).get("value_mpc") if isinstance(meta.get("distance"), dict) else None
     return CurveData(radius, v, err, distance=distance, name=path.stem)
@@ -58,11 +91,28 @@ def read_curve(path, radius_column=None, velocity_column=None, error_column=None
 
 def read_sparc_rotmod(path):
     """(CurveData, Baryons) from a SPARC ``*_rotmod.dat`` file."""
-    text = Path(path).read_text()
-    m = re.search(r"Distance\s*=\s*([0-9.]+)", text)
-    data = np.loadtxt(path, comments="#")
-    if data.ndim != 2 or data.shape[1] < 6:
-        raise InputError(f"{path} is not a SPARC mass-model file (8 columns)")
+    from ..io.input_files import read_text
+
+    text = read_text(path, "SPARC-format mass-model file")
+    m = re.search(r"Distance\s*=\s*([0-9.eE+-]+)", text)
+    rows = []
+    for number, line in enumerate(text.splitlines(), start=1):
+        line = line.split("#", 1)[0].strip()
+        if not line:
+            continue
+        try:
+            rows.append([float(v) for v in line.split()])
+        except ValueError:
+            raise InputError(f"{path}, line {number}: {line[:60]!r} is not a row of numbers; a SPARC-format file has "
+                             "whitespace-separated numbers (Rad Vobs errV Vgas Vdisk Vbul ...) and # comments") from None
+        if len(rows[-1]) < 6 or len(rows[-1]) != len(rows[0]):
+            raise InputError(f"{path}, line {number}: {len(rows[-1])} columns where {max(len(rows[0]), 6)} or more are "
+                             "needed (Rad Vobs errV Vgas Vdisk Vbul ...); fix that line")
+    if len(rows) < 3:
+        raise InputError(f"{path} is not a SPARC mass-model file with data: it has {len(rows)} row(s) of numbers")
+    data = np.array(rows)
+    _check_finite({"Rad": data[:, 0], "Vgas": data[:, 3], "Vdisk": data[:, 4], "Vbul": data[:, 5]}, str(path))
+    _check_speeds(data[:, 1], data[:, 2], str(path))
     r = data[:, 0]
     curve = CurveData(r, data[:, 1], data[:, 2], distance=float(m.group(1)) if m else None,
                       name=Path(path).name.replace("_rotmod.dat", ""))
@@ -74,15 +124,37 @@ def read_sparc_rotmod(path):
 def read_components(path, radius_column="radius_kpc", gas_column="v_gas", disc_column="v_disc",
                     bulge_column="v_bulge") -> Baryons:
     """Baryonic speed curves (M/L = 1; gas with helium) from a table; missing columns are left out."""
-    table = Table.read(path)
-    r = _column(table, radius_column, u.kpc)
-    parts = {}
-    for key, name in (("gas", gas_column), ("disc", disc_column), ("bulge", bulge_column)):
-        if name in table.colnames:
-            parts[key] = TabulatedSpeed(r, _column(table, name, u.km / u.s), key)
-    if not parts:
-        raise InputError(f"{path} has none of the component columns {gas_column}, {disc_column}, {bulge_column}")
-    return Baryons(**parts)
+    from ..io.input_files import read_table
+
+    table = read_table(path, "component table")
+    where = f"component table {path}"
+    r = _column(table, radius_column, u.kpc, where)
+    columns = {key: _column(table, name, u.km / u.s, where) for key, name in
+               (("gas", gas_column), ("disc", disc_column), ("bulge", bulge_column)) if name in table.colnames}
+    if not columns:
+        raise InputError(f"{where} has none of the component columns {gas_column}, {disc_column}, {bulge_column}")
+    _check_finite({radius_column: r, **columns}, where)
+    if np.any(r < 0):
+        raise InputError(f"{where}: column {radius_column} has negative radii; give radii in kpc >= 0")
+    return Baryons(**{key: TabulatedSpeed(r, v, key) for key, v in columns.items()})
+
+
+def read_gas(path):
+    """The gas disc (:class:`.components.ThinDisc`) from a ``gas.ecsv`` written by ``tiltedring fit``."""
+    from ..io.input_files import read_table
+    from .components import ThinDisc
+
+    table = read_table(path, "gas table")
+    where = f"gas table {path}"
+    radius = _column(table, "radius_kpc", u.kpc, where)
+    density = _column(table, "surface_density_gas", u.Msun / u.pc**2, where)
+    ok = np.isfinite(radius) & np.isfinite(density)
+    if ok.sum() < 2:
+        raise InputError(f"{where} has fewer than two rings with a radius and a surface density; write it with "
+                         "'tiltedring fit ... --intensity-map MOM0 --distance D'")
+    if np.any(density[ok] < 0) or np.any(radius[ok] < 0):
+        raise InputError(f"{where}: negative radii or surface densities; a gas disc needs values >= 0")
+    return ThinDisc(radius[ok], density[ok], label="gas")
 
 
 def write_results(folder, results: dict, curve: CurveData, overwrite: bool = False, figures: bool = True) -> Path:
@@ -91,7 +163,7 @@ def write_results(folder, results: dict, curve: CurveData, overwrite: bool = Fal
     ``figures``, ``decomposition_<model>.png`` (:meth:`.fitting.MassModelResult.plot`)."""
     from ..io.atomic import atomic_folder, write_json
 
-    with atomic_folder(folder, overwrite=overwrite) as tmp:
+    with atomic_folder(folder, overwrite=overwrite, kind="massmodel") as tmp:
         comparison = QTable()
         comparison["model"] = list(results)
         comparison["chi2"] = [r.chi2 for r in results.values()]

@@ -18,7 +18,7 @@ from dataclasses import asdict, dataclass
 
 from ..errors import InputError
 from ..fitting.parameters import PARAMETERS
-from .option_fields import coerce, field_specs, option, recorded_values
+from .option_fields import Bounds, coerce, field_specs, option, recorded_values, validate
 
 __all__ = ["FitOptions", "InputOptions", "CurveOptions", "CubeOptions", "RING_PARAMETER_NAMES",
            "AZIMUTH_WEIGHT_NAMES",
@@ -33,6 +33,16 @@ HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
 EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
 CHANNEL_RESPONSE_NAMES = ("boxcar", "hanning")  # fitting.cube_model.CHANNEL_RESPONSES
+
+SPEED_OF_LIGHT = 299792.458  # km/s (CODATA, as astropy.constants.c)
+STARTING_BOUNDS = {
+    "ra_center": Bounds(minimum=0, below=360, why="right ascension in deg"),
+    "dec_center": Bounds(minimum=-90, maximum=90, why="declination in deg"),
+    "v_systemic": Bounds(above=-SPEED_OF_LIGHT, below=SPEED_OF_LIGHT, why="km/s, slower than light"),
+    "position_angle": Bounds(minimum=-360, maximum=720, why="deg; wrapped into [0, 360)"),
+    "inclination": Bounds(above=0, below=90, why="deg between face-on (0) and edge-on (90)"),
+    "v_rotation": Bounds(above=-SPEED_OF_LIGHT, below=SPEED_OF_LIGHT, why="km/s, slower than light"),
+}
 
 STARTING_VALUES = {
     "x_center": "pixels, 0-based", "y_center": "pixels, 0-based", "ra_center": "deg", "dec_center": "deg",
@@ -58,60 +68,69 @@ class FitOptions:
     Every field's help text is in its declaration below.
     """
 
-    ring_width: object = option(None, group="rings", metavar="WIDTH",
+    ring_width: object = option(None, group="rings", metavar="WIDTH", length=True, bounds=Bounds(above=0),
                                 help="ring width: 9arcsec, 4pix, 0.5beam or a bare number in arcsec (default one "
                                      "beam, or two pixels without a beam)")
     spacing: str = option("uniform", group="rings", choices=("uniform", "logarithmic"), help="ring spacing")
-    growth: float = option(1.2, group="rings", help="width ratio of successive logarithmic rings")
-    ring_edges: tuple | None = option(None, group="rings", form="numbers", metavar="R0,R1,...",
+    growth: float = option(1.2, group="rings", bounds=Bounds(above=1, maximum=10),
+                           help="width ratio of successive logarithmic rings")
+    ring_edges: tuple | None = option(None, group="rings", form="numbers", metavar="R0,R1,...", bounds=Bounds(minimum=0),
                                       help="explicit ring edges in arcsec, comma-separated (overrides width and "
                                            "spacing)")
-    first_radius: object = option(0.0, group="rings", metavar="RADIUS",
+    first_radius: object = option(0.0, group="rings", metavar="RADIUS", length=True, bounds=Bounds(minimum=0),
                                   help="inner edge of the first ring: arcsec, or a length such as 4pix")
-    max_radius: object = option(None, group="rings", metavar="RADIUS",
+    max_radius: object = option(None, group="rings", metavar="RADIUS", length=True, bounds=Bounds(above=0),
                                 help="outer edge of the last ring (default: the edge of the valid data)")
     azimuth_weight: str = option("abs-cos", group="fitting", choices=AZIMUTH_WEIGHT_NAMES,
                                  help="weight of a pixel by its disc azimuth theta from the major axis: none, "
                                       "|cos theta| (abs-cos) or cos^2 theta (cos-squared)")
     minor_axis_gap: float = option(15.0, group="fitting", metavar="DEG",
+                                   bounds=Bounds(minimum=0, maximum=75, why="a wider gap leaves less than a sixth of "
+                                                                          "each ring"),
                                    help="half-opening in deg of the sector about the minor axis left out of the fit")
     half: str = option("whole", group="fitting", choices=HALF_NAMES,
                        help="fit the whole disc or only its approaching or receding half")
     clip: float | None = option(None, group="fitting", metavar="SIGMA",
+                                bounds=Bounds(minimum=1, why="a lower level clips good pixels"),
                                 help="clip pixels beyond this many robust sigma and refit (default: no clipping)")
     fixed: tuple = option((), group="fitting", form="names", flag="--fix", metavar="NAME[,NAME]",
                           choices=RING_PARAMETER_NAMES,
                           help="hold parameters fixed in every stage (at the starting value or the first guess): "
                                + " ".join(RING_PARAMETER_NAMES))
-    initial: dict = option(default_factory=dict, group="initial", entries=STARTING_VALUES,
+    initial: dict = option(default_factory=dict, group="initial", entries=STARTING_VALUES, entry_bounds=STARTING_BOUNDS,
                            help="starting values by parameter name, used instead of the first guess")
     fit_radial: bool = option(False, group="fitting", help="also fit v_radial per ring")
-    seed: int = option(0, group="fitting", help="seed of every random step")
-    low_inclination: float = option(30.0, group="fitting", metavar="DEG",
+    seed: int = option(0, group="fitting", bounds=Bounds(minimum=0, maximum=2**32 - 1),
+                       help="seed of every random step")
+    low_inclination: float = option(30.0, group="fitting", metavar="DEG", bounds=Bounds(minimum=0, below=90),
                                     help="flag and widen errors below this inclination in deg")
-    min_beams_per_ring: float = option(4.0, group="fitting", metavar="BEAMS",
+    min_beams_per_ring: float = option(4.0, group="fitting", metavar="BEAMS", bounds=Bounds(minimum=0, maximum=1000),
                                        help="flag rings with fewer pixels than this many beams' worth (few_pixels)")
-    min_coverage: float = option(0.5, group="fitting", metavar="FRACTION",
+    min_coverage: float = option(0.5, group="fitting", metavar="FRACTION", bounds=Bounds(minimum=0, maximum=1),
                                  help="flag rings with less than this fraction of the usable azimuth covered "
                                       "(poor_coverage)")
     diagnostics: bool = option(True, group="fitting",
                                help="skip the diagnostics (harmonics, flow models, asymmetry; non-circular rings "
                                     "then stay in the geometry decision, and no radial-flow refit is tried)")
     bar_range: tuple | None = option(None, group="fitting", form="numbers", metavar="R_MIN,R_MAX",
+                                     bounds=Bounds(minimum=0),
                                      help="radii in arcsec over which one common bar angle is fitted (default: the "
                                           "rings that choose a bisymmetric flow on their own)")
     beam_correction: bool = option(True, group="fitting",
                                    help="skip the beam-smearing correction (on by default when a beam is known)")
-    resamples: int = option(20, group="fitting", metavar="N",
+    resamples: int = option(20, group="fitting", metavar="N", bounds=Bounds(minimum=0, maximum=10000),
                             help="noise realisations for resampled errors (0 skips them)")
     quiet: bool = option(True, command_line=False, recorded=False,
                          help="no progress messages (on the command line: -q/--quiet)")
 
     def __post_init__(self):
-        self.fixed = tuple(self.fixed)
+        validate(self)
         for name in ("ring_edges", "bar_range"):
             if getattr(self, name) is not None:
                 setattr(self, name, tuple(getattr(self, name)))
+        if "position_angle" in self.initial:
+            self.initial["position_angle"] %= 360.0
+        self._check_agreement()
         unknown = set(self.fixed) - set(PARAMETERS)
         if unknown:
             raise InputError(f"cannot fix unknown parameter(s) {sorted(unknown)}; choose from {', '.join(PARAMETERS)}")
@@ -124,6 +143,35 @@ class FitOptions:
         if self.bar_range is not None and (len(self.bar_range) != 2 or not self.bar_range[0] < self.bar_range[1]):
             raise InputError(f"bar range {self.bar_range}: give two radii in arcsec, smaller first")
         self.ring_options()  # validates azimuth_weight, minor_axis_gap, half, clip
+
+    def _check_agreement(self) -> None:
+        """Refuse options that contradict each other or would be silently ignored."""
+        if self.ring_edges is not None:
+            edges = self.ring_edges
+            if len(edges) < 2 or any(b <= a for a, b in zip(edges, edges[1:])):
+                raise InputError(f"ring_edges {list(edges)}: give at least two increasing radii in arcsec, e.g. "
+                                 "0,10,20,30")
+            given = [n for n, v in (("ring_width", self.ring_width), ("max_radius", self.max_radius)) if v is not None]
+            given += ["first_radius"] if self.first_radius not in (0, 0.0, None) else []
+            given += ["spacing"] if self.spacing != "uniform" else []
+            if given:
+                raise InputError(f"ring_edges sets every ring, so {', '.join(given)} would be ignored; give either "
+                                 "ring_edges or the layout options, not both")
+        if self.spacing != "logarithmic" and self.growth != 1.2:
+            raise InputError(f"growth {self.growth} applies to logarithmic spacing only; add spacing = logarithmic "
+                             "(--spacing logarithmic) or leave growth out")
+        sky = {"ra_center", "dec_center"} & set(self.initial)
+        pixel = {"x_center", "y_center"} & set(self.initial)
+        if sky and pixel:
+            raise InputError(f"the centre is given both in pixels ({', '.join(sorted(pixel))}) and on the sky "
+                             f"({', '.join(sorted(sky))}); give one of the two")
+        if self.fit_radial and "v_radial" in self.fixed:
+            raise InputError("fit_radial asks to fit v_radial but v_radial is also fixed; choose one")
+        if self.max_radius is not None and self.first_radius not in (0, 0.0, None) and all(
+                isinstance(v, (int, float)) for v in (self.max_radius, self.first_radius)) and \
+                self.max_radius <= self.first_radius:
+            raise InputError(f"max_radius {self.max_radius} is not beyond first_radius {self.first_radius}; give a "
+                             "larger maximum radius")
 
     def ring_options(self, half: str | None = None):
         """The :class:`..fitting.engine.RingFitOptions` of these options (``half`` overrides)."""
@@ -163,12 +211,27 @@ class InputOptions:
                               help="beam FWHM in arcsec (major, minor) and its position angle in deg (default: "
                                    "BMAJ/BMIN/BPA of the map)")
     pixel_scale: float | None = option(None, group="inputs", metavar="ARCSEC",
+                                       bounds=Bounds(above=0, maximum=36000, why="arcsec per pixel"),
                                        help="arcsec per pixel, for maps without celestial WCS")
     velocity_unit: str | None = option(None, group="inputs", metavar="UNIT",
                                        help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
-    bin: int | None = option(None, group="inputs", metavar="N",
+    bin: int | None = option(None, group="inputs", metavar="N", bounds=Bounds(minimum=1, maximum=1000),
                              help="average N x N pixel blocks before fitting (for maps too large for memory, or far "
                                   "finer than the beam)")
+
+    def __post_init__(self):
+        validate(self)
+        if self.dispersion_map is not None and self.intensity_map is None:
+            raise InputError("a dispersion map is used with the intensity map (asymmetric drift needs both); give "
+                             "intensity_map (--intensity-map) too")
+        if self.beam is not None:
+            from ..io.maps import Beam
+
+            Beam.parse(self.beam)
+        if self.velocity_unit is not None:
+            from ..io.maps import parse_velocity_unit
+
+            parse_velocity_unit(self.velocity_unit)
 
     def read_arguments(self) -> dict:
         """Keyword arguments of :func:`..io.maps.read_velocity_map` (maps by their reader's names)."""
@@ -181,13 +244,34 @@ class CurveOptions:
     """How the rotation-curve product (``curve.ecsv``) is put in physical units."""
 
     distance: object = option(None, group="curve", metavar="DISTANCE",
+                              bounds=Bounds(above=0, maximum=1e5, why="Mpc"),
                               help="distance: a number in Mpc or a length such as 12Mpc (adds radius_kpc)")
-    redshift: float | None = option(None, group="curve",
+    redshift: float | None = option(None, group="curve", bounds=Bounds(above=0, maximum=20),
                                     help="redshift, for the angular-diameter distance when no distance is given")
     cosmology: str = option("Planck18", group="curve", help="astropy cosmology used with the redshift")
 
+    def __post_init__(self):
+        validate(self)
+        if self.distance is not None and self.redshift is not None:
+            raise InputError("give a distance or a redshift, not both (the redshift only serves to find a distance)")
+        if self.distance is not None:
+            from ..products.curve import parse_distance
+
+            parse_distance(self.distance)
+        check_cosmology(self.cosmology)
+
     def to_dict(self) -> dict:
         return asdict(self)
+
+
+def check_cosmology(name: str) -> str:
+    """``name`` when astropy provides a cosmology of that name (``astropy.cosmology.realizations``)."""
+    from astropy.cosmology import realizations
+
+    available = tuple(realizations.available)
+    if name not in available:
+        raise InputError(f"cosmology {name!r} is not one astropy provides; choose one of {', '.join(available)}")
+    return name
 
 
 @dataclass
@@ -211,13 +295,13 @@ class CubeOptions:
                                           "in a caution: a foreground or a continuum-subtraction problem)")
     all_regions: bool = option(False, group="cube",
                                help="keep every emission region of the mask (default: only the largest, the galaxy)")
-    mask_threshold: float = option(4.0, group="cube", metavar="SIGMA",
+    mask_threshold: float = option(4.0, group="cube", metavar="SIGMA", bounds=Bounds(above=0, maximum=1000),
                                    help="clip level of the smoothed cube, in units of its robust noise")
-    minimum_run: int = option(3, group="cube", metavar="CHANNELS",
+    minimum_run: int = option(3, group="cube", metavar="CHANNELS", bounds=Bounds(minimum=1, maximum=10000),
                               help="fewest adjacent channels a masked line must span")
     brightness_unit: str | None = option(None, group="cube", metavar="UNIT",
                                          help="unit of the cube when BUNIT is missing or wrong (Jy/beam, K)")
-    rest_frequency: float | None = option(None, group="cube", metavar="HZ",
+    rest_frequency: float | None = option(None, group="cube", metavar="HZ", bounds=Bounds(above=0),
                                           help="rest frequency in Hz when the cube states none")
     velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
                                              help="velocities in this convention (default: the cube's own; radio "
@@ -226,12 +310,15 @@ class CubeOptions:
     curve_from_cube: bool = option(True, group="cube",
                                    help="skip refitting the inner rings' rotation speed and dispersion on the cube "
                                         "itself (on by default for cubes; also makes model_cube.fits)")
-    cube_fit_beams: float = option(4.0, group="cube", metavar="BEAMS",
+    cube_fit_beams: float = option(4.0, group="cube", metavar="BEAMS", bounds=Bounds(above=0, maximum=1000),
                                    help="rings whose radius is within this many beams are fitted on the cube; the "
                                         "others keep the map's rotation speed")
     channel_response: str = option("boxcar", group="cube", choices=CHANNEL_RESPONSE_NAMES,
                                    help="spectral response of a channel in the model cube: boxcar (one channel "
                                         "wide) or hanning (boxcar then Hanning-smoothed, for Hanning-smoothed cubes)")
+
+    def __post_init__(self):
+        validate(self)
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -243,3 +330,4 @@ class CubeOptions:
                 "mask_threshold": self.mask_threshold, "minimum_run": self.minimum_run,
                 "detect_foreground": self.detect_foreground, "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
                 "convention": self.velocity_convention}
+

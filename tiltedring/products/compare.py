@@ -19,11 +19,11 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from astropy.table import QTable, Table
+from astropy.table import QTable
 
 from ..errors import InputError
 from ..fitting.geometry import disc_coordinates
-from ..io.maps import _velocity_factor, load_image, read_velocity_map, regrid
+from ..io.maps import _velocity_factor, load_image, read_grid, regrid
 
 __all__ = ["MapComparison", "compare_maps"]
 
@@ -59,7 +59,7 @@ class MapComparison:
         from ..io.maps import write_map
         from .result import plain_table
 
-        with atomic_folder(folder, overwrite=overwrite) as tmp:
+        with atomic_folder(folder, overwrite=overwrite, kind="compare") as tmp:
             for k, (name, diff) in enumerate(zip(self.names[1:], self.differences), start=1):
                 write_map(tmp / f"difference_{k}.fits", diff, self.reference,
                           extra={"ORIGIN": f"tiltedring: {name} minus {self.names[0]}"[:68]})
@@ -84,23 +84,22 @@ def compare_maps(sources, names=None, grid=None, rings=None, flux: bool = False,
     """
     if len(sources) < 2:
         raise InputError("give at least two maps to compare")
-    names = list(names) if names is not None else [Path(str(s)).stem if isinstance(s, (str, Path)) else f"map {k}"
-                                                   for k, s in enumerate(sources)]
+    names = _names(sources, names)
     notes: list = []
-    # only the grid of the reference is used (WCS, sky Jacobian, beam), so its unit does not matter here
-    reference = read_velocity_map(grid if grid is not None else sources[0], velocity_unit="km/s")
+    # only the grid of the reference is used (WCS, sky Jacobian, beam), so its values do not matter here
+    reference = read_grid(grid if grid is not None else sources[0])
     maps = []
     for source, name in zip(sources, names):
-        data, header, _ = load_image(source, name)
+        data, header, _ = load_image(source, f"map {name}")
         if not flux:
-            data = data * _velocity_factor(header, velocity_unit, name)
+            data = data * _velocity_factor(header, velocity_unit, name, "map")
         maps.append(regrid(data, header, reference, "map", name, notes, flux=flux, warn=False))
     _check_overlap(maps, names)
     differences = [m - maps[0] for m in maps[1:]]
     statistics = _statistics(reference, differences, names, rings, sector_width, None if flux else "km/s")
     systemic = None
     if rings is not None and not flux:
-        table = Table.read(rings) if isinstance(rings, (str, Path)) else rings
+        table = _read_rings(rings)
         if "v_systemic" in table.colnames:
             systemic = float(np.nanmedian(np.asarray(getattr(table["v_systemic"], "value", table["v_systemic"]))))
     return MapComparison(names, maps, differences, statistics, reference, notes, systemic)
@@ -115,6 +114,50 @@ def _check_overlap(maps, names) -> None:
                              "check that they show the same part of the sky, or choose the grid with --grid")
 
 
+def _names(sources, names) -> list:
+    """The maps' names: given (one per map, plain and distinct), or their file names."""
+    if names is None:
+        names = [Path(str(s)).stem if isinstance(s, (str, Path)) else f"map {k}" for k, s in enumerate(sources)]
+        return [n if names.count(n) == 1 else f"{n} ({k + 1})" for k, n in enumerate(names)]
+    names = [str(n).strip() for n in names]
+    if len(names) != len(sources):
+        raise InputError(f"{len(names)} name(s) for {len(sources)} maps; give one name per map, comma-separated "
+                         "(--names HI,CO)")
+    if any(not n for n in names) or len(set(names)) != len(names):
+        raise InputError(f"names {names}: give every map its own non-empty name")
+    return names
+
+
+RING_COLUMNS = ("x_center", "y_center", "position_angle", "inclination", "radius_inner", "radius_outer")
+
+
+def _read_rings(rings):
+    """A ring table (path or table) with the columns the statistics need, checked."""
+    if isinstance(rings, (str, Path)):
+        from ..io.input_files import read_table
+
+        where = f"rings table {rings}"
+        table = read_table(rings, "rings table")
+    else:
+        where, table = "rings table", rings
+    missing = [c for c in RING_COLUMNS if c not in table.colnames]
+    if missing:
+        raise InputError(f"{where} lacks column(s) {', '.join(missing)}; give the rings.ecsv written by "
+                         "'tiltedring fit'")
+    try:
+        values = {c: np.asarray(getattr(table[c], "value", table[c]), float) for c in table.colnames
+                  if c in RING_COLUMNS or c in ("ra_center", "dec_center")}
+    except (TypeError, ValueError):
+        raise InputError(f"{where}: its ring columns hold values that are not numbers; give the rings.ecsv written "
+                         "by 'tiltedring fit'") from None
+    ok = np.isfinite(values["radius_inner"]) & np.isfinite(values["radius_outer"]) & \
+        (values["radius_outer"] > values["radius_inner"])
+    if not ok.any() or not all(np.isfinite(values[c]).any() for c in RING_COLUMNS[:4]):
+        raise InputError(f"{where} has no ring with a finite centre, geometry and edges; give the rings.ecsv of a "
+                         "fit that succeeded")
+    return table
+
+
 def _ring_geometry(reference, rings):
     ny, nx = reference.shape
     if rings is None:
@@ -122,14 +165,19 @@ def _ring_geometry(reference, rings):
         r_max = 0.5 * min(ny, nx) * reference.pixel_scale
         edges = np.arange(0.0, r_max + step, step)
         return {"x_center": (nx - 1) / 2.0, "y_center": (ny - 1) / 2.0, "position_angle": 0.0, "inclination": 0.0}, edges
-    table = Table.read(rings) if isinstance(rings, (str, Path)) else rings
+    table = _read_rings(rings)
     get = lambda n: float(np.nanmedian(np.asarray(getattr(table[n], "value", table[n]), float)))  # noqa: E731
     geom = {n: get(n) for n in ("x_center", "y_center", "position_angle", "inclination")}
     if "ra_center" in table.colnames and reference.wcs is not None and np.isfinite(get("ra_center")):
         geom["x_center"], geom["y_center"] = reference.sky_to_pixel(get("ra_center"), get("dec_center"))
     inner = np.asarray(getattr(table["radius_inner"], "value", table["radius_inner"]), float)
     outer = np.asarray(getattr(table["radius_outer"], "value", table["radius_outer"]), float)
-    return geom, np.concatenate([inner[:1], outer])
+    edges = np.concatenate([inner[:1], outer])
+    edges = edges[np.isfinite(edges)]
+    if len(edges) < 2 or np.any(np.diff(edges) <= 0) or not 0 <= geom["inclination"] < 90:
+        raise InputError("the rings table's edges do not increase, or its inclination is outside 0-90 deg; give the "
+                         "rings.ecsv of a fit that succeeded")
+    return geom, edges
 
 
 def _statistics(reference, differences, names, rings, sector_width, unit="km/s"):

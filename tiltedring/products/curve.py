@@ -37,6 +37,7 @@ __all__ = ["RotationCurve", "parse_distance", "asymmetric_drift", "ring_statisti
 
 KMS = u.km / u.s
 _Z_THRESHOLD = 1e-3
+MAX_DISTANCE_MPC = 1e5  # beyond the observable universe (about 14,000 Mpc comoving)
 
 
 def parse_distance(text) -> u.Quantity:
@@ -55,8 +56,9 @@ def parse_distance(text) -> u.Quantity:
         value = value.to(u.Mpc)
     except u.UnitConversionError:
         raise InputError(f"distance {text!r} is not a length; give e.g. 12Mpc") from None
-    if not value.value > 0:
-        raise InputError(f"distance must be positive, got {text!r}")
+    if not (np.isfinite(value.value) and 0 < value.value <= MAX_DISTANCE_MPC):
+        raise InputError(f"distance {text!r} is out of range; give a finite distance above 0 and at most "
+                         f"{MAX_DISTANCE_MPC:g} Mpc, e.g. 12Mpc")
     return value
 
 
@@ -108,6 +110,9 @@ class RotationCurve:
         ``distance``: number (Mpc) or length; ``redshift``: used with the named astropy cosmology when no
         distance is given; ``dispersion``: a moment-2 map on the fit's grid in km/s (default: the map's own).
         """
+        from ..pipeline.options import CurveOptions
+
+        CurveOptions(distance=distance, redshift=redshift, cosmology=cosmology)  # the same checks as every entry point
         rings = result.rings
         t = QTable()
         t["radius"] = rings["radius"]
@@ -118,10 +123,7 @@ class RotationCurve:
         elif redshift is not None:
             from astropy import cosmology as cosmo_module
 
-            try:
-                cosmo = getattr(cosmo_module, cosmology)
-            except AttributeError:
-                raise InputError(f"unknown cosmology {cosmology!r}; use one astropy provides, e.g. Planck18") from None
+            cosmo = getattr(cosmo_module, cosmology)
             d = cosmo.angular_diameter_distance(float(redshift)).to(u.Mpc)
             meta["distance"] = {"value_mpc": float(d.value), "source": f"angular-diameter distance at z = {redshift} "
                                                                        f"({cosmology}, astropy)"}
@@ -129,8 +131,14 @@ class RotationCurve:
             d = None
         if d is not None:
             t["radius_kpc"] = (rings["radius"].to(u.rad).value * d).to(u.kpc)
-        v_sys = float(np.nanmedian(rings["v_systemic"].to_value(KMS)))
+        v_sys = rings["v_systemic"].to_value(KMS)
+        v_sys = float(np.nanmedian(v_sys)) if np.isfinite(v_sys).any() else 0.0
         z = v_sys / const.c.to_value(KMS)
+        if not abs(z) < 0.5:
+            from ..errors import ResultNotPhysical
+
+            raise ResultNotPhysical(f"systemic velocity {v_sys:.6g} km/s is not a recession speed a resolved disc can "
+                                    "have (z = v/c beyond 0.5); check the map's velocity unit (--velocity-unit)")
         stretch = 1.0 + z if abs(z) > _Z_THRESHOLD else 1.0
         if stretch != 1.0:
             meta["rest_frame_correction"] = {"z": float(z), "factor": float(1.0 / stretch),

@@ -70,12 +70,8 @@ def stage_table(vmap, layout, solutions, ring_flags) -> QTable:
 
 
 def add_sky_centre(table: QTable, vmap) -> None:
-    """Add ``ra_center``/``dec_center`` (deg) beside the pixel centre of each ring."""
-    ra = np.full(len(table), np.nan)
-    dec = np.full(len(table), np.nan)
-    if vmap.wcs is not None:
-        c = vmap.wcs.pixel_to_world(np.asarray(table["x_center"].value), np.asarray(table["y_center"].value))
-        ra, dec = c.spherical.lon.deg, c.spherical.lat.deg
+    """Add ``ra_center``/``dec_center`` (ICRS deg, converted from the map's frame) beside each ring's pixel centre."""
+    ra, dec = vmap.pixel_to_icrs(np.asarray(table["x_center"].value), np.asarray(table["y_center"].value))
     index = table.colnames.index("y_center_err") + 1
     table.add_column(ra * u.deg, name="ra_center", index=index)
     table.add_column(dec * u.deg, name="dec_center", index=index + 1)
@@ -126,9 +122,12 @@ class FitResult:
         """Disc-wide geometry: centre and systemic velocity, median position angle and inclination."""
         t = self.rings
         out = {}
+        from .sanity import angle_median
+
         for name in ("x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle", "inclination"):
             col = np.asarray(t[name].value if hasattr(t[name], "value") else t[name], float)
-            out[name] = float(np.nanmedian(col))
+            median = angle_median if name in ("position_angle", "ra_center") else np.nanmedian
+            out[name] = float(median(col)) if np.isfinite(col).any() else float("nan")
         out["profile"] = self.diagnostics.get("warp", {}).get("profile", "constant")
         return out
 
@@ -140,6 +139,8 @@ class FitResult:
 
         from .. import __version__
 
+        from .sanity import angle_median
+
         stage_summaries = {}
         for name, table in self.stages.items():
             ok = np.isfinite(np.asarray(table["v_rotation"].value))
@@ -147,7 +148,7 @@ class FitResult:
                 "n_rings": len(table),
                 "n_fitted": int(ok.sum()),
                 "median_chi2_reduced": float(np.nanmedian(table["chi2_reduced"])) if ok.any() else None,
-                "median_position_angle": float(np.nanmedian(table["position_angle"].value)),
+                "median_position_angle": float(angle_median(table["position_angle"].value)),
                 "median_inclination": float(np.nanmedian(table["inclination"].value)),
             }
         return {
@@ -161,6 +162,8 @@ class FitResult:
                 "position_angle": "of the receding half of the major axis, deg from north through east",
                 "inclination": "deg, 0 face-on, 90 edge-on",
                 "pixels": "0-based (numpy order, astropy origin=0)",
+                "sky_centre": f"ra_center, dec_center: ICRS deg, converted with astropy from the map's own celestial "
+                              f"frame ({self.vmap.celestial_frame or 'none: no celestial WCS, so they are blank'})",
                 "v_radial": "positive when the minor-axis half at position_angle + 90 recedes; inflow or outflow "
                             "needs the near side",
             },
