@@ -1,22 +1,19 @@
 """Emission at one velocity over the whole field (foreground, continuum problems) found and left out; a
-rotating galaxy that fills the field is not mistaken for it.
+rotating galaxy that fills the field is not mistaken for it. (The demo cube's first run, with its
+foreground found: test_cube.py::test_fit_a_cube_from_the_command_line.)
 
 Independent references: cubes drawn by tests/independent_cubes.py (scipy Rotation, scipy.special line
-integrals; no project code) with a foreground line of known velocity, the bundled demo cube's truth
-table, and the WSRT NGC 6946 HI cube, whose Milky Way HI lies at about -60 to +5 km/s (SOURCE.md of
+integrals; no project code) with a foreground line of known velocity, and the WSRT NGC 6946 HI cube, whose Milky Way HI lies at about -60 to +5 km/s (SOURCE.md of
 the reference data; Boomsma et al. 2008).
 """
 
-import json
 import warnings
 
 import numpy as np
 import pytest
-from astropy.table import Table
 from independent_cubes import cube_hdu, draw_cube
 from independent_fields import grid_wcs
 
-from tiltedring.cli import main
 from tiltedring.errors import FitCaution
 from tiltedring.io.cube import read_cube
 from tiltedring.io.velocity_fields import make_velocity_maps
@@ -106,35 +103,6 @@ def test_a_field_filling_line_alone_is_kept_with_a_caution():
     (run,) = maps.record["mask"]["field_filling"]
     assert run["foreground"] and not run["excluded"] and maps.record["mask"]["excluded_velocities"] == []
     assert any("kept because no other channel holds emission" in text for text in _cautions(caught))
-
-
-def test_the_demo_cube_first_run(tmp_path, demo_fields):
-    """`tiltedring fit` on the bundled demo cube with no option: its foreground line (8 km/s, sigma 3.5,
-    over the whole field; demo_fields/make_demo_cube.py) is found, the range left out covers its core,
-    the caution names it in fit.json and on the report's first page, and the fit gives back the truth
-    table's geometry (the tolerances of test_cube.py: PA and inclination 2 deg, v_systemic 2 km/s, centre
-    0.5 pixel, the speed beyond 3 beams within 5 km/s of v_flat)."""
-    out = tmp_path / "fit"
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", FitCaution)
-        assert main(["fit", str(demo_fields / "dunmore_cube.fits"), "--resamples", "0", "--no-report", "--out",
-                     str(out), "-q"]) == 0
-    truth = Table.read(demo_fields / "dunmore_cube_truth.ecsv", format="ascii.ecsv").meta
-    mask = json.loads((out / "maps" / "maps.json").read_text())["mask"]
-    (lo, hi), = mask["detected_foreground"]
-    centre, sigma = truth["foreground_velocity"], truth["foreground_sigma"]
-    assert lo <= centre - 2 * sigma and hi >= centre + 2 * sigma and hi - lo <= 4 * truth["channel_width_radio"]
-    cautions = json.loads((out / "fit.json").read_text())["cautions"]
-    assert any(f"--exclude-velocities={lo:g}:{hi:g}" in text for text in cautions)
-    rings = Table.read(out / "rings.ecsv", format="ascii.ecsv")
-    assert abs(np.median(rings["position_angle"]) - truth["position_angle"]) < 2.0
-    assert abs(np.median(rings["inclination"]) - truth["inclination"]) < 2.0
-    assert abs(np.median(rings["v_systemic"]) - truth["v_systemic"]) < 2.0
-    assert np.hypot(np.median(rings["x_center"]) - truth["x_center"],
-                    np.median(rings["y_center"]) - truth["y_center"]) < 0.5
-    outer = rings["radius"] > 3 * truth["beam_fwhm"]
-    assert np.all(np.abs(rings["v_rotation"][outer] - truth["v_flat"]) < 5.0)
-    assert json.loads((out / "fit.json").read_text())["curve_from_cube"]["excluded_velocities"] == [[lo, hi]]
 
 
 def test_ngc6946_foreground_core_is_found(reference_data):

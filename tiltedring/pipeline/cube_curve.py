@@ -6,7 +6,8 @@ The ring table keeps the map's values in their own columns (``v_rotation_map``,
 ``map``: v_rotation from the map fit, dispersion matched by line width). For the rings fitted to the
 cube, ``v_rotation_err`` is the cube fit's noise error with the sides and inclination terms of the
 map fit in quadrature (the inclination term scaled to the new speed). ``fit.json`` records the
-treatment under ``curve_from_cube``.
+treatment under ``curve_from_cube``, with the velocity ranges whose channels were left out
+(``excluded_velocities``: those stated and those found as foreground when the maps were made).
 """
 
 from __future__ import annotations
