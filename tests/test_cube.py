@@ -142,7 +142,7 @@ def test_moments_match_spectral_cube(drawn):
     signal = make_signal_mask(cube, exclude_velocities=EXCLUDE, exclusion="veto", keep_regions="all")
     reference = SpectralCube.read(hdu).with_spectral_unit(u.km / u.s)
     m0 = reference.with_mask(signal.mask).moment0().to(u.K * u.km / u.s).value  # moment 0 over the source mask
-    m1 = reference.with_mask(signal.line).moment1().to(u.km / u.s).value  # moment 1 over the line mask
+    m1 = reference.with_mask(signal.line()).moment1().to(u.km / u.s).value  # moment 1 over the line mask
     ok = np.isfinite(maps.velocity)
     assert ok.sum() > 1000
     np.testing.assert_allclose(maps.intensity[ok], m0[ok], rtol=1e-5, atol=1e-4)

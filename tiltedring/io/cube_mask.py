@@ -19,7 +19,7 @@ The steps (a smooth-and-clip source mask, common practice for HI cubes):
 7. With ``keep_regions="largest"`` (the default) only the largest connected region of the mask's
    footprint on the sky is kept: the galaxy, without noise islands and unrelated clouds around it.
 
-Line mask (``SignalMask.line``, for the moment maps): inside the mask above, the voxels of the cube
+Line mask (``SignalMask.line()``, for the moment maps): inside the mask above, the voxels of the cube
 smoothed on the sky by one beam (not in velocity) that are at least ``LINE_WING`` (2) times its robust
 channel noise in two adjacent channels and connected (in position and velocity) to a core at least
 ``LINE_CORE`` (4) times the noise in two adjacent channels: the hysteresis ("dilated") masks of CO
@@ -72,13 +72,23 @@ EXCLUSIONS = ("interpolate", "veto")
 class SignalMask:
     """``mask[k, y, x]`` true where channel ``k`` of pixel (y, x) holds line emission; ``data`` the cube
     to measure (vetoed voxels NaN, interpolated foreground subtracted); ``excluded[k]`` channels in
-    the excluded ranges; ``line`` the tighter survey-style mask of the moment maps inside ``mask``."""
+    the excluded ranges; :meth:`line` the tighter survey-style mask of the moment maps inside ``mask``
+    (``sigma_pixels``: the Gaussian sigma, in pixels, of the mask's smoothing on the sky)."""
 
     mask: np.ndarray
     excluded: np.ndarray
     data: np.ndarray
     record: dict = field(default_factory=dict)
-    line: np.ndarray | None = None
+    sigma_pixels: float = 1.0
+
+    def line(self) -> np.ndarray:
+        """The survey-style line mask of the moment maps inside ``mask`` (module docstring, "Line mask")."""
+        return line_mask(self.data, self.sigma_pixels) & self.mask
+
+    @staticmethod
+    def line_record(line: np.ndarray) -> dict:
+        return {"core_noise_units": LINE_CORE, "wing_noise_units": LINE_WING, "adjacent_channels": 2,
+                "smoothing": "one beam FWHM on the sky, none in velocity", "voxels": int(line.sum())}
 
     @property
     def footprint(self) -> np.ndarray:
@@ -262,11 +272,7 @@ def make_signal_mask(cube: LineCube, *, threshold: float = 4.0, spatial_smoothin
         "smoothed_noise_median": float(np.nanmedian(noise)), "masked_voxels": int(mask.sum()),
         "masked_pixels": int(mask.any(axis=0).sum()),
     }
-    line = line_mask(data, sigma_pixels) & mask
-    record["line_mask"] = {"core_noise_units": LINE_CORE, "wing_noise_units": LINE_WING,
-                           "adjacent_channels": 2, "smoothing": "one beam FWHM on the sky, none in velocity",
-                           "voxels": int(line.sum())}
-    return SignalMask(mask=mask, excluded=excluded, data=data, record=record, line=line)
+    return SignalMask(mask=mask, excluded=excluded, data=data, record=record, sigma_pixels=float(sigma_pixels))
 
 
 def _adjacent(above: np.ndarray) -> np.ndarray:
@@ -298,8 +304,11 @@ def _field_filling(cube, usable, clipped, sigma_pixels) -> list:
     """Runs of channels where emission fills the field, each marked whether it is a foreground (:mod:`.foreground`)."""
     from .foreground import find_field_filling
 
-    smoothed = _smooth(cube.data, usable, 0.0, sigma_pixels)
-    return find_field_filling(cube.velocity, cube.channel_width, clipped, usable, smoothed, channel_noise(smoothed))
+    def smooth():
+        smoothed = _smooth(cube.data, usable, 0.0, sigma_pixels)
+        return smoothed, channel_noise(smoothed)
+
+    return find_field_filling(cube.velocity, cube.channel_width, clipped, usable, smooth)
 
 
 def _exclude_detected(cube, finite, ranges, detected, steps):

@@ -83,14 +83,14 @@ def _extent(field_median, run):
     return lo, hi
 
 
-def find_field_filling(velocity, channel_width, clipped, usable, smoothed, smoothed_noise) -> list:
+def find_field_filling(velocity, channel_width, clipped, usable, smooth) -> list:
     """Runs of channels where emission fills the field (module docstring).
 
     ``clipped``: the mask's clipped smoothed cube (before the largest region); ``usable``: finite, not
-    excluded voxels; ``smoothed``: the cube smoothed spatially by the mask's beam, ``smoothed_noise`` its
-    robust noise per channel. Returns one dict per run: ``velocities`` [lo, hi] (km/s, the range to leave
-    out), ``channels``, ``peak_fill``, ``concentrated``, ``plane_change_kms``, ``foreground`` (both tests
-    passed).
+    excluded voxels; ``smooth()``: (the cube smoothed on the sky by the mask's beam, its robust noise per
+    channel), called only when some channel fills the field. Returns one dict per run: ``velocities``
+    [lo, hi] (km/s, the range to leave out), ``channels``, ``peak_fill``, ``concentrated``,
+    ``plane_change_kms``, ``foreground`` (both tests passed).
     """
     from scipy.ndimage import label
 
@@ -101,6 +101,7 @@ def find_field_filling(velocity, channel_width, clipped, usable, smoothed, smoot
     runs, count = label(fill >= FILL)
     if count == 0:
         return []
+    smoothed, smoothed_noise = smooth()
     with np.errstate(invalid="ignore", divide="ignore"):
         field_median = np.nan_to_num(np.nanmedian(np.where(usable, smoothed, np.nan), axis=(1, 2)) / smoothed_noise)
     tolerance = max(width, VELOCITY_TOLERANCE)

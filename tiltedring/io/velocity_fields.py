@@ -156,7 +156,9 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     moments = _moments(data, signal.mask, cube)
     velocity, error, dispersion, h3, counts = moments["velocity"], moments["error"], moments["dispersion"], None, {}
     if kind == "moment":  # over the survey-style line mask (module docstring)
-        line = _moments(data, signal.line, cube)
+        line_mask = signal.line()
+        signal.record["line_mask"] = signal.line_record(line_mask)
+        line = _moments(data, line_mask, cube)
         moments["valid"] = moments["valid"] & line["valid"]
         velocity, error, dispersion = line["velocity"], line["error"], line["dispersion"]
     elif kind == "peak":
