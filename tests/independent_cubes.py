@@ -118,3 +118,70 @@ def cube_hdu(data, velocity, wcs, *, axis="VRAD", unit="K", rest=HI_REST, conven
         header["BMAJ"] = header["BMIN"] = bmaj_arcsec / 3600.0
         header["BPA"] = 0.0
     return fits.PrimaryHDU(np.asarray(data, np.float32), header=header)
+
+
+CO_1_0 = 115.2712018 * u.GHz  # rest frequencies of CO J=1-0 and 2-1 (CDMS/JPL line lists; from memory)
+CO_2_1 = 230.5380000 * u.GHz
+
+
+def survey_hdus(data, velocity, wcs, *, spectral="FREQ", rest=CO_1_0, rest_keyword="RESTFRQ", velocity_unit="m/s",
+                unit="K", descending=False, stokes=None, beam=(4.5, 3.8, 20.0), beam_table=False, nan_border=None):
+    """The cube as a telescope archive might write it: an HDUList (with a BEAMS table when ``beam_table``).
+
+    ``velocity``: the channels' radio velocities (km/s, increasing, the truth). ``spectral``: ``FREQ``
+    (frequencies from astropy's radio Doppler equivalency at ``rest``), or ``VRAD``, ``VOPT`` or the
+    AIPS-style ``VELO-LSR``, whose CRVAL3/CDELT3 hold the same numbers in ``velocity_unit``.
+    ``rest_keyword``: ``RESTFRQ`` or the older ``RESTFREQ``. ``descending``: channels written in the
+    reverse order. ``stokes``: None, ``"last"`` (a 4th STOKES axis of length 1) or ``"before"`` (STOKES
+    as axis 3, the spectral axis 4th, as some CASA exports have it). ``nan_border``: blank (NaN) every
+    pixel farther than this fraction of the half-width from the centre (a primary-beam cut).
+    ``beam``: (major, minor arcsec, PA deg) in BMAJ/BMIN/BPA, or per channel in a BEAMS table.
+    """
+    from astropy.table import Table
+
+    data = np.array(data, dtype=np.float32)
+    values = np.asarray(velocity, float)
+    if descending:
+        data, values = data[::-1], values[::-1]
+    if nan_border is not None:
+        ny, nx = data.shape[1:]
+        yy, xx = np.mgrid[0:ny, 0:nx]
+        outside = np.hypot(xx - (nx - 1) / 2, yy - (ny - 1) / 2) > nan_border * min(nx, ny) / 2
+        data[:, outside] = np.nan
+    header = wcs.to_header()
+    if spectral == "FREQ":
+        freq = (values * u.km / u.s).to_value(u.Hz, equivalencies=u.doppler_radio(rest))
+        axis = dict(CTYPE3="FREQ", CUNIT3="Hz", CRVAL3=freq[0], CDELT3=freq[1] - freq[0], CRPIX3=1.0)
+    else:
+        scale = (1.0 * u.km / u.s).to_value(u.Unit(velocity_unit))
+        axis = dict(CTYPE3=spectral, CUNIT3=velocity_unit, CRVAL3=values[0] * scale,
+                    CDELT3=(values[1] - values[0]) * scale, CRPIX3=1.0)
+    header["WCSAXES"] = 3
+    header.update(axis)
+    header[rest_keyword] = rest.to_value(u.Hz)
+    if spectral in ("FREQ", "VRAD", "VOPT"):
+        header["SPECSYS"] = "LSRK"
+    header["BUNIT"] = unit
+    if stokes is not None:
+        header["WCSAXES"] = 4
+        extra = dict(CTYPE="STOKES", CUNIT="", CRVAL=1.0, CDELT=1.0, CRPIX=1.0)
+        if stokes == "last":
+            header.update({f"{key}4": value for key, value in extra.items()})
+            data = data[None]
+        else:
+            for key, value in extra.items():
+                header[f"{key}4"] = header[f"{key}3"]
+                header[f"{key}3"] = value
+            data = data[:, None]
+    if beam_table:
+        header["CASAMBM"] = True
+    else:
+        header["BMAJ"], header["BMIN"], header["BPA"] = beam[0] / 3600.0, beam[1] / 3600.0, beam[2]
+    hdus = [fits.PrimaryHDU(data, header=header)]
+    if beam_table:
+        n = values.size
+        table = Table({"BMAJ": np.full(n, beam[0]) * u.arcsec, "BMIN": np.full(n, beam[1]) * u.arcsec,
+                       "BPA": np.full(n, beam[2]) * u.deg, "CHAN": np.arange(n, dtype=np.int32),
+                       "POL": np.zeros(n, np.int32)})
+        hdus.append(fits.BinTableHDU(table, name="BEAMS"))
+    return fits.HDUList(hdus)

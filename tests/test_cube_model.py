@@ -9,6 +9,7 @@ a beam), a dispersion of 10 km/s, a 3.5-pixel (7") beam, 5 km/s channels, beam-s
 import numpy as np
 import pytest
 from analytic_cubes import draw_line_cube, moment_one
+from report_checks import assert_readable, pdf_pages
 from astropy.io import fits
 from astropy.table import Table
 from astropy.wcs import WCS
@@ -130,10 +131,13 @@ def chained(noisy):
     return result, cube, truth
 
 
-@pytest.mark.xfail(strict=True, reason="known shortfall: with the map fit's geometry (inclination 1.2 deg high, "
-                   "centre and v_systemic slightly off) the innermost ring, at half a beam, comes out 11 % high "
-                   "(5 % with the true geometry); its formal error is 4 %")
 def test_innermost_ring_after_a_map_fit(chained):
+    """The ring at half a beam, after the map fit (inclination 1.2 deg high, centre and v_systemic slightly
+    off), within 10 % of the truth (issue 16: no ring worse than 10 %). Measured 3.9 % here (1.0-6.5 % over
+    five noise draws; 0.7 % on the noiseless cube with the true geometry, 2 % with the map's). It was 11 %
+    while the model's curve took Catmull-Rom slopes, which for the uneven spacing at the first ring (the
+    centre node half a ring away) made the curve 4-5 % low between the first two rings: the fit pushed the
+    first ring up to make up for it (7 % on the noiseless cube with the true geometry)."""
     result, cube, truth = chained
     radius = result.rings["radius"].value
     ratio = result.rings["v_rotation"].value / truth["v_rotation"](radius)
@@ -177,17 +181,33 @@ def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
         np.testing.assert_allclose(model[0].data + residual[0].data, cube.data, atol=1e-5 * cube.data.max())
 
 
-def test_cube_pages_draw_data_and_model(chained):
-    """Channel maps and major/minor position-velocity slices: figures without pyplot, with the model as
-    contours on every panel that shows emission."""
+def test_a_cube_fit_report_has_the_cube_pages_all_one_size(chained, tmp_path):
+    """The report of a fit made from a cube gains two A4 pages after "kinematics": twelve channel maps and
+    the major/minor slices (each with the model cube contoured), the inner curve and the dispersion.
+    Checked against the PDF's own page boxes (595 x 842 pt, ISO 216 A4) and matplotlib's artists; the
+    same readability rules as the other pages (text 7.5 pt or more, tick labels 8 pt or more)."""
     import matplotlib
+    from matplotlib.image import AxesImage
 
-    from tiltedring.products.cube_figures import cube_pages
+    from tiltedring.products import report
+    from tiltedring.products.cube_figures import plot_channel_maps, plot_position_velocity
 
     backend = matplotlib.get_backend()
     result, cube, truth = chained
-    pages = dict(cube_pages(result))
-    assert set(pages) == {"channel_maps", "position_velocity"}
-    assert len(pages["channel_maps"].axes) == 9 and len(pages["position_velocity"].axes) == 2
-    assert all(ax.collections for ax in pages["position_velocity"].axes)  # model contours drawn
+    pages = report.report_pages(result)
+    names = [name for name, _ in pages]
+    assert names == ["summary", "maps", "profiles", "kinematics", "cube_channels", "cube_slices"]
+    assert {tuple(np.round(f.get_size_inches(), 2)) for _, f in pages} == {report.PAGE_SIZE}
+    channels, slices = pages[4][1], pages[5][1]
+    maps = [ax for ax in channels.axes if ax.images and isinstance(ax.images[0], AxesImage) and ax.collections]
+    assert len(maps) == 12  # every channel map shows the model as contours over the data
+    assert sum(bool(ax.images) and bool(ax.collections) for ax in slices.axes) == 2  # major and minor slices
+    for name, figure in pages[4:]:
+        assert_readable(figure, name)
+    path = tmp_path / "report.pdf"
+    report.write_report(result, path)
+    assert pdf_pages(path) == (6, {(0, 0, 595, 842)})
+    # the panels also stand alone, drawn without pyplot
+    assert len(plot_channel_maps(result, count=4).axes) == 5  # four maps and the colour bar
+    assert plot_position_velocity(result, "minor").axes[0].collections
     assert matplotlib.get_backend() == backend

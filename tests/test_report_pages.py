@@ -17,6 +17,8 @@ import pytest
 from astropy import units as u
 from astropy.table import QTable, Table
 
+from report_checks import assert_readable, pdf_pages, visible_texts
+
 from tiltedring.cli import main
 from tiltedring.synthetic import DiscTruth, make_field
 
@@ -34,10 +36,7 @@ def warped_result():
 
 
 def _texts(figure) -> list:
-    from matplotlib.text import Text
-
-    figure.savefig(__import__("io").BytesIO(), format="png", dpi=40)  # lay out every tick label
-    return [t for t in figure.findobj(Text) if t.get_visible() and t.get_text().strip()]
+    return visible_texts(figure)
 
 
 def test_report_pages_share_one_size_and_page_one_names_object_and_decisions(warped_result, tmp_path):
@@ -53,18 +52,11 @@ def test_report_pages_share_one_size_and_page_one_names_object_and_decisions(war
         assert words in page_one, words
     # journal column width: every text of every page at 7.5 pt or more, every tick label at 8 pt or more
     for name, figure in pages:
-        texts = _texts(figure)
-        assert min(t.get_fontsize() for t in texts) >= 7.5, name
-        for ax in figure.axes:
-            labels = ax.get_xticklabels() + ax.get_yticklabels()
-            assert all(label.get_fontsize() >= 8 for label in labels if label.get_text()), name
+        assert_readable(figure, name)
     # the PDF itself: as many pages as builders made, every MediaBox A4 (595.3 x 841.9 pt, ISO 216)
     path = tmp_path / "report.pdf"
     report.write_report(warped_result, path)
-    pdf = path.read_bytes()
-    assert len(re.findall(rb"/Type\s*/Page(?![s\w])", pdf)) == 4
-    boxes = {tuple(round(float(v)) for v in box.split()) for box in re.findall(rb"/MediaBox\s*\[([^\]]+)\]", pdf)}
-    assert boxes == {(0, 0, 595, 842)}
+    assert pdf_pages(path) == (4, {(0, 0, 595, 842)})
 
 
 def test_a_registered_page_is_appended_and_numbered(warped_result):

@@ -218,19 +218,21 @@ def read_job_cube(job: Job):
                      rest_frequency=arguments["rest_frequency"], convention=arguments["convention"])
 
 
-def curve_from_cube(job: Job, result, cube) -> None:
+def curve_from_cube(job: Job, result, cube, cube_maps=None) -> None:
     """Step "curve from the cube" (cube inputs, unless ``curve_from_cube`` is off): the inner rings refitted on
     the cube, the model cube made (:mod:`.pipeline.cube_curve`). The cube is the one the maps were made
-    from; excluded velocity ranges are left out of the fit."""
+    from; the velocity ranges left out of its maps (``cube_maps``' record, else the job's) are left out of the fit."""
     if cube is None or not job.cube.curve_from_cube:
         return
-    from .pipeline.cube_curve import excluded_channel_mask, refit_curve_on_cube
+    from .pipeline.cube_curve import refit_curve_on_cube
 
     if result.vmap.shape != cube.data.shape[1:]:
         raise InputError("the curve cannot be fitted on the cube when its maps were binned (bin); leave out bin, "
                          "or turn the cube fit off (--no-curve-from-cube)")
+    excluded = cube_maps.record["mask"]["excluded_velocities"] if cube_maps is not None else \
+        job.cube.exclude_velocities
     refit_curve_on_cube(result, cube, within_beams=job.cube.cube_fit_beams, response=job.cube.channel_response,
-                        channels=excluded_channel_mask(cube, job.cube.exclude_velocities))
+                        exclude_velocities=excluded)
 
 
 def input_record(job: Job, cube_maps=None) -> dict:
@@ -400,9 +402,11 @@ def _fit_and_curve(job: Job):
     vmap, cube_maps, cube = read_job_maps(job)
     try:
         result = fit_velocity_map(vmap, job.fit)
-        curve_from_cube(job, result, cube)
+        curve_from_cube(job, result, cube, cube_maps)
     except (ZeroDivisionError, FloatingPointError, np.linalg.LinAlgError) as exc:
         _broke_down(job, exc)
     check_physical(result)
     curve = result.curve(**job.curve.to_dict())
+    if cube_maps is not None:  # the maps' cautions (e.g. a foreground found) reach fit.json and the report
+        result.cautions[:0] = [text for text in cube_maps.record["cautions"] if text not in result.cautions]
     return result, curve, cube_maps

@@ -5,10 +5,15 @@ sky-plane surface brightness ``surface_brightness`` (cube unit x km/s, the momen
 and a Gaussian line of one-dimensional velocity dispersion ``dispersion`` (km/s). Each pixel is placed
 on its ring exactly as the model field does (:func:`.geometry.place_pixel`, parameters interpolated
 linearly between ring centres), except that v_rotation follows a cubic Hermite curve through the
-ring centres with Catmull-Rom slopes (Catmull & Rom 1974), which follows a steep inner rise between
-rings a beam apart where straight segments cannot (the curve is still linear in the ring speeds).
-Inside the first ring centre the rotation and radial speeds fall linearly to zero at the centre
-(solid body), the other parameters stay those of the first ring. A
+ring centres, which follows a steep inner rise between rings a beam apart where straight segments
+cannot (the curve is still linear in the ring speeds). Its slope at each ring is that of the parabola
+through the ring and its two neighbours (the three-point tangent for uneven spacing, de Boor 1978, A
+Practical Guide to Splines, ch. IV; Catmull & Rom's chord where rings are evenly spaced); the centre
+(r = 0, v = 0) is the node below the first ring, which lies only half a ring from it, and there the
+chord slope left the curve 4-5 % low between the first two rings of a tanh-like rise (the three-point
+slope: within 1.3 %). Inside the first ring centre v_rotation is the cubic from the centre (slope
+v_0 / r_0, the curve continued as an odd function) to the first ring; the radial speed falls linearly
+to zero at the centre, the other parameters stay those of the first ring. A
 pixel is split into ``subpixels`` x ``subpixels`` points so that steep velocity gradients inside a
 pixel broaden its line as they do on the sky.
 
@@ -114,46 +119,70 @@ def _between(a, b, w):
 
 @njit(cache=True, inline="always")
 def _slope_weights(j, radii, last):
-    """(lower ring, weight of lower, upper ring, weight of upper) of the Catmull-Rom slope at ring ``j``:
-    (v_(j+1) - v_(j-1)) / (r_(j+1) - r_(j-1)), with v = 0 at r = 0 below the first ring and one-sided at the last."""
+    """(ring, weight) x 3 of the slope at ring ``j``, the derivative of the parabola through rings j - 1, j and
+    j + 1 (the three-point tangent for uneven spacing; de Boor 1978, ch. IV):
+    m_j = (h_+ d_- + h_- d_+) / (h_- + h_+), with h_-, h_+ the spacings and d_-, d_+ the secants on each side;
+    for even spacing it is Catmull-Rom's (v_(j+1) - v_(j-1)) / (r_(j+1) - r_(j-1)). Below the first ring
+    the node is the centre (r = 0, v = 0); the last ring takes the one-sided secant. Ring -1: unused."""
     if j == last:
-        span = radii[last] - radii[last - 1] if last > 0 else radii[last]
-        return last - 1, -1.0 / span, last, 1.0 / span
-    if j == 0:
-        return -1, 0.0, 1, 1.0 / radii[1]
-    span = radii[j + 1] - radii[j - 1]
-    return j - 1, -1.0 / span, j + 1, 1.0 / span
+        if last == 0:
+            return 0, 1.0 / radii[0], -1, 0.0, -1, 0.0
+        span = radii[last] - radii[last - 1]
+        return last - 1, -1.0 / span, last, 1.0 / span, -1, 0.0
+    low = radii[j] - radii[j - 1] if j > 0 else radii[0]
+    high = radii[j + 1] - radii[j]
+    total = low + high
+    return (j - 1, -high / (low * total), j, (high / low - low / high) / total, j + 1, low / (high * total))
+
+
+@njit(cache=True, inline="always")
+def _add_weight(ring, value, index, weight):
+    """Add ``value`` to the weight of ``ring`` in the (index, weight) list (ring -1: nothing)."""
+    if ring < 0:
+        return
+    for n in range(index.shape[0]):
+        if index[n] == ring or index[n] == -1:
+            index[n] = ring
+            weight[n] += value
+            return
 
 
 @njit(cache=True, inline="always")
 def _curve_weights(j, i, w, taper, radii, last, index, weight):
     """Weights of the ring speeds in v_rotation at fractional ring index j + w: a cubic Hermite curve
-    through the ring centres with Catmull-Rom slopes (linear in the speeds); inside the first ring
-    centre ``taper`` (r / r_0) times the first ring's speed. Fills ``index``/``weight`` (4 entries,
-    -1 unused) and returns nothing."""
+    through the ring centres with the three-point slopes of :func:`_slope_weights` (linear in the speeds);
+    inside the first ring centre (``taper`` = r / r_0 < 1) the cubic from the centre, v = 0 with slope
+    v_0 / r_0 (the curve continued as an odd function, v(-r) = -v(r)), to ring 0. Fills ``index``/``weight``
+    (4 entries, -1 unused) and returns nothing."""
     for n in range(4):
         index[n] = -1
         weight[n] = 0.0
-    if i == j or taper < 1.0:
-        index[0] = j
-        weight[0] = taper
+    if taper < 1.0:
+        t = taper
+        _add_weight(0, t * t * (3.0 - 2.0 * t) + t * (1.0 - t) * (1.0 - t), index, weight)  # h01 + h10 (v_0 / r_0)
+        a, wa, b, wb, c, wc = _slope_weights(0, radii, last)
+        h11 = (t**3 - t**2) * radii[0]
+        _add_weight(a, h11 * wa, index, weight)
+        _add_weight(b, h11 * wb, index, weight)
+        _add_weight(c, h11 * wc, index, weight)
+        return
+    if i == j:
+        _add_weight(j, 1.0, index, weight)
         return
     t = w
     h00, h10 = 2 * t**3 - 3 * t**2 + 1, t**3 - 2 * t**2 + t
     h01, h11 = -2 * t**3 + 3 * t**2, t**3 - t**2
     step = radii[i] - radii[j]
-    index[0], weight[0] = j, h00
-    index[1], weight[1] = i, h01
-    a, wa, b, wb = _slope_weights(j, radii, last)
-    c, wc, d, wd = _slope_weights(i, radii, last)
-    for ring, value in ((a, h10 * step * wa), (b, h10 * step * wb), (c, h11 * step * wc), (d, h11 * step * wd)):
-        if ring < 0:
-            continue
-        for n in range(4):
-            if index[n] == ring or index[n] == -1:
-                index[n] = ring
-                weight[n] += value
-                break
+    _add_weight(j, h00, index, weight)
+    _add_weight(i, h01, index, weight)
+    a, wa, b, wb, c, wc = _slope_weights(j, radii, last)
+    _add_weight(a, h10 * step * wa, index, weight)
+    _add_weight(b, h10 * step * wb, index, weight)
+    _add_weight(c, h10 * step * wc, index, weight)
+    a, wa, b, wb, c, wc = _slope_weights(i, radii, last)
+    _add_weight(a, h11 * step * wa, index, weight)
+    _add_weight(b, h11 * step * wb, index, weight)
+    _add_weight(c, h11 * step * wc, index, weight)
 
 
 @njit(cache=True, nogil=True)

@@ -213,11 +213,15 @@ def _spectral_cube_axes(data, header, name):
 
 
 def _brightness_unit(header, given, name) -> u.UnitBase:
+    """BUNIT (or the unit given) as an astropy unit; spellings such as JY/BEAM, Kelvin or 'K (Tmb)' (a unit with
+    the temperature scale named after it) are read too."""
     text = given if given is not None else str(header.get("BUNIT", "")).strip()
     if not text:
         raise InputError(f"cube {name} has no BUNIT keyword, so its brightness unit is unknown; state it "
                          "(--brightness-unit Jy/beam or K)")
-    candidates = [text, text.replace("JY", "Jy").replace("/BEAM", "/beam").replace("/Beam", "/beam")]
+    plain = text.replace("JY", "Jy").replace("/BEAM", "/beam").replace("/Beam", "/beam")
+    first = plain.replace("(", " ").split()[0]
+    candidates = [text, plain, first, {"KELVIN": "K"}.get(first.upper(), first)]
     for attempt in candidates:
         for fmt in ("fits", None):
             try:
@@ -311,12 +315,20 @@ def _beam(header, beam, beams_table) -> Beam | None:
 
     found = None
     if beams_table is not None:
-        found = radio_beam.Beams.from_fits_bintable(beams_table).common_beam()
-        warnings.warn("the cube has one beam per channel; their common beam is used", FitCaution, stacklevel=3)
-    try:
-        found = found or radio_beam.Beam.from_fits_header(header)
-    except Exception:  # radio-beam raises plain errors when a header holds no beam
-        found = None
+        try:
+            beams = radio_beam.Beams.from_fits_bintable(beams_table)
+        except Exception as exc:  # radio-beam raises plain errors for a table it cannot read
+            raise InputError(f"the cube's BEAMS table cannot be read ({exc}); state the beam (--beam MAJ,MIN,PA)") from None
+        found = beams.common_beam()
+        if np.ptp(beams.major.to_value(u.arcsec)) > 0.01 * found.major.to_value(u.arcsec):
+            warnings.warn(f"the cube's beam changes from channel to channel ({beams.major.min().to(u.arcsec):.2f} to "
+                          f"{beams.major.max().to(u.arcsec):.2f} major axis); their common beam is used",
+                          FitCaution, stacklevel=3)
+    if found is None:
+        try:
+            found = radio_beam.Beam.from_fits_header(header)
+        except Exception:  # radio-beam raises plain errors when a header holds no beam
+            found = None
     if found is None or not np.isfinite(found.major.value) or found.major.value <= 0:
         return None
     return Beam(float(found.major.to_value(u.arcsec)), float(found.minor.to_value(u.arcsec)),

@@ -2,8 +2,10 @@
 
 Kinds of velocity map (``kind``), each over the emission mask of :mod:`.cube_mask`:
 
-- ``moment``: intensity-weighted mean velocity (moment 1), v1 = sum I v / sum I, with
-  error^2 = sum noise^2 (v - v1)^2 / (sum I)^2 and the moment-2 dispersion.
+- ``moment``: intensity-weighted mean velocity (moment 1), v1 = sum I v / sum I over the line mask of
+  :mod:`.cube_mask` (a survey-style hysteresis mask inside the source mask; no other clipping: negative
+  values inside it count), with error^2 = sum noise^2 (v - v1)^2 / (sum I)^2 and the moment-2
+  dispersion over the same mask. Pixels need a moment 0 above 3 times its noise over both masks.
 - ``peak``: the velocity of the brightest channel, refined by the parabola through it and its two
   neighbours (common practice); error propagated from the channel noise.
 - ``gaussian``: the centre of a single Gaussian fitted to the spectrum.
@@ -45,7 +47,6 @@ MAP_FILES = {"velocity": "velocity.fits", "velocity_error": "velocity_err.fits",
              "dispersion": "dispersion.fits", "mask": "mask.fits", "h3": "h3.fits", "record": "maps.json"}
 EXCLUSION_MARGIN = 1.5  # lines centred within this many widths of a vetoed range are cut by it: blanked
 MINIMUM_SNR = 3.0  # a pixel's masked moment 0 must exceed this many times its noise to get a velocity
-_CTYPE = {"radio": "VRAD", "optical": "VOPT", "relativistic": "VELO"}
 
 
 @dataclass
@@ -88,19 +89,10 @@ class VelocityMaps:
         return vmap
 
     def mask_header(self) -> fits.Header:
-        """A 3-D header for the mask: the celestial axes and a linear velocity axis (km/s)."""
-        header = self.header_for("")
-        del header["BUNIT"]
-        header["WCSAXES"] = 3
-        widths = np.diff(self.channel_velocity)
-        header["CTYPE3"] = _CTYPE[self.convention]
-        header["CUNIT3"] = "km/s"
-        header["CRPIX3"] = 1.0
-        header["CRVAL3"] = float(self.channel_velocity[0])
-        header["CDELT3"] = float(np.median(widths)) if widths.size else 1.0
-        if widths.size and np.ptp(widths) > 1e-3 * abs(header["CDELT3"]):
-            header["COMMENT"] = "channel velocities are not evenly spaced: CDELT3 is their median spacing"
-        return header
+        """A 3-D header for the mask: the celestial axes and a linear velocity axis (km/s), no BUNIT."""
+        from .cube_files import spectral_header
+
+        return spectral_header(self.header, self.channel_velocity, self.convention)
 
     def write_into(self, folder) -> dict:
         """Write every map and ``maps.json`` into ``folder`` (each file atomically); returns the paths."""
@@ -136,7 +128,7 @@ class VelocityMaps:
 def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(), exclusion: str = "interpolate",
                        keep_regions: str = "largest", mask_threshold: float = 4.0, minimum_run: int = 3,
                        spatial_smoothing: float = 1.0, spectral_smoothing: float = 3.0, window_margin: int = 4,
-                       threads: int | None = None,
+                       detect_foreground: bool = True, threads: int | None = None,
                        **read_options) -> VelocityMaps:
     """Velocity, error, moment-0 and dispersion maps of a cube (see the module docstring for ``kind``).
 
@@ -145,7 +137,9 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
     ``exclusion`` ``"interpolate"`` (vetoed off the galaxy, interpolated foreground subtracted on it) or
     ``"veto"`` (left out of every spectrum); ``keep_regions`` ``"largest"`` (the galaxy only) or ``"all"``
     (see :mod:`.cube_mask`);
-    ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask.
+    ``mask_threshold`` (noise units of the smoothed cube) and ``minimum_run`` (channels) steer the mask;
+    ``detect_foreground``: channels where emission at one velocity fills the field are excluded too, with a
+    caution (:mod:`.foreground`).
     """
     if kind not in KINDS:
         raise InputError(f"velocity kind {kind!r}: give one of {', '.join(KINDS)}")
@@ -153,14 +147,21 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
         cube = read_cube(cube, **read_options)
     signal = make_signal_mask(cube, threshold=mask_threshold, minimum_run=minimum_run,
                               spatial_smoothing=spatial_smoothing, spectral_smoothing=spectral_smoothing,
-                              exclude_velocities=exclude_velocities, exclusion=exclusion, keep_regions=keep_regions)
+                              exclude_velocities=exclude_velocities, exclusion=exclusion, keep_regions=keep_regions,
+                              detect_foreground=detect_foreground)
     if not signal.mask.any():
         raise InputError(f"cube {cube.source}: no emission above {mask_threshold} times the noise of the smoothed "
                          "cube; lower the mask threshold or check the excluded velocity ranges")
     data = signal.data
     moments = _moments(data, signal.mask, cube)
     velocity, error, dispersion, h3, counts = moments["velocity"], moments["error"], moments["dispersion"], None, {}
-    if kind == "peak":
+    if kind == "moment":  # over the survey-style line mask (module docstring)
+        line_mask = signal.line()
+        signal.record["line_mask"] = signal.line_record(line_mask)
+        line = _moments(data, line_mask, cube)
+        moments["valid"] = moments["valid"] & line["valid"]
+        velocity, error, dispersion = line["velocity"], line["error"], line["dispersion"]
+    elif kind == "peak":
         velocity, error = _peak_velocity(data, signal.mask, cube)
     elif kind in ("gaussian", "hermite"):
         velocity, error, dispersion, h3, counts = _fitted_maps(data, signal.mask, cube, moments, kind, window_margin,
@@ -185,9 +186,29 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
                         channel_velocity=cube.velocity.copy(), convention=cube.convention, h3=h3, record=record)
 
 
-def _cautions(mask_record, counts, n_valid) -> list:
-    """Where the maps may mislead: foreground subtracted by interpolation, many pixels lost."""
+def _foreground_cautions(mask_record) -> list:
+    """What the foreground detection did, with the range and the options to state it or turn it off."""
     out = []
+    for run in mask_record.get("field_filling", []):
+        if not run["foreground"]:
+            continue
+        lo, hi = run["velocities"]
+        where = (f"emission at one velocity fills {100 * run['peak_fill']:.0f} % of the field between {lo:g} and "
+                 f"{hi:g} km/s (a foreground, or a continuum-subtraction problem: it does not move with the "
+                 "galaxy's rotation)")
+        if run.get("excluded"):
+            out.append(f"{where}; those channels were left out of the source mask as an excluded range. State the "
+                       f"range yourself with --exclude-velocities={lo:g}:{hi:g} (widen it if the foreground's wings "
+                       "show in the maps), or keep the channels with --no-detect-foreground")
+        else:
+            out.append(f"{where}; they were kept because no other channel holds emission: if it is a foreground, "
+                       "the maps show it and not the galaxy")
+    return out
+
+
+def _cautions(mask_record, counts, n_valid) -> list:
+    """Where the maps may mislead: foreground found or subtracted by interpolation, many pixels lost."""
+    out = _foreground_cautions(mask_record)
     if mask_record["exclusion"] == "interpolate" and mask_record["foreground_interpolated_pixels"]:
         out.append(f"foreground in the excluded velocity ranges was interpolated from around the galaxy and "
                    f"subtracted on {mask_record['foreground_interpolated_pixels']} pixels: velocities there assume a "

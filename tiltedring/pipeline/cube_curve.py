@@ -6,7 +6,8 @@ The ring table keeps the map's values in their own columns (``v_rotation_map``,
 ``map``: v_rotation from the map fit, dispersion matched by line width). For the rings fitted to the
 cube, ``v_rotation_err`` is the cube fit's noise error with the sides and inclination terms of the
 map fit in quadrature (the inclination term scaled to the new speed). ``fit.json`` records the
-treatment under ``curve_from_cube``.
+treatment under ``curve_from_cube``, with the velocity ranges whose channels were left out
+(``excluded_velocities``: those stated and those found as foreground when the maps were made).
 """
 
 from __future__ import annotations
@@ -21,19 +22,28 @@ __all__ = ["refit_curve_on_cube", "excluded_channel_mask"]
 KMS = u.km / u.s
 
 
+def _ranges(exclude_velocities) -> list:
+    from ..io.cube_mask import parse_velocity_ranges
+
+    return parse_velocity_ranges(exclude_velocities) if exclude_velocities is not None else []
+
+
 def excluded_channel_mask(cube, exclude_velocities) -> np.ndarray | None:
     """Channels to use: all but those in the ``LO:HI[,LO:HI]`` ranges (None when nothing is excluded)."""
-    if not exclude_velocities:
+    ranges = _ranges(exclude_velocities)
+    if not ranges:
         return None
-    from ..io.cube_mask import excluded_channels, parse_velocity_ranges
+    from ..io.cube_mask import excluded_channels
 
-    ranges = parse_velocity_ranges(exclude_velocities) if isinstance(exclude_velocities, str) else exclude_velocities
     return ~excluded_channels(cube.velocity, cube.channel_width, ranges)
 
 
 def refit_curve_on_cube(result, cube, within_beams: float = 4.0, response: str = "boxcar", channels=None,
-                        threads: int | None = None):
+                        exclude_velocities=None, threads: int | None = None):
     """Refit the inner curve of ``result`` (a :class:`..products.result.FitResult`) on ``cube`` in place.
+
+    ``channels``: boolean mask of the channels to use; ``exclude_velocities``: (lo, hi) km/s ranges (or
+    ``"LO:HI[,LO:HI]"``) whose channels are left out as well (foreground), recorded in ``fit.json``.
 
     Returns the observed model cube (n_channels, ny, nx) of the final rings; ``result.model_cube`` is set
     to it and ``result.cube`` to ``cube``."""
@@ -45,10 +55,15 @@ def refit_curve_on_cube(result, cube, within_beams: float = 4.0, response: str =
     order = np.argsort(rings["radius"])
     if np.any(order != np.arange(len(order))):
         raise ValueError("the ring table must be sorted by radius")
+    ranges = _ranges(exclude_velocities)
+    keep = excluded_channel_mask(cube, ranges)
+    if keep is not None:
+        channels = keep if channels is None else keep & np.asarray(channels, bool)
     fitted = fit_curve_on_cube(cube, rings, result.layout.edges, within_beams=within_beams, response=response,
                                channels=channels, threads=threads)
     _update_table(table, fitted)
     record = dict(fitted.record)
+    record["excluded_velocities"] = [[float(lo), float(hi)] for lo, hi in ranges]
     record["treatment_by_ring"] = {"cube": [float(r) for r in rings["radius"][fitted.treatment == "cube"]],
                                    "map": [float(r) for r in rings["radius"][fitted.treatment == "map"]]}
     record["columns"] = {"v_rotation": "cube fit where curve_source is 'cube', else the map fit",

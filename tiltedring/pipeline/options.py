@@ -289,6 +289,10 @@ class CubeOptions:
                             help="how the excluded ranges are treated: interpolate (vetoed off the galaxy; on it the "
                                  "foreground interpolated from around the galaxy is subtracted) or veto (left out of "
                                  "every spectrum; lines near them are blanked)")
+    detect_foreground: bool = option(True, group="cube",
+                                     help="keep channels where emission at one velocity fills most of the field "
+                                          "(by default they are found, left out like an excluded range, and named "
+                                          "in a caution: a foreground or a continuum-subtraction problem)")
     all_regions: bool = option(False, group="cube",
                                help="keep every emission region of the mask (default: only the largest, the galaxy)")
     mask_threshold: float = option(4.0, group="cube", metavar="SIGMA", bounds=Bounds(above=0, maximum=1000),
@@ -324,6 +328,6 @@ class CubeOptions:
         return {"kind": self.velocity_kind, "exclude_velocities": self.exclude_velocities or (),
                 "exclusion": self.exclusion, "keep_regions": "all" if self.all_regions else "largest",
                 "mask_threshold": self.mask_threshold, "minimum_run": self.minimum_run,
-                "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
+                "detect_foreground": self.detect_foreground, "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
                 "convention": self.velocity_convention}
 

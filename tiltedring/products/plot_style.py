@@ -6,7 +6,8 @@ every size is set on the artist itself (no rcParams), so a figure looks the same
 Colours are our own: velocity maps run from deep slate blue (approaching) through a warm paper
 white at the systemic velocity to burnt copper (receding); residual maps from moss green (model too
 fast) through the same paper white to plum (data faster than the model); both are monotonic in
-lightness on each side, so they read in grey and for the common colour-vision deficiencies. Lines:
+lightness on each side, so they read in grey and for the common colour-vision deficiencies; channel
+maps and position-velocity slices of a cube run from the same paper white to slate ink. Lines:
 the adopted profile in ink black, the data-side curves in slate and copper, the earlier stages in
 grey and teal open markers, the smeared model in copper.
 
@@ -23,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = ["TICK_PT", "LABEL_PT", "TITLE_PT", "NOTE_PT", "COLUMN", "INK", "SLATE", "COPPER", "TEAL", "GREY",
-           "velocity_colours", "residual_colours", "style_axes", "symmetric_range", "robust_limits",
+           "velocity_colours", "residual_colours", "brightness_colours", "style_axes", "symmetric_range", "robust_limits",
            "mark_outside", "colour_bar", "panel_caption"]
 
 TICK_PT, LABEL_PT, TITLE_PT, NOTE_PT = 8.0, 9.0, 9.5, 8.0
@@ -31,6 +32,7 @@ COLUMN = 3.4  # inches: one journal column
 INK, SLATE, COPPER, TEAL, GREY, PAPER = "#1d1d1f", "#3b5b7a", "#b4541f", "#2a7f7a", "#8a8a8a", "#f6f1e7"
 
 _VELOCITY = ["#1f3550", "#3b5b7a", "#7e9bb3", "#c5d2dc", PAPER, "#ecc9a4", "#d8935c", "#b4541f", "#6e2e0e"]
+_BRIGHTNESS = [PAPER, "#d3d3cf", "#a3aab0", "#6d7e8e", "#3b5b7a", "#1f3550", "#0f1620"]
 _RESIDUAL = ["#2f4a1e", "#5b7f3a", "#9fbb7e", "#d6e2c4", PAPER, "#e2cbe0", "#b58bb3", "#7f4b80", "#4a2150"]
 
 
@@ -48,6 +50,12 @@ def velocity_colours():
 def residual_colours():
     """The residual colour map (negative moss green, zero paper white, positive plum)."""
     return _colours("tiltedring_residual", _RESIDUAL)
+
+
+def brightness_colours():
+    """The brightness colour map of channel maps and position-velocity slices (paper white to slate ink,
+    monotonic in lightness), on which the copper contours of a model stand out."""
+    return _colours("tiltedring_brightness", _BRIGHTNESS)
 
 
 def style_axes(ax, grid: bool = False) -> None:

@@ -18,6 +18,9 @@ The pages, in order (:data:`PAGES`):
    velocity and centre of every ring.
 4. ``kinematics``: major- and minor-axis position-velocity slices with the model map on the same
    pixels, receding minus approaching speed, harmonic amplitudes, the warp.
+5. ``cube channels`` and 6. ``cube slices``, only for a fit made from a cube with its model cube
+   (:mod:`.cube_pages`): channel maps, and major- and minor-axis position-velocity slices, of the data
+   with the model cube contoured; the inner curve from the map and from the cube; the gas dispersion.
 
 Adding pages: a page builder is a function ``builder(result) -> list of Figure`` (an empty list when
 it has nothing to show, e.g. no cube); draw on :func:`new_page` so the page has the report's size,
@@ -439,3 +442,19 @@ register_page("summary", summary_page)
 register_page("maps", maps_page)
 register_page("profiles", profiles_page)
 register_page("kinematics", kinematics_page)
+
+
+def _cube_channels(result):
+    from .cube_pages import channel_maps_page
+
+    return channel_maps_page(result)
+
+
+def _cube_slices(result):
+    from .cube_pages import slices_page
+
+    return slices_page(result)
+
+
+register_page("cube channels", _cube_channels, after="kinematics")
+register_page("cube slices", _cube_slices, after="cube channels")
