@@ -112,6 +112,13 @@ class FitResponse:
         out.update(self.adopted)
         return out
 
+    def speeds_at_adopted_geometry(self, model_map) -> np.ndarray:
+        """Stage-final speeds on ``model_map`` with the orientation held at the adopted values: exact (the speeds
+        are linear in the map at a fixed geometry), v_r = v_r(data) + H_vv^-1 J_v^T W (m - d) over ring r's
+        pixels. Pixels where the map is blank count as unchanged."""
+        change = np.nan_to_num(model_map[self.iy, self.ix] - self.v)
+        return self.speed + np.bincount(self.ring, weights=self.coef * change[self.index], minlength=self.n_rings)
+
     def measure(self, model_map) -> dict:
         """First-order stage-centred constant geometry and stage-final speeds on ``model_map``.
 

@@ -9,21 +9,15 @@ with G the elliptical Gaussian beam, I the intensity (moment-0) map and v_sky th
 line-of-sight field. Without an intensity map, I is taken as uniform over the modelled disc (this
 is said in the output).
 
-The correction is found by iterating on the curve itself, which needs no inversion of the
-(ill-conditioned) smearing operator and so does not amplify noise. With v_obs the ring fit of the
-data and T the operator "draw the disc with curve v, smear it, fit it with the same rings":
+The correction holds the orientation at the fitted values and iterates on the curve itself. With
+v_obs the ring fit of the data and T the operator "draw the disc with curve v, smear it, fit it
+with the same rings at the same geometry" (affine in v):
 
-    v_(n+1) = v_n + g_n (v_obs - T(v_n)),     v_0 = v_obs
+    v_(n+1) = v_n + (v_obs - T(v_n)),     v_0 = v_obs
 
-until the largest remaining difference is below 0.5 km/s; at convergence T(v) = v_obs, i.e. the
-smeared model of the corrected curve reproduces what the data gave. With g_n = 1 this is the van
-Cittert iteration, which converges slowly where smearing is strong (T changes little with v); the
-gain g_n, per ring, is the secant estimate of 1 / (dT/dv) from the last two steps, clipped to
-[1, 3] so that poorly resolved rings are not amplified more than three-fold per step. Stopping
-at a small difference acts as regularisation: unresolved ring-to-ring wiggles are not amplified.
-Each step costs one smeared model (two FFT convolutions with a reused beam transfer function) and
-one evaluation of the fit's response (:mod:`.response`), so no convolution is repeated per
-parameter.
+(the van Cittert iteration) until the largest remaining difference is below 0.5 km/s or after a
+fixed number of steps; at convergence T(v) = v_obs, i.e. the smeared model of the corrected curve
+reproduces what the data gave. Stopping at a small difference acts as regularisation.
 """
 
 from __future__ import annotations
@@ -92,61 +86,60 @@ def smear(kernel: BeamKernel, field, intensity, v_systemic):
     return out
 
 
-def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed: dict, measure, max_iterations: int = 20,
-                          tolerance: float = 0.5, kernel: BeamKernel | None = None, max_gain: float = 3.0):
-    """Iterate to the disc whose smeared model the fit turns into what the data gave (module docstring).
+def disc_with_centre(rings: dict) -> dict:
+    """The ring table with a ring at radius 0 where v_rotation is 0 (other parameters as the innermost ring), so
+    that the model rises linearly from the centre instead of holding the innermost ring's speed inside it."""
+    order = np.argsort(np.asarray(rings["radius"], float))
+    table = {name: np.asarray(values, float)[order] for name, values in rings.items()}
+    if table["radius"][0] <= 0.0:
+        return table
+    out = {name: np.concatenate([values[:1], values]) for name, values in table.items()}
+    out["radius"][0] = 0.0
+    out["v_rotation"][0] = 0.0
+    return out
 
-    ``rings``: per-ring ``radius`` and :data:`.parameters.PARAMETERS` columns (the starting model).
-    ``observed``: what the fit gave on the data, by parameter name — ``v_rotation`` per ring and, when
-    the geometry is constant, scalar ``inclination`` / ``position_angle``. ``measure(map)`` must return
-    the same quantities fitted the same way to another map. Each is corrected by
-    x_(n+1) = x_n + (observed - measure(smear(model(x_n)))).
-    Returns (corrected dict, smeared model map, iterations, converged).
+
+def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed, measure, noise=None, max_iterations: int = 20,
+                          tolerance: float = 0.5, kernel: BeamKernel | None = None):
+    """Iterate to the curve whose smeared model the fit turns into what the data gave, geometry held.
+
+    ``rings``: per-ring ``radius`` and :data:`.parameters.PARAMETERS` columns (the orientation is held
+    at these values); ``observed``: the fitted v_rotation per ring (NaN: ring not used); ``measure(map)``
+    returns the speeds fitted the same way (at the same geometry) to another map. At a fixed geometry
+    the operator T (draw, smear, fit) is affine in the curve, and the van Cittert step
+    v_(n+1) = v_n + (observed - T(v_n)) converges for the eigenvalues of a smoothing operator
+    (0 < lambda <= 1). It stops when every ring's remaining difference is below ``tolerance`` km/s or,
+    with ``noise`` (the speeds' errors per ring), when the rms of difference / noise is below 0.5 (the
+    discrepancy principle for Landweber-type iterations, Engl, Hanke & Neubauer 1996, "Regularization
+    of Inverse Problems", ch. 6: iterating further only fits the noise), and after ``max_iterations``
+    whatever happens (then ``converged`` is False).
+    Returns (corrected speeds, smeared model map, iterations, converged).
     """
     from .kinematics import model_field
 
     kernel = kernel or BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
     intensity = np.ones(vmap.shape) if vmap.intensity is None else np.clip(np.nan_to_num(vmap.intensity), 0, None)
     v_sys = float(np.median(rings["v_systemic"]))
-    ok = np.isfinite(np.asarray(observed["v_rotation"], float))
+    target = np.asarray(observed, float)
+    ok = np.isfinite(target)
+    if noise is not None:
+        noise = np.where(np.isfinite(noise) & (np.asarray(noise, float) > 0), noise, np.inf)
     table = {name: np.asarray(values, float)[ok] for name, values in rings.items() if name in PARAMETERS or
              name == "radius"}
-    target = {name: (np.asarray(value, float)[ok] if np.ndim(value) else float(value))
-              for name, value in observed.items()}
-    trial = {name: np.array(value, float, copy=True) for name, value in target.items()}
 
-    def draw(current):
-        for name, value in current.items():
-            table[name] = np.broadcast_to(value, table["radius"].shape).astype(float)
-        return smear(kernel, model_field(vmap.shape, vmap.sky_jacobian, table, r_outer), intensity, v_sys)
+    def draw(speeds):
+        table["v_rotation"] = speeds[ok]
+        disc = disc_with_centre(table)
+        return smear(kernel, model_field(vmap.shape, vmap.sky_jacobian, disc, r_outer), intensity, v_sys)
 
-    converged = False
-    previous = {}
+    trial = np.where(ok, target, np.nan)
+    converged, iteration = False, 0
     for iteration in range(1, max_iterations + 1):
-        measured = measure(draw(trial))
-        largest = 0.0
-        for name in trial:
-            got = np.asarray(measured[name], float)[ok] if np.ndim(measured[name]) else float(measured[name])
-            step = np.where(np.isfinite(got), target[name] - got, 0.0)
-            gain = 1.0
-            if name in previous:  # secant estimate of 1 / (d measured / d trial), element by element
-                moved, answered = trial[name] - previous[name][0], got - previous[name][1]
-                with np.errstate(divide="ignore", invalid="ignore"):
-                    gain = np.where(np.abs(answered) > 1e-3, moved / answered, 1.0)
-                gain = np.clip(np.nan_to_num(gain, nan=1.0), 1.0, max_gain)
-            previous[name] = (trial[name], got)
-            trial[name] = trial[name] + gain * step
-            largest = max(largest, float(np.max(np.abs(step))))
-        if largest < tolerance:
+        got = np.asarray(measure(draw(trial)), float)
+        step = np.where(ok & np.isfinite(got), target - got, 0.0)
+        trial = np.where(ok, trial + step, np.nan)
+        scaled = step[ok] / noise[ok] if noise is not None else np.full(1, np.inf)
+        if float(np.max(np.abs(step))) < tolerance or np.sqrt(np.nanmean(scaled**2)) < 0.5:
             converged = True
             break
-    smeared = draw(trial)
-    corrected = {}
-    for name, value in trial.items():
-        if np.ndim(value):
-            full = np.full(ok.shape, np.nan)
-            full[ok] = value
-            corrected[name] = full
-        else:
-            corrected[name] = float(value)
-    return corrected, smeared, iteration, converged
+    return trial, draw(trial), iteration, converged

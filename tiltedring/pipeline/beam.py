@@ -21,7 +21,6 @@ from dataclasses import dataclass
 import numpy as np
 from astropy import units as u
 
-from ..fitting.geometry import centre_angle
 from ..fitting.parameters import Parameter
 from .state import Additions
 
@@ -71,30 +70,68 @@ def beam_wanted(state) -> bool:
                 and state.final_rings.free[Parameter.v_rotation])
 
 
+def model_misfit(pixels, model) -> float:
+    """chi^2 = sum ((v - m) / sigma)^2 of ``model`` over the fit's valid ``pixels`` (x, y, v, sigma); pixels the
+    model leaves blank count with the data's own deviation from the median (so a model cannot win by blanking)."""
+    x, y, v, sigma = pixels
+    m = model[y.astype(int), x.astype(int)]
+    m = np.where(np.isfinite(m), m, np.nanmedian(v))
+    return float(np.sum(((v - m) / sigma) ** 2))
+
+
+def _fallback(summary: dict, reason: str) -> Additions:
+    """The uncorrected curve kept: the summary says why, and a caution is raised."""
+    summary.update({"corrected": False, "fallback": reason})
+    caution = (f"beam-smearing correction not applied ({reason}): v_rotation within about two beams of the centre "
+               "is biased low")
+    return Additions(summaries={"beam_smearing": summary}, cautions=[caution])
+
+
 def beam_treatment(state) -> Additions:
-    """Beam-smearing correction of the final curve (and of a constant orientation) by forward modelling."""
+    """Beam-smearing correction of the final curve by forward modelling, the orientation held at the fitted
+    values; the uncorrected curve is kept (with a caution) when the correction does not settle or its smeared
+    model fits the data worse than the uncorrected model: chi^2 higher by more than one independent datum's
+    share, (chi^2_c - chi^2_u) / (chi^2_u / n_pixels x pixels per beam) > 1 (beam-correlated pixels counted
+    once per beam area)."""
+    from ..fitting.kinematics import model_field
     from ..fitting.smearing import BeamKernel, correct_beam_smearing
 
     vmap, response, starts = state.vmap, state.response, state.final_rings.starts
     observed = response.observed()
-    constant = [n for n in observed if n != "v_rotation"]
     rings = {p.name: starts[:, p] for p in Parameter}
     rings["radius"] = state.layout.radii
     rings["v_rotation"] = observed["v_rotation"]
+    r_outer = state.layout.edges[-1]
     kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
-    corrected, model, iterations, converged = correct_beam_smearing(vmap, rings, state.layout.edges[-1], observed,
-                                                                    response.measure, kernel=kernel)
-    if "position_angle" in corrected:
-        corrected["position_angle"] %= 360.0
+    speeds, model, iterations, converged = correct_beam_smearing(
+        vmap, rings, r_outer, observed["v_rotation"], response.speeds_at_adopted_geometry,
+        noise=state.final_rings.errors[:, Parameter.v_rotation], kernel=kernel)
     summary = {
-        "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I, iterated until the fit of the "
-                                     "smeared model (to first order about the data's fit) reproduces the data's fit",
+        "corrected": True, "method": "forward model: v_sys + G*(I (v - v_sys)) / G*I of the disc, iterated at the "
+                                     "fitted orientation until the ring fit of the smeared model reproduces the "
+                                     "data's fit",
+        "velocity_map_kind": "intensity-weighted mean velocity (moment-1)",
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
         "intensity": "uniform over the modelled disc (no intensity map given)" if vmap.intensity is None
         else "the intensity map",
         "iterations": iterations, "converged": converged,
-        "geometry_corrected": constant,
-        "geometry_change": {n: float(centre_angle(corrected[n], observed[n]) - observed[n]) for n in constant},
+        "geometry_corrected": [], "geometry_held": list(c for c in observed if c != "v_rotation"),
+        "geometry_change": {},
     }
+    ok = np.isfinite(observed["v_rotation"])
+    plain = model_field(vmap.shape, vmap.sky_jacobian, {k: np.asarray(v, float)[ok] for k, v in rings.items()},
+                        r_outer)
+    chi_plain, chi_smeared = model_misfit(state.inputs.pixels, plain), model_misfit(state.inputs.pixels, model)
+    summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": chi_smeared})
+    if not converged:
+        return _fallback(summary, f"it did not settle in {iterations} iterations")
+    if not np.all(np.isfinite(speeds[ok])):
+        return _fallback(summary, "it gave undefined speeds")
+    scale = chi_plain / max(len(state.inputs.pixels.v), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
+    summary["misfit_change_beams"] = (chi_smeared - chi_plain) / scale
+    if summary["misfit_change_beams"] > 1.0:
+        return _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
+                                  "uncorrected model")
+    corrected = {"v_rotation": speeds}
     treatment = BeamTreatment(corrected, model, summary)
     return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary})

@@ -52,7 +52,7 @@ def fit_cautions(final, flags, options, vmap, summaries) -> list:
     beam = summaries.get("beam_smearing")
     if vmap.beam is not None and beam is None:
         out.append("beam smearing is not corrected: v_rotation within about two beams of the centre is biased low")
-    elif beam is not None:
+    elif beam is not None and beam.get("corrected", True):  # a fallback raises its own caution
         if vmap.intensity is None:
             out.append("beam-smearing correction assumed a uniform intensity over the disc (no intensity map given)")
         if not beam["converged"]:
