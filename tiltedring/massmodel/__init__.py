@@ -22,7 +22,7 @@ _EXPORTS = {
     "CurveData": "fitting", "Baryons": "fitting", "MassModelSettings": "fitting", "MassModelResult": "fitting",
     "fit_mass_model": "fitting",
     "read_curve": "io", "read_components": "io", "read_sparc_rotmod": "io", "write_results": "io",
-    "mond_speed": "relations", "rar": "relations", "fit_rar": "relations", "fit_btfr": "relations",
+    "mond_speed": "relations", "rar": "relations", "fit_rar": "relations", "fit_btfr": "relations", "BTFRFit": "relations",
 }
 
 __all__ = sorted(_EXPORTS)

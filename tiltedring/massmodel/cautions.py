@@ -48,7 +48,7 @@ def _bounds(unknowns, q_values) -> list:
 
 def fit_cautions(data, problem, values, unknowns, sampling=None) -> list:
     """The cautions of one fit (module docstring), as sentences."""
-    out = []
+    out = [data.error_caution] if data.error_caution and problem.whiten is None else []
     negative = data.v < 0
     if negative.any():
         out.append(f"{int(negative.sum())} of {data.v.size} observed speeds are negative (down to "

@@ -51,9 +51,10 @@ _UNITS = {"ml_disc": "solMass / solLum", "ml_bulge": "solMass / solLum", "distan
 class CurveData:
     """Observed curve: radius (kpc), speed and its independent (random) error (km/s); optional distance and
     inclination with errors (Mpc, deg), and optional ``covariance`` of the speeds (N x N, km^2/s^2), which then
-    replaces the independent errors in chi^2. ``covariance_kind``: ``given`` (holds every part of the error,
-    geometry included) or ``geometry`` (independent errors plus the geometry term fully correlated, built by
-    :func:`.io.read_curve`; dropped when the inclination is fitted as a nuisance parameter instead)."""
+    replaces the independent errors in chi^2 (``covariance_kind`` ``given``: it holds every part of the error,
+    geometry included). ``v_err_geometry``: a geometry term per point (km/s), taken as fully correlated across
+    the points: without a covariance it becomes diag(v_err^2) + g g^T (``covariance_kind`` ``geometry``),
+    which is dropped when the inclination is fitted as a nuisance parameter instead."""
 
     radius: np.ndarray
     v: np.ndarray
@@ -66,11 +67,15 @@ class CurveData:
     covariance: np.ndarray | None = None
     covariance_kind: str | None = None
     covariance_source: str = ""
+    error_caution: str = ""
+    v_err_geometry: np.ndarray | None = None
 
     def __post_init__(self):
         from .covariance import check_covariance
 
         self.radius, self.v, self.v_err = (np.asarray(a, float) for a in (self.radius, self.v, self.v_err))
+        if self.v_err_geometry is not None and np.shape(self.v_err_geometry) != self.v.shape:
+            raise InputError("v_err_geometry must have one value per point")
         if not self.radius.shape == self.v.shape == self.v_err.shape:
             raise InputError("radius, speed and error of a curve must have one value per point each")
         if self.covariance is not None:
@@ -84,6 +89,13 @@ class CurveData:
         self.radius, self.v, self.v_err = self.radius[ok], self.v[ok], self.v_err[ok]
         if self.covariance is not None:
             self.covariance = self.covariance[np.ix_(ok, ok)]
+        elif self.v_err_geometry is not None:
+            from .covariance import with_correlated_term
+
+            geometry = np.nan_to_num(np.asarray(self.v_err_geometry, float)[ok])
+            self.covariance = check_covariance(with_correlated_term(self.v_err, geometry), where="curve covariance")
+            self.covariance_kind = "geometry"
+            self.covariance_source = self.covariance_source or "geometry term fully correlated across the points"
 
     def total_err(self):
         """Per-point error shown with the curve: sqrt of the covariance's diagonal when there is one."""
