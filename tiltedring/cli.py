@@ -121,13 +121,18 @@ MASS_EXAMPLES = """examples:
   tiltedring massmodel fit1/curve.ecsv --components baryons.ecsv --out mass1
   tiltedring massmodel galaxy_rotmod.dat --models nfw,burkert,mond --ml-mode free --out mass2
   tiltedring massmodel table.csv --radius-column R --velocity-column V --error-column eV --disc-mode maximum --out m3
+  tiltedring massmodel galaxy_rotmod.dat --fit-inclination --inclination 73 --inclination-error 3 --out m4
 
 The curve is the fit's curve.ecsv (run the fit with --distance so radii are in kpc), any table with
 radius (kpc), speed and error columns you name, or a SPARC *_rotmod.dat file (which carries its own
 baryonic curves). --components names a table of baryonic speed curves for M/L = 1 (columns v_gas with
-helium, v_disc, v_bulge; radius_kpc). Writes models.ecsv (chi2, BIC per model), parameters.ecsv
-(value, error and unit of each parameter), components_<model>.ecsv (kpc, km/s), massmodel.json and
-decomposition_<model>.png (the curve, each component, halo and total, residuals underneath).
+helium, v_disc, v_bulge; radius_kpc). Errors: the curve's covariance (--covariance, or
+<curve>_covariance.ecsv/.fits beside it), else its independent error parts with its geometry term
+fully correlated across rings, or (--fit-inclination, --distance-error) inclination and distance as
+nuisance parameters with the random errors independent. Writes models.ecsv (chi2, BIC per model),
+parameters.ecsv (value, error and unit of each parameter that applies), components_<model>.ecsv
+(kpc, km/s), massmodel.json (with cautions) and decomposition_<model>.png (the curve, each component,
+halo and total, residuals underneath).
 """
 
 
@@ -141,8 +146,8 @@ def _mass_parser(sub):
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
     from .massmodel import model_names
 
-    p.add_argument("--models", default=",".join(model_names(include_none=False)),
-                   help=f"comma-separated: {', '.join(model_names())} (default: all but none)")
+    p.add_argument("--models", help=f"comma-separated: {', '.join(model_names())} (default: all but none; mond "
+                                    "only with baryonic components)")
     p.add_argument("--components", help="table of baryonic speed curves for M/L = 1")
     p.add_argument("--gas", help="gas.ecsv written by 'tiltedring fit' (HI surface density with helium): "
                                  "its thin-disc speed becomes the gas component")
@@ -161,7 +166,27 @@ def _mass_parser(sub):
     p.add_argument("--concentration-prior", action="store_true", help="NFW: Dutton & Maccio 2014 c(M) prior")
     p.add_argument("--a0-free", action="store_true", help="MOND: fit a0 too")
     p.add_argument("--interpolating", choices=("simple", "standard"), default="simple", help="MOND function")
-    p.add_argument("--disc-scale-length", type=float, help="kpc, for the baryonic share of v at 2.2 scale lengths")
+    p.add_argument("--disc-scale-length", type=float,
+                   help="kpc: the maximum disc and the baryonic share of v are taken at 2.2 scale lengths (default for "
+                        "the maximum disc: where the disc's speed curve peaks)")
+    p.add_argument("--max-disc-fraction", type=float, default=1.0,
+                   help="maximum disc: share of the observed speed the baryons carry at 2.2 scale lengths (default 1; "
+                        "0.85 is Sackett 1997's maximal disc)")
+    p.add_argument("--covariance", metavar="FILE",
+                   help="covariance of the curve's speeds (ECSV columns ring_0..ring_N-1 or a FITS image, km2/s2); "
+                        "default: <curve>_covariance.ecsv or .fits beside the curve when there is one")
+    p.add_argument("--no-covariance", action="store_true", help="ignore a covariance file beside the curve")
+    p.add_argument("--fit-inclination", action="store_true",
+                   help="inclination as a nuisance parameter (Gaussian prior: the curve's inclination and its error, "
+                        "or --inclination/--inclination-error); speeds scale by sin(i)/sin(i_fit)")
+    p.add_argument("--inclination", type=float, metavar="DEG", help="inclination of the curve (overrides the curve's)")
+    p.add_argument("--inclination-error", type=float, metavar="DEG", help="its error (overrides the curve's)")
+    p.add_argument("--distance-error", type=float, metavar="MPC",
+                   help="distance as a nuisance parameter with this Gaussian error (radii scale by D_fit/D)")
+    p.add_argument("--cosmology", default="Planck18",
+                   help="astropy cosmology by name for the halo's critical density and H0 (default Planck18)")
+    p.add_argument("--overdensity", default="200c",
+                   help="halo radius and mass at this overdensity: 200c (default), 500c, 200m, vir (Bryan & Norman 1998)")
     p.add_argument("--sample", action="store_true", help="sample the posterior with emcee (optional dependency)")
     p.add_argument("--steps", type=int, default=1500, help="emcee steps per walker")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior sampling (default 0)")
@@ -179,17 +204,29 @@ def _unit_note(name: str, units: dict) -> str:
 def _check_mass_arguments(args) -> list:
     """``massmodel``'s numbers checked against their ranges before any work; returns the model names."""
     from .errors import InputError
-    from .massmodel import MassModelSettings
+    from .massmodel import MassModelSettings, model_names
     from .pipeline.option_fields import Bounds, check_range
 
     check_range(args.ml_disc, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-disc", 0.5)
     check_range(args.ml_bulge, Bounds(minimum=0, maximum=50, why="mass-to-light ratio"), "--ml-bulge", 0.7)
     if args.disc_scale_length is not None:
         check_range(args.disc_scale_length, Bounds(above=0, maximum=1000, why="kpc"), "--disc-scale-length")
+    check_range(args.max_disc_fraction, Bounds(above=0, maximum=1, why="share of the observed speed"),
+                "--max-disc-fraction", 1.0)
+    if args.inclination is not None:
+        check_range(args.inclination, Bounds(above=0, maximum=90, why="degrees"), "--inclination")
+    if args.inclination_error is not None:
+        check_range(args.inclination_error, Bounds(above=0, maximum=45, why="degrees"), "--inclination-error")
+    if args.distance_error is not None:
+        check_range(args.distance_error, Bounds(above=0, maximum=1e4, why="Mpc"), "--distance-error")
+    if args.covariance and args.no_covariance:
+        raise InputError("--covariance and --no-covariance contradict each other; give one")
     check_range(args.seed, Bounds(minimum=0, maximum=2**32 - 1), "--seed", 0)
     if args.sample:
         check_range(args.steps, Bounds(minimum=10, maximum=10**6, why="emcee steps per walker"), "--steps", 1500)
-    models = list(dict.fromkeys(m.strip() for m in args.models.split(",") if m.strip()))
+    models = list(dict.fromkeys(m.strip() for m in (args.models or "").split(",") if m.strip()))
+    if args.models is None:
+        models = list(model_names(include_none=False))
     if not models:
         raise InputError(f"--models {args.models!r} names no model; give e.g. --models nfw,burkert,mond")
     for model in models:
@@ -197,52 +234,89 @@ def _check_mass_arguments(args) -> list:
             MassModelSettings(model=model)
         except InputError as exc:
             raise InputError(f"--models: {exc}") from None
+    try:
+        MassModelSettings(cosmology=args.cosmology, overdensity=args.overdensity)
+    except InputError as exc:
+        raise InputError(f"--cosmology/--overdensity: {exc}") from None
     return models
 
 
-def run_massmodel(args) -> int:
-    from .errors import InputError
-    from .massmodel import (
-        MassModelSettings,
-        fit_mass_model,
-        read_components,
-        read_curve,
-        read_sparc_rotmod,
-        write_results,
-    )
-
+def _mass_inputs(args):
+    """(curve, baryons) of ``massmodel``: the curve with its error structure and geometry, the baryons."""
+    from .massmodel import Baryons, read_components, read_curve, read_sparc_rotmod
+    from .massmodel.covariance import read_covariance
     from .massmodel.io import read_gas
 
-    models = _check_mass_arguments(args)
+    covariance = None if args.no_covariance else (args.covariance or "auto")
     if args.curve.endswith(".dat") and args.radius_column is None:
         curve, baryons = read_sparc_rotmod(args.curve)
+        if args.covariance:
+            curve.covariance = read_covariance(args.covariance, len(curve.radius))
+            curve.covariance_kind, curve.covariance_source = "given", f"from {args.covariance}"
     else:
-        from .massmodel import Baryons
-
-        curve, baryons = read_curve(args.curve, args.radius_column, args.velocity_column, args.error_column), Baryons()
+        curve = read_curve(args.curve, args.radius_column, args.velocity_column, args.error_column, covariance)
+        baryons = Baryons()
     if args.components:
         baryons = read_components(args.components)
     if args.gas:
         baryons.gas = read_gas(args.gas)
     baryons.disc_scale_length = args.disc_scale_length
+    if args.inclination is not None:
+        curve.inclination = args.inclination
+    if args.inclination_error is not None:
+        curve.inclination_err = args.inclination_error
+    if args.distance_error is not None:
+        curve.distance_err = args.distance_error
+    return curve, baryons
+
+
+def _print_mass_results(curve, results, skipped) -> None:
+    print(f"{curve.name}: {len(curve.radius)} points; errors: {curve.covariance_source or 'independent per point'}")
+    for name, r in results.items():
+        params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}{_unit_note(k, r.units)}"
+                           for k, v in r.parameters.items())
+        print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
+        if r.sampling:
+            taus = ", ".join(f"{k} {t:.0f}" for k, t in r.sampling["autocorrelation_time"].items())
+            print(f"             autocorrelation times (steps): {taus}; "
+                  f"{r.sampling['steps_per_autocorrelation_time']:.0f} per kept chain")
+    for text in skipped + sorted({c for r in results.values() for c in r.cautions}):
+        print(f"caution: {text}")
+
+
+def run_massmodel(args) -> int:
+    import warnings
+
+    from .errors import FitCaution, InputError
+    from .massmodel import MassModelSettings, fit_mass_model, write_results
+
+    models = _check_mass_arguments(args)
+    curve, baryons = _mass_inputs(args)
+    skipped = []
+    if args.models is None and all(getattr(baryons, n) is None for n in ("gas", "disc", "bulge")):
+        models = [m for m in models if m not in ("mond", "none")]
+        skipped.append("no baryonic component given: MOND left out (it predicts the curve from the baryons); give "
+                       "--components, --gas or a SPARC-format file")
+    if args.distance_error is not None and not curve.distance:
+        raise InputError("--distance-error needs the curve's distance (a curve.ecsv from a fit with --distance, or "
+                         "a SPARC-format file)")
     results = {}
     for model in models:
         settings = MassModelSettings(model=model, ml_mode=args.ml_mode, ml_disc=args.ml_disc, ml_bulge=args.ml_bulge,
                                      disc_mode=args.disc_mode, use_concentration_prior=args.concentration_prior,
-                                     a0_free=args.a0_free, interpolating=args.interpolating)
-        results[model] = fit_mass_model(curve, baryons, settings, sample=args.sample, n_steps=args.steps,
-                                        seed=args.seed, quiet=args.quiet)
+                                     a0_free=args.a0_free, interpolating=args.interpolating,
+                                     fit_inclination=args.fit_inclination, fit_distance=args.distance_error is not None,
+                                     cosmology=args.cosmology, overdensity=args.overdensity,
+                                     max_disc_fraction=args.max_disc_fraction)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", FitCaution)  # printed below, once each
+            results[model] = fit_mass_model(curve, baryons, settings, sample=args.sample, n_steps=args.steps,
+                                            seed=args.seed, quiet=args.quiet)
     if not results:
         raise InputError("no model named; use --models nfw,burkert,...")
     write_results(args.out, results, curve, overwrite=args.overwrite)
     if not args.quiet:
-        print(f"{curve.name}: {len(curve.radius)} points")
-        for name, r in results.items():
-            params = ", ".join(f"{k} = {v:.3g} +/- {r.errors.get(k, float('nan')):.2g}{_unit_note(k, r.units)}"
-                               for k, v in r.parameters.items())
-            print(f"  {name:<10} chi2 = {r.chi2:8.1f}  BIC = {r.bic:8.1f}  {params}")
-        if all(r.parameters == {} for r in results.values()) and baryons.disc is None and baryons.gas is None:
-            print("caution: no baryonic components given: the halo alone carries the curve")
+        _print_mass_results(curve, results, skipped)
         print(f"wrote {args.out}/models.ecsv, parameters.ecsv, components_<model>.ecsv, decomposition_<model>.png, "
               "massmodel.json")
     return EXIT_OK

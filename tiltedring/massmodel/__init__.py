@@ -16,12 +16,13 @@ _EXPORTS = {
     "ExponentialDisc": "components", "ThinDisc": "components", "HernquistBulge": "components",
     "PointMass": "components", "TabulatedSpeed": "components",
     "Halo": "halos", "HaloParameter": "halos", "PseudoIsothermal": "halos", "NFW": "halos", "Burkert": "halos",
-    "Einasto": "halos", "concentration_prior": "halos",
+    "Einasto": "halos", "concentration_mass_relation": "halos",
+    "HaloDefinition": "definition",
     "register_halo": "registry", "unregister_halo": "registry", "model_names": "registry", "halo_names": "registry",
     "CurveData": "fitting", "Baryons": "fitting", "MassModelSettings": "fitting", "MassModelResult": "fitting",
     "fit_mass_model": "fitting",
     "read_curve": "io", "read_components": "io", "read_sparc_rotmod": "io", "write_results": "io",
-    "mond_speed": "relations", "rar": "relations", "fit_rar": "relations", "fit_btfr": "relations",
+    "mond_speed": "relations", "rar": "relations", "fit_rar": "relations", "fit_btfr": "relations", "BTFRFit": "relations",
 }
 
 __all__ = sorted(_EXPORTS)

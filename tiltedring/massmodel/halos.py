@@ -16,10 +16,14 @@ name, unit, where the fit starts, bounds, whether it is fitted in log10) and sup
 construction from fitted values). It becomes a mass model once registered
 (:func:`.registry.register_halo`).
 
-M200 is the mass inside the radius where the mean density is 200 times the critical density for
-H0 = 70 km/s/Mpc (closed form for NFW, a root search otherwise). ``concentration_prior`` gives the
-Dutton & Maccio 2014 (MNRAS 441, 3359) NFW concentration-mass relation at z = 0 (log10 c = 0.905 -
-0.101 log10(M200 / 1e12 h^-1 M_sun), scatter 0.11 dex; coefficients from memory).
+Sizes and masses follow a :class:`.definition.HaloDefinition` (astropy cosmology by name and an
+overdensity: 200 times critical by default, ``vir`` after Bryan & Norman 1998, ...): ``halo_radius``
+and ``halo_mass`` are r_Delta and M_Delta (a root search of the mean enclosed density, closed form for
+NFW), ``m200`` is always the mass at 200 times critical. NFW's ``v200`` and ``concentration`` are
+V_Delta and r_Delta / r_s of the chosen overdensity (the names keep the common default).
+:func:`concentration_mass_relation` gives the Dutton & Maccio 2014 (MNRAS 441, 3359) NFW
+concentration-mass relation at z = 0 for 200c (log10 c = 0.905 - 0.101 log10(M / 1e12 h^-1 M_sun))
+and for the virial overdensity (1.025 - 0.097 log10(...)), scatter 0.11 dex (coefficients from memory).
 """
 
 from __future__ import annotations
@@ -31,11 +35,9 @@ from astropy import units as u
 from scipy import special
 
 from .components import Component, G
+from .definition import DEFAULT_DEFINITION, HaloDefinition
 
-__all__ = ["HaloParameter", "Halo", "PseudoIsothermal", "NFW", "Burkert", "Einasto", "concentration_prior",
-           "H0_KM_S_KPC"]
-
-H0_KM_S_KPC = 0.07  # 70 km/s/Mpc, as commonly used for V200 definitions
+__all__ = ["HaloParameter", "Halo", "PseudoIsothermal", "NFW", "Burkert", "Einasto", "concentration_mass_relation"]
 DENSITY = u.Msun / u.kpc**3
 
 
@@ -75,7 +77,8 @@ class Halo(Component):
     name = "halo"
     parameters: tuple = ()
 
-    def __init__(self, *values, **named):
+    def __init__(self, *values, definition: HaloDefinition | None = None, **named):
+        self.definition = definition or DEFAULT_DEFINITION
         declared = [p.name for p in self.parameters]
         if len(values) > len(declared):
             raise TypeError(f"{type(self).__name__} takes {len(declared)} parameters ({', '.join(declared)})")
@@ -92,9 +95,9 @@ class Halo(Component):
             setattr(self, p.name, float(value))
 
     @classmethod
-    def from_fitted(cls, values: dict):
+    def from_fitted(cls, values: dict, definition: HaloDefinition | None = None):
         """The halo at fitted values (keyed by :attr:`HaloParameter.fitted_name`)."""
-        return cls(**{p.name: p.from_fitted(values[p.fitted_name]) for p in cls.parameters})
+        return cls(**{p.name: p.from_fitted(values[p.fitted_name]) for p in cls.parameters}, definition=definition)
 
     def _enclosed_mass(self, r):
         raise NotImplementedError
@@ -106,20 +109,35 @@ class Halo(Component):
         r = np.maximum(np.asarray(r, float), 1e-9)
         return np.sqrt(np.clip(G * self.enclosed_mass(r) / r, 0, None))
 
-    @property
-    def m200(self):
-        """Mass inside the radius where the mean density is 200 times critical (NaN when not found in 1 pc-10 Mpc)."""
+    def radius_at_density(self, mean_density: float) -> float:
+        """Radius (kpc) inside which the mean density is ``mean_density`` (M_sun/kpc^3); NaN when not found in
+        1 pc - 10 Mpc."""
         from scipy.optimize import brentq
 
-        rho_crit = 3 * H0_KM_S_KPC**2 / (8 * np.pi * G)
-
         def excess(r):
-            return self.enclosed_mass(r) / (4 / 3 * np.pi * r**3) - 200 * rho_crit
+            return self.enclosed_mass(r) / (4 / 3 * np.pi * r**3) - mean_density
 
         try:
-            return self.enclosed_mass(brentq(excess, 1e-3, 1e4))
+            return float(brentq(excess, 1e-3, 1e4))
         except ValueError:
             return np.nan
+
+    @property
+    def halo_radius(self) -> float:
+        """r_Delta (kpc) of the halo's definition."""
+        return self.radius_at_density(self.definition.mean_density())
+
+    @property
+    def halo_mass(self) -> float:
+        """M_Delta (M_sun) of the halo's definition."""
+        r = self.halo_radius
+        return float(self.enclosed_mass(r)) if np.isfinite(r) else np.nan
+
+    @property
+    def m200(self) -> float:
+        """Mass inside the radius where the mean density is 200 times critical (the definition's cosmology)."""
+        r = self.radius_at_density(200 * self.definition.rho_crit)
+        return float(self.enclosed_mass(r)) if np.isfinite(r) else np.nan
 
     def relation_residuals(self, fitted: dict) -> list:
         """Residuals of a published relation between the halo's parameters, added to the fit as priors when
@@ -143,32 +161,44 @@ class NFW(Halo):
                   HaloParameter("concentration", u.dimensionless_unscaled, 1.0, (0.0, 1.7),
                                 description="r200 / scale radius"))
 
-    def __init__(self, v200: float, concentration: float, h0: float = H0_KM_S_KPC):
-        super().__init__(v200, concentration)
-        self.h0 = float(h0)
+    @property
+    def halo_radius(self):
+        """r_Delta = V_Delta / (H0 sqrt(Delta / 2)) (module :mod:`.definition`)."""
+        return float(self.definition.radius_from_speed(self.v200))
+
+    @property
+    def halo_mass(self):
+        """M_Delta = V_Delta^2 r_Delta / G."""
+        return self.v200**2 * self.halo_radius / G
 
     @property
     def r200(self):
-        return self.v200 / (10 * self.h0)
-
-    @property
-    def m200(self):
-        return self.v200**2 * self.r200 / G
+        """r_Delta (named after the default overdensity, 200c)."""
+        return self.halo_radius
 
     @property
     def scale_radius(self):
-        return self.r200 / self.concentration
+        return self.halo_radius / self.concentration
 
     def _enclosed_mass(self, r):
         c = self.concentration
-        cx = c * r / self.r200
+        cx = c * r / self.halo_radius
         norm = np.log(1 + c) - c / (1 + c)
-        return self.m200 * (np.log1p(cx) - cx / (1 + cx)) / norm
+        return self.halo_mass * (np.log1p(cx) - cx / (1 + cx)) / norm
+
+    def relation_offset(self):
+        """(log10 c - mean, scatter) against the Dutton & Maccio (2014) relation for the halo's overdensity;
+        None where the relation is not defined (overdensities other than 200c and vir)."""
+        relation = concentration_mass_relation(self.halo_mass, self.definition)
+        if relation is None:
+            return None
+        mean, scatter = relation
+        return float(np.log10(self.concentration) - mean), scatter
 
     def relation_residuals(self, fitted):
-        """The Dutton & Maccio (2014) concentration-mass relation (:func:`concentration_prior`)."""
-        mean, scatter = concentration_prior(self.m200)
-        return [(fitted["log10_concentration"] - mean) / scatter]
+        """The Dutton & Maccio (2014) concentration-mass relation (:func:`concentration_mass_relation`)."""
+        offset = self.relation_offset()
+        return [] if offset is None else [offset[0] / offset[1]]
 
 
 class Burkert(Halo):
@@ -195,6 +225,17 @@ class Einasto(Halo):
         return 4 * np.pi * self.rho_2 * self.r_2**3 * np.exp(2 / a) * (a / 2) ** (3 / a) / a * lower_gamma
 
 
-def concentration_prior(m200: float, h: float = 0.7):
-    """(mean log10 c, scatter dex) of the Dutton & Maccio 2014 NFW relation at z = 0 (from memory)."""
-    return 0.905 - 0.101 * np.log10(m200 * h / 1e12), 0.11
+# Dutton & Maccio 2014, z = 0 (intercept, slope of log10 c against log10(M / 1e12 h^-1 M_sun)); from memory
+_DUTTON_MACCIO = {"200c": (0.905, -0.101), "vir": (1.025, -0.097)}
+_DUTTON_MACCIO_SCATTER = 0.11  # dex
+
+
+def concentration_mass_relation(mass: float, definition: HaloDefinition = DEFAULT_DEFINITION):
+    """(mean log10 c, scatter dex) of the Dutton & Maccio 2014 NFW relation at z = 0 for M_Delta ``mass``
+    (M_sun) of ``definition`` (200c or vir; None for other overdensities). h from the definition's cosmology."""
+    coefficients = _DUTTON_MACCIO.get(definition.overdensity)
+    if coefficients is None or not mass > 0:
+        return None
+    a, b = coefficients
+    return a + b * np.log10(mass * definition.little_h / 1e12), _DUTTON_MACCIO_SCATTER
+

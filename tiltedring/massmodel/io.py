@@ -1,7 +1,7 @@
 """Reading curves and baryonic components for mass models; writing the results.
 
 Inputs: the tool's own ``curve.ecsv`` (needs ``radius_kpc``, i.e. a fit run with a distance; uses
-``v_circular`` when present, else ``v_rotation``), any table astropy reads with radius (kpc), speed
+``v_circular`` when present, else ``v_rotation``), with its error structure (:func:`read_curve`), any table astropy reads with radius (kpc), speed
 and error columns named by the user, or a SPARC mass-model file (Lelli, McGaugh & Schombert 2016:
 ``Rad Vobs errV Vgas Vdisk Vbul ...`` with a ``# Distance = D Mpc`` line) which also carries the
 baryonic speed curves for M/L = 1.
@@ -66,9 +66,53 @@ def _check_finite(values: dict, where: str) -> None:
                              "fill them in or remove those rows")
 
 
-def read_curve(path, radius_column=None, velocity_column=None, error_column=None) -> CurveData:
-    """A curve from ``curve.ecsv`` or from any table with the named columns (radius in kpc)."""
+_PARTS_INDEPENDENT = ("v_rotation_err_random", "v_rotation_err_beam", "v_rotation_err_asymmetry")
+_PART_GEOMETRY = "v_rotation_err_geometry"
+
+
+def _error_structure(table, v_name, err_name, explicit_error: bool, where: str) -> dict:
+    """Independent error, fully correlated geometry term (or None) and a caution, from the curve's columns.
+
+    With the error parts of ``curve.ecsv`` (and v_rotation as the speed): independent = the random, beam and
+    asymmetry parts present, in quadrature; geometry = ``v_rotation_err_geometry``. Otherwise the error column
+    named (or the total) is taken as independent; when the curve's header says that total holds an
+    inclination term, that is a caution (it is correlated across rings)."""
+    err = _column(table, err_name, u.km / u.s, where)
+    parts = [p for p in _PARTS_INDEPENDENT if p in table.colnames]
+    if not explicit_error and v_name == "v_rotation" and parts and _PART_GEOMETRY in table.colnames:
+        independent = np.sqrt(sum(_column(table, p, u.km / u.s, where) ** 2 for p in parts))
+        return {"independent": independent, "geometry": _column(table, _PART_GEOMETRY, u.km / u.s, where),
+                "caution": ""}
+    caution = ""
+    if not explicit_error and "inclination" in str(table.meta.get("error_components", "")):
+        caution = (f"{where}: {err_name} includes an inclination term, which is correlated from ring to ring, but the "
+                   "curve does not give it separately, so it is treated as independent per point (errors of the halo "
+                   "parameters too small); give the curve's covariance (--covariance) or rerun the fit")
+    return {"independent": err, "geometry": None, "caution": caution}
+
+
+def _curve_geometry(table, where: str) -> tuple:
+    """(inclination, its error) in degrees: medians over the rings of ``inclination`` and ``inclination_err``."""
+    if "inclination" not in table.colnames or "inclination_err" not in table.colnames:
+        return None, None
+    inc = _column(table, "inclination", u.deg, where)
+    inc_err = _column(table, "inclination_err", u.deg, where)
+    inc, inc_err = inc[np.isfinite(inc)], inc_err[np.isfinite(inc_err) & (inc_err > 0)]
+    if not inc.size or not inc_err.size:
+        return None, None
+    return float(np.median(inc)), float(np.median(inc_err))
+
+
+def read_curve(path, radius_column=None, velocity_column=None, error_column=None, covariance="auto") -> CurveData:
+    """A curve from ``curve.ecsv`` or from any table with the named columns (radius in kpc).
+
+    ``covariance``: a covariance file (:func:`.covariance.read_covariance`), ``"auto"`` (the file
+    ``<stem>_covariance.ecsv`` or ``.fits`` beside the curve when there is one) or None (none read). Without a file,
+    a curve with error parts gets the covariance of its independent parts plus its geometry term, fully
+    correlated across rings (:func:`.covariance.with_correlated_term`). Inclination and its error (medians over
+    the rings) are read for the inclination as a nuisance parameter."""
     from ..io.input_files import check_input_file, read_table
+    from .covariance import covariance_beside, read_covariance
 
     path = check_input_file(path, "curve table")
     if path.suffix == ".dat" and radius_column is None:
@@ -79,14 +123,24 @@ def read_curve(path, radius_column=None, velocity_column=None, error_column=None
                          "radius column in kpc with --radius-column")
     where = f"curve table {path}"
     radius = _column(table, radius_column or "radius_kpc", u.kpc, where)
-    default_v = "v_circular" if "v_circular" in table.colnames else "v_rotation"
-    v = _column(table, velocity_column or default_v, u.km / u.s, where)
-    err_name = error_column or ("v_circular_err" if default_v == "v_circular" else "v_rotation_err")
-    err = _column(table, err_name, u.km / u.s, where)
-    _check_speeds(v, err, where)
+    v_name = velocity_column or ("v_circular" if "v_circular" in table.colnames else "v_rotation")
+    v = _column(table, v_name, u.km / u.s, where)
+    err_name = error_column or ("v_circular_err" if v_name == "v_circular" else "v_rotation_err")
+    errors = _error_structure(table, v_name, err_name, error_column is not None, where)
+    _check_speeds(v, errors["independent"], where)
     meta = table.meta
     distance = (meta.get("distance") or {}).get("value_mpc") if isinstance(meta.get("distance"), dict) else None
-    return CurveData(radius, v, err, distance=distance, name=path.stem)
+    inclination, inclination_err = _curve_geometry(table, where)
+    file = covariance_beside(path) if covariance == "auto" else covariance
+    extra = {}
+    if file:
+        extra = {"covariance": read_covariance(file, len(table)), "covariance_kind": "given",
+                 "covariance_source": f"from {file}"}
+    elif errors["geometry"] is not None:
+        extra = {"v_err_geometry": errors["geometry"],
+                 "covariance_source": "independent error parts plus v_rotation_err_geometry, fully correlated"}
+    return CurveData(radius, v, errors["independent"], distance=distance, inclination=inclination,
+                     inclination_err=inclination_err, name=path.stem, error_caution=errors["caution"], **extra)
 
 
 def read_sparc_rotmod(path):
@@ -188,9 +242,11 @@ def write_results(folder, results: dict, curve: CurveData, overwrite: bool = Fal
                 r.plot().savefig(tmp / f"decomposition_{name}.png", dpi=150)
         write_json(tmp / "massmodel.json", {
             "galaxy": curve.name, "n_points": len(curve.radius),
-            "models": {name: {"parameters": r.parameters, "errors": r.errors, "fixed": r.fixed, "chi2": r.chi2,
-                              "reduced_chi2": r.reduced_chi2, "bic": r.bic, "derived": r.derived,
-                              "sampled": r.samples is not None} for name, r in results.items()},
+            "errors_used": curve.covariance_source or "independent errors per point",
+            "models": {name: {"parameters": r.parameters, "errors": r.errors, "fixed": r.fixed, "units": r.units,
+                              "chi2": r.chi2, "reduced_chi2": r.reduced_chi2, "bic": r.bic, "derived": r.derived,
+                              "sampled": r.samples is not None, "sampling": r.sampling, "notes": r.notes,
+                              "cautions": r.cautions} for name, r in results.items()},
             "preferred_by_bic": min(results, key=lambda k: results[k].bic),
         })
     return Path(folder)
