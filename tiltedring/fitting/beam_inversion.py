@@ -1,0 +1,231 @@
+"""The beam-smearing correction as one regularised linear least-squares problem.
+
+The forward model is the one of :mod:`.smearing` (an intensity-weighted mean-velocity map, i.e. a
+moment-1 map; Begeman 1989, A&A 223, 47): v_model = v_sys + G * (I (v_sky - v_sys)) / (G * I). At the
+fitted (held) orientation the thin-disc field v_sky is linear in the ring speeds, because the model
+builder interpolates them linearly between ring radii (with v = 0 at R = 0):
+
+    v_sky - v_sys = u_0 + sum_k v_k sin(i) cos(theta) h_k(R)
+
+with h_k the hat function on ring k's radius and u_0 the part that does not depend on v (radial
+motions). Smearing is linear in v_sky - v_sys for a fixed I, and the ring fit at a fixed geometry is
+linear in the map (:meth:`.response.FitResponse.speeds_at_adopted_geometry`), so the operator "draw,
+smear, fit" is affine, T(v) = A v + b, and its columns are found once by smearing each hat's field
+(one FFT per ring; no iteration, so no divergence and no dependence on rounding).
+
+The corrected curve v = v_obs + delta solves
+
+    min_delta  || S^-1 (T(v_obs + delta) - v_obs) ||^2 + lambda || D2 delta ||^2,   delta_r = 0 on held rings
+
+with S the speeds' noise errors and D2 second differences across rings: the correction is a smooth
+function of radius (Tikhonov 1963; Phillips 1962), not each ring amplified on its own. Rings where
+the fit of the smeared and of the unsmeared model of v_obs differ by less than their noise error,
+beyond the outermost ring where they do not, are held (delta_r = 0): what the beam does not change
+does not move. lambda is chosen by generalised
+cross-validation (Golub, Heath & Wahba 1979, Technometrics 21, 215): the minimum over a fixed grid
+of GCV(lambda) = n || S^-1 r ||^2 / (n - tr H)^2, H the influence matrix. The noise of the corrected
+curve follows from v = M v_obs + c (propagated exactly).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+
+from .kinematics import model_field
+from .smearing import disc_with_centre
+
+__all__ = ["HatModel", "hat_model", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedHats",
+           "smear_hats", "correct_curve"]
+
+
+@dataclass(frozen=True)
+class HatModel:
+    """The disc's sky field as an affine function of x = (ring speeds, orientation shifts) (module docstring):
+    ``fixed`` = v_sys + u_0 (NaN outside the disc); ``basis`` (n_speeds + n_shifts, ny, nx): sin i cos theta
+    c_k(R) per ring, then the field's derivative per degree of each orientation angle at the observed curve."""
+
+    fixed: np.ndarray
+    basis: np.ndarray
+
+    def field(self, x) -> np.ndarray:
+        """The unsmeared sky field at ``x`` (speeds, then orientation shifts; missing shifts count as 0)."""
+        x = np.asarray(x, float)
+        return self.fixed + np.tensordot(x, self.basis[: len(x)], axes=1)
+
+
+def curve_basis(shape, sky_jacobian, rings: dict, r_outer: float) -> tuple:
+    """(fixed part, per-ring fields) of ``rings`` (radius and the parameters; v_rotation ignored) by three calls
+    of the model builder: v = 0 (the fixed part), v = 1 on every ring (sin i cos theta) and v = ring index (sin
+    i cos theta times the pixel's fractional ring position, hence its disc radius R). The curve between ring
+    radii is the natural cubic spline through (0, 0) and the ring speeds: field k is sin i cos theta c_k(R),
+    c_k the spline's cardinal function (linear in the speeds; de Boor 1978, A Practical Guide to Splines)."""
+    disc = disc_with_centre(dict(rings, v_rotation=np.zeros(len(rings["radius"]))))
+    offset = len(disc["radius"]) - len(rings["radius"])  # the ring added at R = 0 (speed 0, not a variable)
+    count = len(disc["radius"])
+
+    def draw(speeds, **changes):
+        return model_field(shape, sky_jacobian, dict(disc, v_rotation=np.asarray(speeds, float), **changes), r_outer)
+
+    fixed = draw(np.zeros(count))
+    zero = {"v_systemic": np.zeros(count), "v_radial": np.zeros(count)}
+    unit = np.nan_to_num(draw(np.ones(count), **zero))
+    indexed = np.nan_to_num(draw(np.arange(count, dtype=float), **zero))
+    on = np.abs(unit) > 1e-12
+    radius = np.interp(indexed[on] / unit[on], np.arange(count), disc["radius"])  # disc radius of each pixel
+    cardinal = CubicSpline(disc["radius"], np.eye(count), bc_type="natural")(radius)  # (pixels, rings)
+    basis = np.zeros((count - offset,) + tuple(shape))
+    for k in range(offset, count):
+        basis[k - offset][on] = unit[on] * cardinal[:, k]
+    return fixed, basis
+
+
+def hat_model(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step: float = 0.25) -> HatModel:
+    """:class:`HatModel` of ``rings`` (their v_rotation is the curve the orientation derivatives are taken at);
+    ``shifts``: orientation names (position_angle, inclination) whose change is modelled to first order, by
+    central differences of +/- ``step`` deg."""
+    fixed, basis = curve_basis(shape, sky_jacobian, rings, r_outer)
+    speeds = np.asarray(rings["v_rotation"], float)
+    derivatives = []
+    for name in shifts:
+        sides = []
+        for sign in (1.0, -1.0):
+            moved = dict(rings, **{name: np.asarray(rings[name], float) + sign * step})
+            f, b = curve_basis(shape, sky_jacobian, moved, r_outer)
+            sides.append(f + np.tensordot(speeds, b, axes=1))
+        # pixels entering or leaving the disc's edge as the angle moves carry no derivative
+        derivatives.append(np.nan_to_num((sides[0] - sides[1]) / (2 * step)))
+    return HatModel(fixed, np.concatenate([basis, np.array(derivatives).reshape((-1,) + tuple(shape))]))
+
+
+def affected_rings(beam_effect, noise, floor: float = 0.5) -> np.ndarray:
+    """Rings the correction may move: every ring out to the outermost one where |fit of smeared - fit of
+    unsmeared model| of the observed curve reaches its noise error (at least ``floor`` km/s). Smearing
+    weakens outward, so the rings inside that one are within its reach even where the two fits happen to
+    agree; the rings beyond are held."""
+    moved = np.abs(np.nan_to_num(beam_effect)) >= np.maximum(np.nan_to_num(noise, nan=np.inf), floor)
+    free = np.zeros(len(moved), bool)
+    if moved.any():
+        free[: np.flatnonzero(moved)[-1] + 1] = True
+    return free
+
+
+@dataclass(frozen=True)
+class BeamSolution:
+    """The solution x (corrected speeds, then orientation shifts in deg), the chosen lambda, the propagated
+    noise error of each corrected speed, and the remaining misfit chi^2 = || S^-1 (T(x) - y) ||^2."""
+
+    x: np.ndarray
+    smoothing: float
+    noise: np.ndarray
+    chi_square: float
+
+
+def _second_differences(n: int) -> np.ndarray:
+    return np.diff(np.eye(n), n=2, axis=0) if n >= 3 else np.zeros((0, n))
+
+
+def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
+    """(solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
+    d^T R d + d^T P d, lambda the minimum of GCV over ``grid`` (s = tr(x^T x) / tr(R) makes the grid
+    problem-independent)."""
+    n = len(residual0)
+    normal = x.T @ x
+    scale = np.trace(normal) / max(np.trace(roughness), 1e-300)
+    best = None
+    for factor in grid:
+        system = normal + factor * scale * roughness + prior + 1e-12 * np.trace(normal) * np.eye(len(normal))
+        solver = np.linalg.solve(system, x.T)
+        influence = x @ solver
+        left = residual0 - influence @ residual0
+        gcv = n * float(left @ left) / max(n - float(np.trace(influence)), 1e-9) ** 2
+        if best is None or gcv < best[0]:
+            best = (gcv, solver, float(factor), float(left @ left))
+    return best[1:]
+
+
+def solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds: int, prior_width=(),
+                            grid=np.logspace(-6, 4, 41)) -> BeamSolution:
+    """Solve the regularised problem of the module docstring for ``T(x) = matrix @ x + offset`` near ``start``.
+
+    ``target`` and ``noise``: what the data gave and its errors (speeds, then orientation angles); ``free``:
+    which unknowns may move (the speeds of affected rings and the orientation shifts); ``prior_width``: per
+    orientation shift, its Gaussian prior width (deg) about 0 (the geometry moves within its error).
+    """
+    start = np.asarray(start, float)
+    weight = 1.0 / np.asarray(noise, float)
+    residual0 = (matrix @ start + offset - target) * weight
+    columns = np.flatnonzero(free)
+    if columns.size == 0:
+        return BeamSolution(start.copy(), np.inf, np.asarray(noise, float)[:n_speeds], float(residual0 @ residual0))
+    x = matrix[:, columns] * weight[:, None]
+    penalty = np.zeros((max(n_speeds - 2, 0), len(start)))
+    penalty[:, :n_speeds] = _second_differences(n_speeds)
+    penalty = penalty[:, columns]
+    prior = np.zeros(len(start))
+    prior[n_speeds:] = 1.0 / np.asarray(prior_width, float) ** 2
+    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior[columns]), grid)
+    solution = start.copy()
+    solution[columns] -= solver @ residual0
+    # d x / d v_obs = E - P K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
+    unit = np.eye(len(start))[:, :n_speeds]
+    gain = unit.copy()
+    gain[columns] -= solver @ ((matrix[:, :n_speeds] - unit) * weight[:, None])
+    propagated = np.sqrt(np.sum((gain[:n_speeds] * np.asarray(noise, float)[None, :n_speeds]) ** 2, axis=1))
+    return BeamSolution(solution, factor, propagated, chi_square)
+
+
+@dataclass(frozen=True)
+class SmearedHats:
+    """The smeared fixed part (NaN where the model is undefined) and the smeared basis fields of one intensity."""
+
+    fixed: np.ndarray
+    basis: np.ndarray
+
+    def field(self, x) -> np.ndarray:
+        x = np.asarray(x, float)
+        return self.fixed + np.tensordot(x, self.basis[: len(x)], axes=1)
+
+
+def smear_hats(kernel, hats: HatModel, intensity, v_systemic: float) -> SmearedHats:
+    """G * (I f) / G * I of the fixed part (about v_sys) and of every basis field, with I the ``intensity`` on
+    the disc's pixels (one FFT convolution per field, the normalisation shared)."""
+    inside = np.isfinite(hats.fixed)
+    weight = np.where(inside, np.clip(np.nan_to_num(intensity), 0.0, None), 0.0)
+    norm = kernel(weight)
+    ok = inside & (norm > 1e-6 * max(float(norm.max()), 1e-30))
+    scale = np.where(ok, 1.0 / np.where(ok, norm, 1.0), 0.0)
+    fixed = np.full(hats.fixed.shape, np.nan)
+    fixed[ok] = v_systemic + (kernel(weight * np.nan_to_num(hats.fixed - v_systemic)) * scale)[ok]
+    basis = kernel(weight[None] * hats.basis) * scale[None]
+    return SmearedHats(fixed, basis)
+
+
+def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, n_speeds: int,
+                  prior_width=()) -> tuple:
+    """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
+
+    ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
+    ``measure(map)`` the same quantities fitted the same way to another map. T(x) = A x + b is built from the
+    smeared basis fields; the beam effect is T at the observed curve minus the fit of its unsmeared model. The
+    orientation shifts are bounded: a shift beyond ``prior_width`` is clipped to it and the speeds solved
+    again with it held."""
+    target = np.asarray(target, float)
+    size = smeared.basis.shape[0]
+    start = np.concatenate([target[:n_speeds], np.zeros(size - n_speeds)])
+    offset = np.asarray(measure(smeared.fixed), float)
+    matrix = np.empty((len(target), size))
+    for k in range(size):
+        matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
+    effect = (matrix @ start + offset - np.asarray(measure(hats.field(start)), float))[:n_speeds]
+    free = np.concatenate([affected_rings(effect, noise[:n_speeds]), np.ones(size - n_speeds, bool)])
+    solution = solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds, prior_width)
+    shifts = solution.x[n_speeds:]
+    bounded = np.clip(shifts, -np.asarray(prior_width, float), np.asarray(prior_width, float))
+    if np.any(bounded != shifts):
+        start = np.concatenate([target[:n_speeds], bounded])
+        free[n_speeds:] = False
+        solution = solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds, prior_width)
+    return solution, effect, free[:n_speeds]
