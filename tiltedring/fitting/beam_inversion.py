@@ -17,7 +17,8 @@ The corrected curve v = v_obs + delta solves
 
     min_delta  || S^-1 (T(v_obs + delta) - v_obs) ||^2 + lambda || D2 delta ||^2,   delta_r = 0 on held rings
 
-with S the speeds' noise errors and D2 second differences across rings: the correction is a smooth
+with S the speeds' noise errors and D2 second differences across rings, starting from delta = 0 at
+R = 0 (both curves vanish there): the correction is a smooth
 function of radius (Tikhonov 1963; Phillips 1962), not each ring amplified on its own. Rings where
 the fit of the smeared and of the unsmeared model of v_obs differ by less than their noise error,
 beyond the outermost ring where they do not, are held (delta_r = 0): what the beam does not change
@@ -38,7 +39,7 @@ from .kinematics import model_field
 from .smearing import disc_with_centre
 
 __all__ = ["HatModel", "hat_model", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedHats",
-           "smear_hats", "correct_curve"]
+           "smear_hats", "correct_curve", "correction_design"]
 
 
 @dataclass(frozen=True)
@@ -146,35 +147,46 @@ def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
     return best[1:]
 
 
-def solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds: int, prior_width=(),
+def solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds: int, prior=None,
                             grid=np.logspace(-6, 4, 41)) -> BeamSolution:
-    """Solve the regularised problem of the module docstring for ``T(x) = matrix @ x + offset`` near ``start``.
+    """Solve the regularised problem of the module docstring for ``T(x) = matrix @ x + offset`` about ``start``.
 
-    ``target`` and ``noise``: what the data gave and its errors (speeds, then orientation angles); ``free``:
-    which unknowns may move (the speeds of affected rings and the orientation shifts); ``prior_width``: per
-    orientation shift, its Gaussian prior width (deg) about 0 (the geometry moves within its error).
+    ``target`` and ``noise``: what the data gave and its errors (speeds, then orientation angles). The change
+    is x - start = ``design`` @ u: a column per free ring speed and per orientation shift (whose column also
+    moves the held rings' speeds as the fit would at the shifted orientation). ``prior``: per unknown u, the
+    inverse square width of a Gaussian prior about 0 (0: none); the smoothness penalty acts on the speeds'
+    change. Returns the solution, its lambda, the noise propagated from the data's speeds and the misfit.
     """
     start = np.asarray(start, float)
     weight = 1.0 / np.asarray(noise, float)
     residual0 = (matrix @ start + offset - target) * weight
-    columns = np.flatnonzero(free)
-    if columns.size == 0:
+    if design.shape[1] == 0:
         return BeamSolution(start.copy(), np.inf, np.asarray(noise, float)[:n_speeds], float(residual0 @ residual0))
-    x = matrix[:, columns] * weight[:, None]
-    penalty = np.zeros((max(n_speeds - 2, 0), len(start)))
-    penalty[:, :n_speeds] = _second_differences(n_speeds)
-    penalty = penalty[:, columns]
-    prior = np.zeros(len(start))
-    prior[n_speeds:] = 1.0 / np.asarray(prior_width, float) ** 2
-    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior[columns]), grid)
-    solution = start.copy()
-    solution[columns] -= solver @ residual0
-    # d x / d v_obs = E - P K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
+    x = (matrix @ design) * weight[:, None]
+    penalty = _second_differences(n_speeds + 1)[:, 1:] @ design[:n_speeds]  # with delta = 0 at R = 0
+    prior = np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float)
+    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior), grid)
+    solution = start - design @ (solver @ residual0)
+    # d x / d v_obs = E - M K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
     unit = np.eye(len(start))[:, :n_speeds]
-    gain = unit.copy()
-    gain[columns] -= solver @ ((matrix[:, :n_speeds] - unit) * weight[:, None])
+    gain = unit - design @ (solver @ ((matrix[:, :n_speeds] - unit) * weight[:, None]))
     propagated = np.sqrt(np.sum((gain[:n_speeds] * np.asarray(noise, float)[None, :n_speeds]) ** 2, axis=1))
     return BeamSolution(solution, factor, propagated, chi_square)
+
+
+def correction_design(free, coupling, with_shifts: bool = True) -> np.ndarray:
+    """Columns of x - start (:func:`solve_smooth_correction`): one per free ring speed, then (``with_shifts``)
+    one per orientation angle: 1 deg of it, with the held rings' speeds moved by -coupling (the ring fit's
+    d v / d angle at fixed data, :attr:`.response.FitResponse.coupling`)."""
+    n_speeds, n_shifts = coupling.shape
+    rings = np.flatnonzero(free)
+    columns = [np.eye(n_speeds + n_shifts)[:, rings]]
+    if with_shifts:
+        shift = np.zeros((n_speeds + n_shifts, n_shifts))
+        shift[n_speeds:] = np.eye(n_shifts)
+        shift[:n_speeds][~np.asarray(free, bool)] = -coupling[~np.asarray(free, bool)]
+        columns.append(shift)
+    return np.concatenate(columns, axis=1)
 
 
 @dataclass(frozen=True)
@@ -203,29 +215,31 @@ def smear_hats(kernel, hats: HatModel, intensity, v_systemic: float) -> SmearedH
     return SmearedHats(fixed, basis)
 
 
-def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, n_speeds: int,
-                  prior_width=()) -> tuple:
+def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, coupling, prior_width=()) -> tuple:
     """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
 
     ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
-    ``measure(map)`` the same quantities fitted the same way to another map. T(x) = A x + b is built from the
-    smeared basis fields; the beam effect is T at the observed curve minus the fit of its unsmeared model. The
-    orientation shifts are bounded: a shift beyond ``prior_width`` is clipped to it and the speeds solved
-    again with it held."""
+    ``measure(map)`` the same quantities fitted the same way to another map; ``coupling``: (rings, angles)
+    d v / d angle of the ring fit. T(x) = A x + b is built from the smeared basis fields; the beam effect is T
+    at the observed curve minus the fit of its unsmeared model. The orientation shifts have a Gaussian prior
+    of width ``prior_width`` (their errors); a shift beyond it is clipped to it and the speeds solved again
+    with it held."""
     target = np.asarray(target, float)
-    size = smeared.basis.shape[0]
+    n_speeds, size = coupling.shape[0], smeared.basis.shape[0]
     start = np.concatenate([target[:n_speeds], np.zeros(size - n_speeds)])
     offset = np.asarray(measure(smeared.fixed), float)
     matrix = np.empty((len(target), size))
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
     effect = (matrix @ start + offset - np.asarray(measure(hats.field(start)), float))[:n_speeds]
-    free = np.concatenate([affected_rings(effect, noise[:n_speeds]), np.ones(size - n_speeds, bool)])
-    solution = solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds, prior_width)
+    free = affected_rings(effect, noise[:n_speeds])
+    widths = np.asarray(prior_width, float)
+    design = correction_design(free, coupling)
+    prior = np.concatenate([np.zeros(int(free.sum())), 1.0 / widths**2])
+    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, prior)
     shifts = solution.x[n_speeds:]
-    bounded = np.clip(shifts, -np.asarray(prior_width, float), np.asarray(prior_width, float))
-    if np.any(bounded != shifts):
-        start = np.concatenate([target[:n_speeds], bounded])
-        free[n_speeds:] = False
-        solution = solve_smooth_correction(matrix, offset, start, target, noise, free, n_speeds, prior_width)
-    return solution, effect, free[:n_speeds]
+    if np.any(np.abs(shifts) > widths):
+        start = start + design[:, free.sum():] @ np.clip(shifts, -widths, widths)
+        solution = solve_smooth_correction(matrix, offset, start, target, noise,
+                                           correction_design(free, coupling, with_shifts=False), n_speeds)
+    return solution, effect, free

@@ -14,10 +14,11 @@ One step behind a narrow interface, so that another treatment can replace it:
 The forward model assumes an intensity-weighted mean-velocity (moment-1) map; the correction is the
 regularised linear least-squares problem of :mod:`..fitting.beam_inversion`, solved for each of
 several intensity assumptions: an exponential profile fitted to the intensity map through the beam
-(:mod:`..fitting.intensity_profile`; adopted), a uniform disc, and the map as given. Without an
-intensity map the uniform disc is adopted (with a caution) and an exponential disc whose edge lies at
-four scale lengths is the alternative. Half the range of the corrected speeds over the assumptions is
-the correction's own uncertainty, ``v_rotation_err_beam``.
+(:mod:`..fitting.intensity_profile`; adopted: an estimate of the intrinsic intensity, not the smeared
+moment-0 map), a uniform disc, and the map as given. Without an intensity map the uniform disc is
+adopted (with a caution) and an exponential disc whose edge lies at four scale lengths is the
+alternative. Half the range of the corrected speeds over the assumptions is the correction's own
+uncertainty, ``v_rotation_err_beam``.
 """
 
 from __future__ import annotations
@@ -133,7 +134,7 @@ def _orientation_errors(state, names) -> np.ndarray:
 
 
 def _solve_all(state, ok, target, noise, widths):
-    """(solutions by assumption name, notes by name, hats, smeared hats of the adopted assumption)."""
+    """(solutions, smeared models and notes by assumption name; the unsmeared basis fields)."""
     from ..fitting.beam_inversion import correct_curve, hat_model, smear_hats
     from ..fitting.smearing import BeamKernel
 
@@ -151,22 +152,21 @@ def _solve_all(state, ok, target, noise, widths):
         fitted = response.measure(model_map)
         return np.concatenate([fitted["v_rotation"][ok], [fitted[name] for name in response.names]])
 
-    solutions, notes, adopted = {}, {}, None
+    solutions, models, notes = {}, {}, {}
     for name, (image, note) in intensity_assumptions(vmap, kernel, geometry, r_outer).items():
         smeared = smear_hats(kernel, hats, image, v_sys)
-        solutions[name] = correct_curve(smeared, hats, target, noise, measure, n_speeds, widths)
-        notes[name] = note
-        adopted = adopted or smeared
-    return solutions, notes, hats, adopted
+        solutions[name] = correct_curve(smeared, hats, target, noise, measure, response.coupling[ok], widths)
+        models[name], notes[name] = smeared.field(solutions[name][0].x), note
+    return solutions, models, notes, hats
 
 
 def beam_treatment(state) -> Additions:
     """Beam-smearing correction of the final curve and of a constant orientation (module docstring), the
-    orientation moving at most by its error. The uncorrected curve is kept (with a caution) when the smeared
-    model of the corrected disc fits the data worse than the uncorrected model: chi^2 higher by more than one
+    orientation moving at most by its error. The uncorrected curve is kept (with a caution) when the adopted
+    intensity assumption's corrected smeared model fits the data worse than the uncorrected model: chi^2 higher by more than one
     independent datum's share, (chi^2_c - chi^2_u) / (chi^2_u / n_pixels x pixels per beam) > 1
     (beam-correlated pixels counted once per beam area)."""
-    vmap, response, layout = state.vmap, state.response, state.layout
+    vmap, response, layout, pixels = state.vmap, state.response, state.layout, state.inputs.pixels
     observed = response.observed()
     speeds, names = observed["v_rotation"], response.names
     ok = np.isfinite(speeds)
@@ -176,15 +176,15 @@ def beam_treatment(state) -> Additions:
     noise = np.concatenate([np.where(np.isfinite(raw_noise) & (raw_noise > 0), raw_noise,
                                      np.nanmax(np.abs(speeds[ok]))), widths])
     target = np.concatenate([speeds[ok], [observed[name] for name in names]])
-    solutions, notes, hats, smeared = _solve_all(state, ok, target, noise, widths)
-    solution = solutions[next(iter(solutions))][0]
-    summary = _summary(vmap, layout, ok, solutions, notes, names, widths)
-    model = smeared.field(solution.x)
-    chi_plain = model_misfit(state.inputs.pixels, hats.field(target[:n]))
-    chi_corrected = model_misfit(state.inputs.pixels, model)
-    scale = chi_plain / max(len(state.inputs.pixels.v), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
-    summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": chi_corrected,
-                    "misfit_change_beams": float((chi_corrected - chi_plain) / scale)})
+    solutions, models, notes, hats = _solve_all(state, ok, target, noise, widths)
+    misfits = {name: model_misfit(pixels, model) for name, model in models.items()}
+    best = next(iter(misfits))  # the intrinsic estimate (uniform without an intensity map)
+    solution = solutions[best][0]
+    chi_plain = model_misfit(pixels, hats.field(target[:n]))
+    scale = chi_plain / max(len(pixels.v), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
+    summary = _summary(vmap, layout, ok, solutions, best, notes, names, widths)
+    summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": misfits,
+                    "misfit_change_beams": float((misfits[best] - chi_plain) / scale)})
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
     if summary["misfit_change_beams"] > 1.0:
@@ -196,14 +196,13 @@ def beam_treatment(state) -> Additions:
     values = {"v_rotation": corrected}
     for k, name in enumerate(names):
         values[name] = float(observed[name] + solution.x[n + k]) % (360.0 if name == "position_angle" else np.inf)
-    treatment = BeamTreatment(values, model, summary, noise_full, spread)
+    treatment = BeamTreatment(values, models[best], summary, noise_full, spread)
     return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary})
 
 
-def _summary(vmap, layout, ok, solutions, notes, names, widths) -> dict:
+def _summary(vmap, layout, ok, solutions, best, notes, names, widths) -> dict:
     """The ``beam_smearing`` section of ``fit.json``."""
-    keys = list(solutions)
-    solution, effect, free = solutions[keys[0]]
+    solution, effect, free = solutions[best]
     radii, n = layout.radii[ok], int(ok.sum())
     shifts = {name: float(solution.x[n + k]) for k, name in enumerate(names)}
     return {
@@ -216,8 +215,8 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths) -> dict:
                   "held",
         "velocity_map_kind": VELOCITY_MAP_KIND,
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
-        "intensity": notes[keys[0]],
-        "intensity_alternatives": {name: notes[name] for name in keys[1:]},
+        "intensity": notes[best],
+        "intensity_alternatives": {name: note for name, note in notes.items() if name != best},
         "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions",
         "smoothing_lambda": solution.smoothing,
         "rings_corrected_arcsec": [float(r) for r in radii[free]],
