@@ -102,14 +102,19 @@ def hat_model(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step:
 
 
 def affected_rings(beam_effect, noise, floor: float = 0.5) -> np.ndarray:
-    """Rings the correction may move: every ring out to the outermost one where |fit of smeared - fit of
-    unsmeared model| of the observed curve reaches its noise error (at least ``floor`` km/s). Smearing
-    weakens outward, so the rings inside that one are within its reach even where the two fits happen to
-    agree; the rings beyond are held."""
+    """Rings the correction may move: from the centre out to the last ring before two consecutive rings where
+    |fit of smeared - fit of unsmeared model| of the observed curve stays below its noise error (at least
+    ``floor`` km/s). Smearing weakens outward from the centre, so this is the beam's reach; rings beyond it
+    are held, including outer rings that differ only through the disc's truncated edge (the model ends at the
+    outermost ring while the sky does not)."""
     moved = np.abs(np.nan_to_num(beam_effect)) >= np.maximum(np.nan_to_num(noise, nan=np.inf), floor)
     free = np.zeros(len(moved), bool)
-    if moved.any():
-        free[: np.flatnonzero(moved)[-1] + 1] = True
+    if not moved.any():
+        return free
+    quiet = ~moved
+    calm = np.flatnonzero(quiet[:-1] & quiet[1:] & (np.arange(len(moved) - 1) > np.flatnonzero(moved)[0]))
+    reach = calm[0] if calm.size else len(moved)
+    free[:reach] = True
     return free
 
 
@@ -231,8 +236,8 @@ def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, 
     matrix = np.empty((len(target), size))
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
-    effect = (matrix @ start + offset - np.asarray(measure(hats.field(start)), float))[:n_speeds]
-    free = affected_rings(effect, noise[:n_speeds])
+    effect = matrix @ start + offset - np.asarray(measure(hats.field(start)), float)
+    free = affected_rings(effect[:n_speeds], noise[:n_speeds])
     widths = np.asarray(prior_width, float)
     design = correction_design(free, coupling)
     prior = np.concatenate([np.zeros(int(free.sum())), 1.0 / widths**2])
@@ -242,4 +247,4 @@ def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, 
         start = start + design[:, free.sum():] @ np.clip(shifts, -widths, widths)
         solution = solve_smooth_correction(matrix, offset, start, target, noise,
                                            correction_design(free, coupling, with_shifts=False), n_speeds)
-    return solution, effect, free
+    return solution, effect[:n_speeds], free

@@ -70,5 +70,5 @@ def fit_exponential_profile(intensity, radius_map, kernel, r_outer: float, beam_
     lo, hi = np.log(0.1 * beam_fwhm), np.log(10.0 * r_outer)
     best = minimize_scalar(lambda t: misfit(t)[0], bounds=(lo, hi), method="bounded", options={"xatol": 1e-3})
     h = float(np.exp(best.x))
-    return ExponentialProfile(misfit(best.x)[1], h, f"exponential profile fitted to the intensity map through the "
-                                                    f"beam (scale length {h:.2f} arcsec)")
+    return ExponentialProfile(misfit(best.x)[1], h, f"exponential profile of scale length {h:.2f} arcsec fitted to "
+                                                    "the intensity map through the beam")

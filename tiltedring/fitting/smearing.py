@@ -48,10 +48,10 @@ class BeamKernel:
         self.transfer = np.exp(-2 * np.pi**2 * quad)
         self._last_norm = None
 
-    def __call__(self, image, workers: int = -1):
+    def __call__(self, image, workers: int | None = -1):
         """``image`` (ny, nx) convolved with the beam; a stack (..., ny, nx), e.g. the channels of a cube, is
-        convolved plane by plane. NaN counts as 0. ``workers``: FFT threads (each plane's transform is the same
-        whatever their number)."""
+        convolved plane by plane. NaN counts as 0. ``workers``: FFT threads (-1: one per core; None: scipy's
+        current setting, ``scipy.fft.set_workers``); each plane's transform is the same whatever their number."""
         ny, nx = self.shape
         spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, axes=(-2, -1), workers=workers)
         spectrum *= self.transfer

@@ -36,6 +36,10 @@ __all__ = ["BeamTreatment", "beam_wanted", "beam_treatment", "speed_stretch", "i
 
 _KMS = u.km / u.s
 VELOCITY_MAP_KIND = "intensity-weighted mean velocity (moment-1 map)"
+# a model is "worse" when its chi^2, in units of one independent datum's, exceeds the other's by more than 2:
+# below that the difference is "not worth more than a bare mention" (Kass & Raftery 1995, JASA 90, 773, on
+# 2 ln B, of which the chi^2 difference of two models with the same number of parameters is the BIC estimate)
+WORSE = 2.0
 
 
 def _stretch(corrected, observed) -> np.ndarray:
@@ -163,9 +167,9 @@ def _solve_all(state, ok, target, noise, widths):
 def beam_treatment(state) -> Additions:
     """Beam-smearing correction of the final curve and of a constant orientation (module docstring), the
     orientation moving at most by its error. The uncorrected curve is kept (with a caution) when the adopted
-    intensity assumption's corrected smeared model fits the data worse than the uncorrected model: chi^2 higher by more than one
-    independent datum's share, (chi^2_c - chi^2_u) / (chi^2_u / n_pixels x pixels per beam) > 1
-    (beam-correlated pixels counted once per beam area)."""
+    intensity assumption's corrected smeared model fits the data worse than the uncorrected model:
+    (chi^2_c - chi^2_u) / (chi^2_u / n_pixels x pixels per beam) > :data:`WORSE` (beam-correlated pixels
+    counted once per beam area)."""
     vmap, response, layout, pixels = state.vmap, state.response, state.layout, state.inputs.pixels
     observed = response.observed()
     speeds, names = observed["v_rotation"], response.names
@@ -187,7 +191,7 @@ def beam_treatment(state) -> Additions:
                     "misfit_change_beams": float((misfits[best] - chi_plain) / scale)})
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
-    if summary["misfit_change_beams"] > 1.0:
+    if summary["misfit_change_beams"] > WORSE:
         return _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
                                   "uncorrected model")
     corrected, noise_full, spread = (np.full(len(layout), np.nan) for _ in range(3))
