@@ -1,31 +1,35 @@
 """The beam-smearing correction as one regularised linear least-squares problem.
 
 The forward model is the one of :mod:`.smearing` (an intensity-weighted mean-velocity map, i.e. a
-moment-1 map; Begeman 1989, A&A 223, 47): v_model = v_sys + G * (I (v_sky - v_sys)) / (G * I). At the
-fitted (held) orientation the thin-disc field v_sky is linear in the ring speeds, because the model
-builder interpolates them linearly between ring radii (with v = 0 at R = 0):
+moment-1 map; Begeman 1989, A&A 223, 47): v_model = v_sys + G * (I (v_sky - v_sys)) / (G * I). The
+curve is the natural cubic spline through v = 0 at R = 0 and the ring speeds v_k, so the thin-disc
+field is linear in them:
 
-    v_sky - v_sys = u_0 + sum_k v_k sin(i) cos(theta) h_k(R)
+    v_sky - v_sys = u_0 + sum_k v_k sin(i) cos(theta) c_k(R) + sum_j dg_j d v_sky / d g_j
 
-with h_k the hat function on ring k's radius and u_0 the part that does not depend on v (radial
-motions). Smearing is linear in v_sky - v_sys for a fixed I, and the ring fit at a fixed geometry is
-linear in the map (:meth:`.response.FitResponse.speeds_at_adopted_geometry`), so the operator "draw,
-smear, fit" is affine, T(v) = A v + b, and its columns are found once by smearing each hat's field
-(one FFT per ring; no iteration, so no divergence and no dependence on rounding).
+with c_k the spline's cardinal functions, u_0 the part that does not depend on v (radial motions),
+and, to first order, dg_j a shift of the constant position angle or inclination. Smearing is linear
+in v_sky - v_sys for a fixed I, and the fit is linear in the map to first order
+(:meth:`.response.FitResponse.measure`), so the operator "draw, smear, fit" is affine in
+x = (v, dg), T(x) = A x + b; its columns come from smearing each basis field once (one FFT each;
+no iteration, so nothing can diverge and rounding cannot steer the result).
 
-The corrected curve v = v_obs + delta solves
+The correction x - x_obs = M u (a column per free ring speed; one per orientation angle, which also
+moves the held rings' speeds as the fit would at the shifted angle) solves
 
-    min_delta  || S^-1 (T(v_obs + delta) - v_obs) ||^2 + lambda || D2 delta ||^2,   delta_r = 0 on held rings
+    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2 + sum_j (dg_j / sigma_j)^2
 
-with S the speeds' noise errors and D2 second differences across rings, starting from delta = 0 at
-R = 0 (both curves vanish there): the correction is a smooth
-function of radius (Tikhonov 1963; Phillips 1962), not each ring amplified on its own. Rings where
-the fit of the smeared and of the unsmeared model of v_obs differ by less than their noise error,
-beyond the outermost ring where they do not, are held (delta_r = 0): what the beam does not change
-does not move. lambda is chosen by generalised
-cross-validation (Golub, Heath & Wahba 1979, Technometrics 21, 215): the minimum over a fixed grid
-of GCV(lambda) = n || S^-1 r ||^2 / (n - tr H)^2, H the influence matrix. The noise of the corrected
-curve follows from v = M v_obs + c (propagated exactly).
+with y_obs what the data gave (speeds and orientation), S their errors, delta the speeds' change and
+D2 second differences across rings starting from delta = 0 at R = 0 (both curves vanish there): the
+correction is a smooth function of radius (Tikhonov regularisation: Tikhonov 1963, Soviet Math.
+Dokl. 4, 1035; Phillips 1962, J. ACM 9, 84), not each ring amplified on its own. The orientation has
+a Gaussian prior of its own error sigma_j and is clipped to +/- sigma_j. Rings beyond the beam's
+reach (from the centre out to where the fits of the smeared and the unsmeared model of the observed
+curve first differ by less than the noise in two consecutive rings) are held: what the beam does
+not change does not move. lambda is chosen by generalised cross-validation (Golub, Heath & Wahba
+1979, Technometrics 21, 215): the minimum over a fixed grid of GCV(lambda) = n || S^-1 r ||^2 /
+(n - tr H)^2, H the influence matrix. The noise of the corrected speeds follows exactly from the
+linear map v_obs -> x.
 """
 
 from __future__ import annotations
@@ -38,12 +42,12 @@ from scipy.interpolate import CubicSpline
 from .kinematics import model_field
 from .smearing import disc_with_centre
 
-__all__ = ["HatModel", "hat_model", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedHats",
-           "smear_hats", "correct_curve", "correction_design"]
+__all__ = ["DiscBasis", "disc_basis", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedBasis",
+           "smear_basis", "correct_curve", "correction_design"]
 
 
 @dataclass(frozen=True)
-class HatModel:
+class DiscBasis:
     """The disc's sky field as an affine function of x = (ring speeds, orientation shifts) (module docstring):
     ``fixed`` = v_sys + u_0 (NaN outside the disc); ``basis`` (n_speeds + n_shifts, ny, nx): sin i cos theta
     c_k(R) per ring, then the field's derivative per degree of each orientation angle at the observed curve."""
@@ -83,8 +87,8 @@ def curve_basis(shape, sky_jacobian, rings: dict, r_outer: float) -> tuple:
     return fixed, basis
 
 
-def hat_model(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step: float = 0.25) -> HatModel:
-    """:class:`HatModel` of ``rings`` (their v_rotation is the curve the orientation derivatives are taken at);
+def disc_basis(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step: float = 0.25) -> DiscBasis:
+    """:class:`DiscBasis` of ``rings`` (their v_rotation is the curve the orientation derivatives are taken at);
     ``shifts``: orientation names (position_angle, inclination) whose change is modelled to first order, by
     central differences of +/- ``step`` deg."""
     fixed, basis = curve_basis(shape, sky_jacobian, rings, r_outer)
@@ -98,7 +102,7 @@ def hat_model(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step:
             sides.append(f + np.tensordot(speeds, b, axes=1))
         # pixels entering or leaving the disc's edge as the angle moves carry no derivative
         derivatives.append(np.nan_to_num((sides[0] - sides[1]) / (2 * step)))
-    return HatModel(fixed, np.concatenate([basis, np.array(derivatives).reshape((-1,) + tuple(shape))]))
+    return DiscBasis(fixed, np.concatenate([basis, np.array(derivatives).reshape((-1,) + tuple(shape))]))
 
 
 def affected_rings(beam_effect, noise, floor: float = 0.5) -> np.ndarray:
@@ -195,7 +199,7 @@ def correction_design(free, coupling, with_shifts: bool = True) -> np.ndarray:
 
 
 @dataclass(frozen=True)
-class SmearedHats:
+class SmearedBasis:
     """The smeared fixed part (NaN where the model is undefined) and the smeared basis fields of one intensity."""
 
     fixed: np.ndarray
@@ -206,21 +210,22 @@ class SmearedHats:
         return self.fixed + np.tensordot(x, self.basis[: len(x)], axes=1)
 
 
-def smear_hats(kernel, hats: HatModel, intensity, v_systemic: float) -> SmearedHats:
+def smear_basis(kernel, basis_fields: DiscBasis, intensity, v_systemic: float) -> SmearedBasis:
     """G * (I f) / G * I of the fixed part (about v_sys) and of every basis field, with I the ``intensity`` on
     the disc's pixels (one FFT convolution per field, the normalisation shared)."""
-    inside = np.isfinite(hats.fixed)
+    inside = np.isfinite(basis_fields.fixed)
     weight = np.where(inside, np.clip(np.nan_to_num(intensity), 0.0, None), 0.0)
     norm = kernel(weight)
     ok = inside & (norm > 1e-6 * max(float(norm.max()), 1e-30))
     scale = np.where(ok, 1.0 / np.where(ok, norm, 1.0), 0.0)
-    fixed = np.full(hats.fixed.shape, np.nan)
-    fixed[ok] = v_systemic + (kernel(weight * np.nan_to_num(hats.fixed - v_systemic)) * scale)[ok]
-    basis = kernel(weight[None] * hats.basis) * scale[None]
-    return SmearedHats(fixed, basis)
+    fixed = np.full(basis_fields.fixed.shape, np.nan)
+    fixed[ok] = v_systemic + (kernel(weight * np.nan_to_num(basis_fields.fixed - v_systemic)) * scale)[ok]
+    basis = kernel(weight[None] * basis_fields.basis) * scale[None]
+    return SmearedBasis(fixed, basis)
 
 
-def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, coupling, prior_width=()) -> tuple:
+def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling,
+                  prior_width=()) -> tuple:
     """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
 
     ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
@@ -236,7 +241,7 @@ def correct_curve(smeared: SmearedHats, hats: HatModel, target, noise, measure, 
     matrix = np.empty((len(target), size))
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
-    effect = matrix @ start + offset - np.asarray(measure(hats.field(start)), float)
+    effect = matrix @ start + offset - np.asarray(measure(basis_fields.field(start)), float)
     free = affected_rings(effect[:n_speeds], noise[:n_speeds])
     widths = np.asarray(prior_width, float)
     design = correction_design(free, coupling)

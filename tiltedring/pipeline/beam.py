@@ -139,7 +139,7 @@ def _orientation_errors(state, names) -> np.ndarray:
 
 def _solve_all(state, ok, target, noise, widths):
     """(solutions, smeared models and notes by assumption name; the unsmeared basis fields)."""
-    from ..fitting.beam_inversion import correct_curve, hat_model, smear_hats
+    from ..fitting.beam_inversion import correct_curve, disc_basis, smear_basis
     from ..fitting.smearing import BeamKernel
 
     vmap, starts, r_outer, response = state.vmap, state.final_rings.starts, state.layout.edges[-1], state.response
@@ -147,7 +147,7 @@ def _solve_all(state, ok, target, noise, widths):
     rings = {p.name: starts[ok, p] for p in Parameter}
     rings["radius"], rings["v_rotation"] = state.layout.radii[ok], target[:n_speeds]
     kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
-    hats = hat_model(vmap.shape, vmap.sky_jacobian, rings, r_outer, shifts=response.names)
+    basis_fields = disc_basis(vmap.shape, vmap.sky_jacobian, rings, r_outer, shifts=response.names)
     geometry = {name: float(np.median(rings[name])) for name in ("x_center", "y_center", "position_angle",
                                                                   "inclination")}
     v_sys = float(np.median(rings["v_systemic"]))
@@ -158,10 +158,11 @@ def _solve_all(state, ok, target, noise, widths):
 
     solutions, models, notes = {}, {}, {}
     for name, (image, note) in intensity_assumptions(vmap, kernel, geometry, r_outer).items():
-        smeared = smear_hats(kernel, hats, image, v_sys)
-        solutions[name] = correct_curve(smeared, hats, target, noise, measure, response.coupling[ok], widths)
+        smeared = smear_basis(kernel, basis_fields, image, v_sys)
+        solutions[name] = correct_curve(smeared, basis_fields, target, noise, measure, response.coupling[ok],
+                                        widths)
         models[name], notes[name] = smeared.field(solutions[name][0].x), note
-    return solutions, models, notes, hats
+    return solutions, models, notes, basis_fields
 
 
 def beam_treatment(state) -> Additions:
@@ -180,11 +181,11 @@ def beam_treatment(state) -> Additions:
     noise = np.concatenate([np.where(np.isfinite(raw_noise) & (raw_noise > 0), raw_noise,
                                      np.nanmax(np.abs(speeds[ok]))), widths])
     target = np.concatenate([speeds[ok], [observed[name] for name in names]])
-    solutions, models, notes, hats = _solve_all(state, ok, target, noise, widths)
+    solutions, models, notes, basis_fields = _solve_all(state, ok, target, noise, widths)
     misfits = {name: model_misfit(pixels, model) for name, model in models.items()}
     best = next(iter(misfits))  # the intrinsic estimate (uniform without an intensity map)
     solution = solutions[best][0]
-    chi_plain = model_misfit(pixels, hats.field(target[:n]))
+    chi_plain = model_misfit(pixels, basis_fields.field(target[:n]))
     scale = chi_plain / max(len(pixels.v), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
     summary = _summary(vmap, layout, ok, solutions, best, notes, names, widths)
     summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": misfits,
