@@ -5,19 +5,11 @@ model compared with the data is (e.g. Begeman 1989, A&A 223, 47)::
 
     v_model = v_sys + G * (I (v_sky - v_sys)) / (G * I)
 
-with G the elliptical Gaussian beam, I the intensity (moment-0) map and v_sky the thin-disc
+with G the elliptical Gaussian beam, I the intrinsic intensity (an estimate: see :mod:`.intensity_profile`) and v_sky the thin-disc
 line-of-sight field. Without an intensity map, I is taken as uniform over the modelled disc (this
 is said in the output).
 
-The correction holds the orientation at the fitted values and iterates on the curve itself. With
-v_obs the ring fit of the data and T the operator "draw the disc with curve v, smear it, fit it
-with the same rings at the same geometry" (affine in v):
-
-    v_(n+1) = v_n + (v_obs - T(v_n)),     v_0 = v_obs
-
-(the van Cittert iteration) until the largest remaining difference is below 0.5 km/s or after a
-fixed number of steps; at convergence T(v) = v_obs, i.e. the smeared model of the corrected curve
-reproduces what the data gave. Stopping at a small difference acts as regularisation.
+The correction itself is :mod:`.beam_inversion` (a regularised linear problem on the curve).
 """
 
 from __future__ import annotations
@@ -25,9 +17,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import fft
 
-from .parameters import PARAMETERS
 
-__all__ = ["BeamKernel", "smear", "correct_beam_smearing"]
+__all__ = ["BeamKernel", "smear", "disc_with_centre"]
 
 
 class BeamKernel:
@@ -57,10 +48,10 @@ class BeamKernel:
         self.transfer = np.exp(-2 * np.pi**2 * quad)
         self._last_norm = None
 
-    def __call__(self, image, workers: int = -1):
+    def __call__(self, image, workers: int | None = -1):
         """``image`` (ny, nx) convolved with the beam; a stack (..., ny, nx), e.g. the channels of a cube, is
-        convolved plane by plane. NaN counts as 0. ``workers``: FFT threads (each plane's transform is the same
-        whatever their number)."""
+        convolved plane by plane. NaN counts as 0. ``workers``: FFT threads (-1: one per core; None: scipy's
+        current setting, ``scipy.fft.set_workers``); each plane's transform is the same whatever their number."""
         ny, nx = self.shape
         spectrum = fft.rfft2(np.nan_to_num(image), s=self.padded, axes=(-2, -1), workers=workers)
         spectrum *= self.transfer
@@ -97,49 +88,3 @@ def disc_with_centre(rings: dict) -> dict:
     out["radius"][0] = 0.0
     out["v_rotation"][0] = 0.0
     return out
-
-
-def correct_beam_smearing(vmap, rings: dict, r_outer: float, observed, measure, noise=None, max_iterations: int = 20,
-                          tolerance: float = 0.5, kernel: BeamKernel | None = None):
-    """Iterate to the curve whose smeared model the fit turns into what the data gave, geometry held.
-
-    ``rings``: per-ring ``radius`` and :data:`.parameters.PARAMETERS` columns (the orientation is held
-    at these values); ``observed``: the fitted v_rotation per ring (NaN: ring not used); ``measure(map)``
-    returns the speeds fitted the same way (at the same geometry) to another map. At a fixed geometry
-    the operator T (draw, smear, fit) is affine in the curve, and the van Cittert step
-    v_(n+1) = v_n + (observed - T(v_n)) converges for the eigenvalues of a smoothing operator
-    (0 < lambda <= 1). It stops when every ring's remaining difference is below ``tolerance`` km/s or,
-    with ``noise`` (the speeds' errors per ring), when the rms of difference / noise is below 0.5 (the
-    discrepancy principle for Landweber-type iterations, Engl, Hanke & Neubauer 1996, "Regularization
-    of Inverse Problems", ch. 6: iterating further only fits the noise), and after ``max_iterations``
-    whatever happens (then ``converged`` is False).
-    Returns (corrected speeds, smeared model map, iterations, converged).
-    """
-    from .kinematics import model_field
-
-    kernel = kernel or BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
-    intensity = np.ones(vmap.shape) if vmap.intensity is None else np.clip(np.nan_to_num(vmap.intensity), 0, None)
-    v_sys = float(np.median(rings["v_systemic"]))
-    target = np.asarray(observed, float)
-    ok = np.isfinite(target)
-    if noise is not None:
-        noise = np.where(np.isfinite(noise) & (np.asarray(noise, float) > 0), noise, np.inf)
-    table = {name: np.asarray(values, float)[ok] for name, values in rings.items() if name in PARAMETERS or
-             name == "radius"}
-
-    def draw(speeds):
-        table["v_rotation"] = speeds[ok]
-        disc = disc_with_centre(table)
-        return smear(kernel, model_field(vmap.shape, vmap.sky_jacobian, disc, r_outer), intensity, v_sys)
-
-    trial = np.where(ok, target, np.nan)
-    converged, iteration = False, 0
-    for iteration in range(1, max_iterations + 1):
-        got = np.asarray(measure(draw(trial)), float)
-        step = np.where(ok & np.isfinite(got), target - got, 0.0)
-        trial = np.where(ok, trial + step, np.nan)
-        scaled = step[ok] / noise[ok] if noise is not None else np.full(1, np.inf)
-        if float(np.max(np.abs(step))) < tolerance or np.sqrt(np.nanmean(scaled**2)) < 0.5:
-            converged = True
-            break
-    return trial, draw(trial), iteration, converged

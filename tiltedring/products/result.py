@@ -39,6 +39,8 @@ ERROR_COLUMNS = {
     "v_rotation_err_formal": "least-squares error scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)",
     "v_rotation_err_sides": "half the difference between approaching-side and receding-side fits",
     "v_rotation_err_inclination": "v_rotation cot(i) times the inclination error",
+    "v_rotation_err_beam": "half the spread of the beam-smearing-corrected v_rotation over the intensity assumptions "
+                           "of its forward model (exponential profile, uniform, the intensity map as given)",
     "<parameter>_err of geometry": "formal errors scaled as above; in the final table, errors of the regularised "
                                    "profile or of the robust average over rings",
 }

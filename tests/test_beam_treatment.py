@@ -1,0 +1,130 @@
+"""The beam-smearing treatment: demo truth through the command line, thread independence, recovery of a
+steep inner rise on an independent disc, the intrinsic-intensity estimate, and the fallback.
+
+Independent references: the demo field's truth table (demo_fields/calloway_truth.ecsv, injected truth);
+discs drawn by tests/independent_fields.py (scipy Rotation test particles, an intensity-weighted mean
+velocity smoothed by scipy.ndimage.gaussian_filter, not the project's model code).
+"""
+
+import numpy as np
+import pytest
+from astropy.table import Table
+from independent_fields import draw_field
+
+import tiltedring as tr
+from tiltedring.fitting import smearing
+
+
+def _truth(demo_fields, name):
+    return Table.read(demo_fields / f"{name}_truth.ecsv")
+
+
+def test_calloway_demo_fit_by_the_command_line_is_within_its_truth(tmp_path, demo_fields):
+    """`tiltedring fit` on the Calloway demo field with its intensity map, report on. Truth table: position
+    angle 125 deg, inclination 40 deg, the curve at the ring radii. Tolerances (the issue's): 2 deg, 3 deg,
+    and 5 km/s beyond two beams. The beam step ran and says what kind of map it assumed."""
+    import json
+
+    from tiltedring.cli import main
+
+    out = tmp_path / "fit"
+    args = ["fit", str(demo_fields / "calloway_velocity.fits"), "--intensity-map",
+            str(demo_fields / "calloway_intensity.fits"), "--resamples", "0", "--out", str(out), "-q"]
+    assert main(args) == 0
+    truth = _truth(demo_fields, "calloway")
+    rings = Table.read(out / "rings.ecsv")
+    record = json.loads((out / "fit.json").read_text())
+    pa = float(np.median(rings["position_angle"]))
+    assert abs((pa - truth.meta["position_angle"] + 180) % 360 - 180) < 2.0
+    assert abs(float(np.median(rings["inclination"])) - truth.meta["inclination"]) < 3.0
+    beam = record["beam_smearing"]["beam_arcsec"][0]
+    far = np.asarray(rings["radius"]) > 2 * beam
+    v_true = np.interp(np.asarray(rings["radius"])[far], truth["radius"], truth["v_rotation"])
+    assert np.all(np.abs(np.asarray(rings["v_rotation"])[far] - v_true) < 5.0)
+    assert "moment-1" in record["beam_smearing"]["velocity_map_kind"]
+    assert (out / "report.pdf").stat().st_size > 0
+
+
+def _fit_with_threads(monkeypatch, vmap, threads):
+    """The fit with every thread pool of the compiled kernels and the beam's FFTs set to ``threads``."""
+    import tiltedring.fitting.cube_model
+    import tiltedring.fitting.kinematics
+    import tiltedring.fitting.line_profiles
+    import tiltedring.fitting.normal_equations
+    import tiltedring.fitting.threads
+
+    for module in (tiltedring.fitting.threads, tiltedring.fitting.kinematics, tiltedring.fitting.normal_equations,
+                   tiltedring.fitting.cube_model, tiltedring.fitting.line_profiles):
+        monkeypatch.setattr(module, "thread_count", lambda: threads)
+    plain_call = smearing.BeamKernel.__call__
+    monkeypatch.setattr(smearing.BeamKernel, "__call__", lambda self, image, workers=-1: plain_call(self, image,
+                                                                                                       threads))
+    return tr.fit_velocity_map(vmap, ring_width="0.5beam", resamples=0)
+
+
+def test_same_numbers_with_one_and_two_threads(monkeypatch, quiet):
+    """Project rule: results do not depend on the thread count (exact equality of the corrected curve, its
+    beam error and the corrected orientation)."""
+    hdul, truth = draw_field(50.0, 60.0, seed=4, shape=(120, 120), beam_pixels=8.0, r_turn=6.0, scale_length=15.0,
+                             n_particles=800_000)
+    vmap = tr.read_velocity_map(hdul, intensity=truth["intensity_hdu"])
+    one = _fit_with_threads(monkeypatch, vmap, 1)
+    two = _fit_with_threads(monkeypatch, vmap, 2)
+    assert one.diagnostics["beam_smearing"]["corrected"]
+    for name in ("v_rotation", "v_rotation_err_beam", "v_rotation_err", "inclination", "position_angle"):
+        np.testing.assert_array_equal(one.rings[name].value, two.rings[name].value)
+
+
+@pytest.mark.parametrize("seed", [21, 22])
+def test_exponential_disc_with_a_steep_rise_is_recovered_better_than_uncorrected(seed, quiet):
+    """Independent particle disc: exponential surface density (scale length 20 arcsec), v = 180 tanh(R / 4),
+    a turnover at half the 8-arcsec beam, inclination 50 deg, half-beam rings, its smeared intensity map given.
+    Between half a beam and two beams the corrected curve is closer to the truth than the uncorrected one, on
+    average by at least half the uncorrected error, and within 8 per cent (measured 3-6 per cent); beyond two
+    beams it differs from the uncorrected curve by less than its error (the issue's criterion: there the
+    correction may only carry the orientation's move within its error)."""
+    hdul, truth = draw_field(130.0, 50.0, seed=seed, beam_pixels=8.0, r_turn=4.0, v_flat=180.0, scale_length=20.0,
+                             n_particles=2_000_000)
+    res = tr.fit_velocity_map(tr.read_velocity_map(hdul, intensity=truth["intensity_hdu"]), ring_width="0.5beam",
+                              resamples=0)
+    r = res.rings["radius"].value
+    v_true = truth["v_rotation"](r)
+    corrected, plain = res.rings["v_rotation"].value, res.rings["v_rotation_smeared"].value
+    inner, outer = (r >= 4.0) & (r <= 16.0), r > 16.0
+    error_c = np.mean(np.abs(corrected[inner] / v_true[inner] - 1))
+    error_u = np.mean(np.abs(plain[inner] / v_true[inner] - 1))
+    assert error_c < 0.5 * error_u
+    assert error_c < 0.08
+    assert np.all(np.abs(corrected - plain)[outer] < res.rings["v_rotation_err"].value[outer])
+    assert np.all(np.isfinite(res.rings["v_rotation_err_beam"].value[np.isfinite(corrected)]))
+
+
+def test_exponential_profile_is_recovered_through_the_beam():
+    """The intrinsic-intensity estimate: an exponential disc of particles (scale length 18 arcsec, drawn by
+    the independent generator, binned and smoothed by scipy) gives back its scale length within 10 per cent."""
+    from tiltedring.fitting.intensity_profile import disc_radius_map, fit_exponential_profile
+
+    hdul, truth = draw_field(30.0, 45.0, seed=5, beam_pixels=8.0, scale_length=18.0, n_particles=2_000_000)
+    vmap = tr.read_velocity_map(hdul, intensity=truth["intensity_hdu"])
+    geometry = {"x_center": truth["x_center"], "y_center": truth["y_center"], "position_angle": 30.0,
+                "inclination": 45.0}
+    radius = disc_radius_map(vmap.shape, vmap.sky_jacobian, geometry)
+    kernel = smearing.BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
+    profile = fit_exponential_profile(vmap.intensity, radius, kernel, 80.0, vmap.beam.fwhm)
+    assert profile.scale_length == pytest.approx(18.0, rel=0.10)
+
+
+def test_a_correction_that_fits_worse_falls_back_with_a_caution(monkeypatch, quiet):
+    """When the corrected disc's smeared model does not fit the data at least as well as the uncorrected
+    model (forced here by a threshold no model can meet), the uncorrected curve is kept, fit.json says why and
+    the run's cautions say the inner curve is biased low."""
+    from tiltedring.pipeline import beam
+
+    monkeypatch.setattr(beam, "WORSE", -np.inf)
+    hdul, truth = draw_field(50.0, 60.0, seed=4, shape=(120, 120), beam_pixels=8.0, r_turn=6.0,
+                             n_particles=500_000)
+    res = tr.fit_velocity_map(tr.read_velocity_map(hdul), resamples=0)
+    section = res.diagnostics["beam_smearing"]
+    assert section["corrected"] is False and "worse" in section["fallback"]
+    assert "v_rotation_smeared" not in res.rings.colnames
+    assert any("not applied" in c for c in res.cautions)

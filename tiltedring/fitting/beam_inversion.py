@@ -1,0 +1,255 @@
+"""The beam-smearing correction as one regularised linear least-squares problem.
+
+The forward model is the one of :mod:`.smearing` (an intensity-weighted mean-velocity map, i.e. a
+moment-1 map; Begeman 1989, A&A 223, 47): v_model = v_sys + G * (I (v_sky - v_sys)) / (G * I). The
+curve is the natural cubic spline through v = 0 at R = 0 and the ring speeds v_k, so the thin-disc
+field is linear in them:
+
+    v_sky - v_sys = u_0 + sum_k v_k sin(i) cos(theta) c_k(R) + sum_j dg_j d v_sky / d g_j
+
+with c_k the spline's cardinal functions, u_0 the part that does not depend on v (radial motions),
+and, to first order, dg_j a shift of the constant position angle or inclination. Smearing is linear
+in v_sky - v_sys for a fixed I, and the fit is linear in the map to first order
+(:meth:`.response.FitResponse.measure`), so the operator "draw, smear, fit" is affine in
+x = (v, dg), T(x) = A x + b; its columns come from smearing each basis field once (one FFT each;
+no iteration, so nothing can diverge and rounding cannot steer the result).
+
+The correction x - x_obs = M u (a column per free ring speed; one per orientation angle, which also
+moves the held rings' speeds as the fit would at the shifted angle) solves
+
+    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2 + sum_j (dg_j / sigma_j)^2
+
+with y_obs what the data gave (speeds and orientation), S their errors, delta the speeds' change and
+D2 second differences across rings starting from delta = 0 at R = 0 (both curves vanish there): the
+correction is a smooth function of radius (Tikhonov regularisation: Tikhonov 1963, Soviet Math.
+Dokl. 4, 1035; Phillips 1962, J. ACM 9, 84), not each ring amplified on its own. The orientation has
+a Gaussian prior of its own error sigma_j and is clipped to +/- sigma_j. Rings beyond the beam's
+reach (from the centre out to where the fits of the smeared and the unsmeared model of the observed
+curve first differ by less than the noise in two consecutive rings) are held: what the beam does
+not change does not move. lambda is chosen by generalised cross-validation (Golub, Heath & Wahba
+1979, Technometrics 21, 215): the minimum over a fixed grid of GCV(lambda) = n || S^-1 r ||^2 /
+(n - tr H)^2, H the influence matrix. The noise of the corrected speeds follows exactly from the
+linear map v_obs -> x.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.interpolate import CubicSpline
+
+from .kinematics import model_field
+from .smearing import disc_with_centre
+
+__all__ = ["DiscBasis", "disc_basis", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedBasis",
+           "smear_basis", "correct_curve", "correction_design"]
+
+
+@dataclass(frozen=True)
+class DiscBasis:
+    """The disc's sky field as an affine function of x = (ring speeds, orientation shifts) (module docstring):
+    ``fixed`` = v_sys + u_0 (NaN outside the disc); ``basis`` (n_speeds + n_shifts, ny, nx): sin i cos theta
+    c_k(R) per ring, then the field's derivative per degree of each orientation angle at the observed curve."""
+
+    fixed: np.ndarray
+    basis: np.ndarray
+
+    def field(self, x) -> np.ndarray:
+        """The unsmeared sky field at ``x`` (speeds, then orientation shifts; missing shifts count as 0)."""
+        x = np.asarray(x, float)
+        return self.fixed + np.tensordot(x, self.basis[: len(x)], axes=1)
+
+
+def curve_basis(shape, sky_jacobian, rings: dict, r_outer: float) -> tuple:
+    """(fixed part, per-ring fields) of ``rings`` (radius and the parameters; v_rotation ignored) by three calls
+    of the model builder: v = 0 (the fixed part), v = 1 on every ring (sin i cos theta) and v = ring index (sin
+    i cos theta times the pixel's fractional ring position, hence its disc radius R). The curve between ring
+    radii is the natural cubic spline through (0, 0) and the ring speeds: field k is sin i cos theta c_k(R),
+    c_k the spline's cardinal function (linear in the speeds; de Boor 1978, A Practical Guide to Splines)."""
+    disc = disc_with_centre(dict(rings, v_rotation=np.zeros(len(rings["radius"]))))
+    offset = len(disc["radius"]) - len(rings["radius"])  # the ring added at R = 0 (speed 0, not a variable)
+    count = len(disc["radius"])
+
+    def draw(speeds, **changes):
+        return model_field(shape, sky_jacobian, dict(disc, v_rotation=np.asarray(speeds, float), **changes), r_outer)
+
+    fixed = draw(np.zeros(count))
+    zero = {"v_systemic": np.zeros(count), "v_radial": np.zeros(count)}
+    unit = np.nan_to_num(draw(np.ones(count), **zero))
+    indexed = np.nan_to_num(draw(np.arange(count, dtype=float), **zero))
+    on = np.abs(unit) > 1e-12
+    radius = np.interp(indexed[on] / unit[on], np.arange(count), disc["radius"])  # disc radius of each pixel
+    cardinal = CubicSpline(disc["radius"], np.eye(count), bc_type="natural")(radius)  # (pixels, rings)
+    basis = np.zeros((count - offset,) + tuple(shape))
+    for k in range(offset, count):
+        basis[k - offset][on] = unit[on] * cardinal[:, k]
+    return fixed, basis
+
+
+def disc_basis(shape, sky_jacobian, rings: dict, r_outer: float, shifts=(), step: float = 0.25) -> DiscBasis:
+    """:class:`DiscBasis` of ``rings`` (their v_rotation is the curve the orientation derivatives are taken at);
+    ``shifts``: orientation names (position_angle, inclination) whose change is modelled to first order, by
+    central differences of +/- ``step`` deg."""
+    fixed, basis = curve_basis(shape, sky_jacobian, rings, r_outer)
+    speeds = np.asarray(rings["v_rotation"], float)
+    derivatives = []
+    for name in shifts:
+        sides = []
+        for sign in (1.0, -1.0):
+            moved = dict(rings, **{name: np.asarray(rings[name], float) + sign * step})
+            f, b = curve_basis(shape, sky_jacobian, moved, r_outer)
+            sides.append(f + np.tensordot(speeds, b, axes=1))
+        # pixels entering or leaving the disc's edge as the angle moves carry no derivative
+        derivatives.append(np.nan_to_num((sides[0] - sides[1]) / (2 * step)))
+    return DiscBasis(fixed, np.concatenate([basis, np.array(derivatives).reshape((-1,) + tuple(shape))]))
+
+
+def affected_rings(beam_effect, noise, floor: float = 0.5) -> np.ndarray:
+    """Rings the correction may move: from the centre out to the last ring before two consecutive rings where
+    |fit of smeared - fit of unsmeared model| of the observed curve stays below its noise error (at least
+    ``floor`` km/s). Smearing weakens outward from the centre, so this is the beam's reach; rings beyond it
+    are held, including outer rings that differ only through the disc's truncated edge (the model ends at the
+    outermost ring while the sky does not)."""
+    moved = np.abs(np.nan_to_num(beam_effect)) >= np.maximum(np.nan_to_num(noise, nan=np.inf), floor)
+    free = np.zeros(len(moved), bool)
+    if not moved.any():
+        return free
+    quiet = ~moved
+    calm = np.flatnonzero(quiet[:-1] & quiet[1:] & (np.arange(len(moved) - 1) > np.flatnonzero(moved)[0]))
+    reach = calm[0] if calm.size else len(moved)
+    free[:reach] = True
+    return free
+
+
+@dataclass(frozen=True)
+class BeamSolution:
+    """The solution x (corrected speeds, then orientation shifts in deg), the chosen lambda, the propagated
+    noise error of each corrected speed, and the remaining misfit chi^2 = || S^-1 (T(x) - y) ||^2."""
+
+    x: np.ndarray
+    smoothing: float
+    noise: np.ndarray
+    chi_square: float
+
+
+def _second_differences(n: int) -> np.ndarray:
+    return np.diff(np.eye(n), n=2, axis=0) if n >= 3 else np.zeros((0, n))
+
+
+def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
+    """(solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
+    d^T R d + d^T P d, lambda the minimum of GCV over ``grid`` (s = tr(x^T x) / tr(R) makes the grid
+    problem-independent)."""
+    n = len(residual0)
+    normal = x.T @ x
+    scale = np.trace(normal) / max(np.trace(roughness), 1e-300)
+    best = None
+    for factor in grid:
+        system = normal + factor * scale * roughness + prior + 1e-12 * np.trace(normal) * np.eye(len(normal))
+        solver = np.linalg.solve(system, x.T)
+        influence = x @ solver
+        left = residual0 - influence @ residual0
+        gcv = n * float(left @ left) / max(n - float(np.trace(influence)), 1e-9) ** 2
+        if best is None or gcv < best[0]:
+            best = (gcv, solver, float(factor), float(left @ left))
+    return best[1:]
+
+
+def solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds: int, prior=None,
+                            grid=np.logspace(-6, 4, 41)) -> BeamSolution:
+    """Solve the regularised problem of the module docstring for ``T(x) = matrix @ x + offset`` about ``start``.
+
+    ``target`` and ``noise``: what the data gave and its errors (speeds, then orientation angles). The change
+    is x - start = ``design`` @ u: a column per free ring speed and per orientation shift (whose column also
+    moves the held rings' speeds as the fit would at the shifted orientation). ``prior``: per unknown u, the
+    inverse square width of a Gaussian prior about 0 (0: none); the smoothness penalty acts on the speeds'
+    change. Returns the solution, its lambda, the noise propagated from the data's speeds and the misfit.
+    """
+    start = np.asarray(start, float)
+    weight = 1.0 / np.asarray(noise, float)
+    residual0 = (matrix @ start + offset - target) * weight
+    if design.shape[1] == 0:
+        return BeamSolution(start.copy(), np.inf, np.asarray(noise, float)[:n_speeds], float(residual0 @ residual0))
+    x = (matrix @ design) * weight[:, None]
+    penalty = _second_differences(n_speeds + 1)[:, 1:] @ design[:n_speeds]  # with delta = 0 at R = 0
+    prior = np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float)
+    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior), grid)
+    solution = start - design @ (solver @ residual0)
+    # d x / d v_obs = E - M K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
+    unit = np.eye(len(start))[:, :n_speeds]
+    gain = unit - design @ (solver @ ((matrix[:, :n_speeds] - unit) * weight[:, None]))
+    propagated = np.sqrt(np.sum((gain[:n_speeds] * np.asarray(noise, float)[None, :n_speeds]) ** 2, axis=1))
+    return BeamSolution(solution, factor, propagated, chi_square)
+
+
+def correction_design(free, coupling, with_shifts: bool = True) -> np.ndarray:
+    """Columns of x - start (:func:`solve_smooth_correction`): one per free ring speed, then (``with_shifts``)
+    one per orientation angle: 1 deg of it, with the held rings' speeds moved by -coupling (the ring fit's
+    d v / d angle at fixed data, :attr:`.response.FitResponse.coupling`)."""
+    n_speeds, n_shifts = coupling.shape
+    rings = np.flatnonzero(free)
+    columns = [np.eye(n_speeds + n_shifts)[:, rings]]
+    if with_shifts:
+        shift = np.zeros((n_speeds + n_shifts, n_shifts))
+        shift[n_speeds:] = np.eye(n_shifts)
+        shift[:n_speeds][~np.asarray(free, bool)] = -coupling[~np.asarray(free, bool)]
+        columns.append(shift)
+    return np.concatenate(columns, axis=1)
+
+
+@dataclass(frozen=True)
+class SmearedBasis:
+    """The smeared fixed part (NaN where the model is undefined) and the smeared basis fields of one intensity."""
+
+    fixed: np.ndarray
+    basis: np.ndarray
+
+    def field(self, x) -> np.ndarray:
+        x = np.asarray(x, float)
+        return self.fixed + np.tensordot(x, self.basis[: len(x)], axes=1)
+
+
+def smear_basis(kernel, basis_fields: DiscBasis, intensity, v_systemic: float) -> SmearedBasis:
+    """G * (I f) / G * I of the fixed part (about v_sys) and of every basis field, with I the ``intensity`` on
+    the disc's pixels (one FFT convolution per field, the normalisation shared)."""
+    inside = np.isfinite(basis_fields.fixed)
+    weight = np.where(inside, np.clip(np.nan_to_num(intensity), 0.0, None), 0.0)
+    norm = kernel(weight)
+    ok = inside & (norm > 1e-6 * max(float(norm.max()), 1e-30))
+    scale = np.where(ok, 1.0 / np.where(ok, norm, 1.0), 0.0)
+    fixed = np.full(basis_fields.fixed.shape, np.nan)
+    fixed[ok] = v_systemic + (kernel(weight * np.nan_to_num(basis_fields.fixed - v_systemic)) * scale)[ok]
+    basis = kernel(weight[None] * basis_fields.basis) * scale[None]
+    return SmearedBasis(fixed, basis)
+
+
+def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling,
+                  prior_width=()) -> tuple:
+    """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
+
+    ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
+    ``measure(map)`` the same quantities fitted the same way to another map; ``coupling``: (rings, angles)
+    d v / d angle of the ring fit. T(x) = A x + b is built from the smeared basis fields; the beam effect is T
+    at the observed curve minus the fit of its unsmeared model. The orientation shifts have a Gaussian prior
+    of width ``prior_width`` (their errors); a shift beyond it is clipped to it and the speeds solved again
+    with it held."""
+    target = np.asarray(target, float)
+    n_speeds, size = coupling.shape[0], smeared.basis.shape[0]
+    start = np.concatenate([target[:n_speeds], np.zeros(size - n_speeds)])
+    offset = np.asarray(measure(smeared.fixed), float)
+    matrix = np.empty((len(target), size))
+    for k in range(size):
+        matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
+    effect = matrix @ start + offset - np.asarray(measure(basis_fields.field(start)), float)
+    free = affected_rings(effect[:n_speeds], noise[:n_speeds])
+    widths = np.asarray(prior_width, float)
+    design = correction_design(free, coupling)
+    prior = np.concatenate([np.zeros(int(free.sum())), 1.0 / widths**2])
+    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, prior)
+    shifts = solution.x[n_speeds:]
+    if np.any(np.abs(shifts) > widths):
+        start = start + design[:, free.sum():] @ np.clip(shifts, -widths, widths)
+        solution = solve_smooth_correction(matrix, offset, start, target, noise,
+                                           correction_design(free, coupling, with_shifts=False), n_speeds)
+    return solution, effect[:n_speeds], free
