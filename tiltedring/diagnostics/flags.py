@@ -18,7 +18,8 @@ RING_FLAGS = {
     "inside_beam": "ring centre within one beam of the kinematic centre: beam smearing biases v_rotation low",
     "ill_conditioned": "the ring's fit is ill-conditioned (inclination outside 0-90 deg, or a v_rotation error larger "
                        "than the speed and 100 km/s): its values are not measurements and are not plotted",
-    "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
+    "asymmetric": "approaching and receding halves' rotation speeds differ by more than 3 times their combined "
+                  "error and by more than 10 km/s (a lopsided disc, or streaming on one side)",
     "warp": "beyond the warp onset: position angle and inclination follow the warp profile",
 }
 
