@@ -1,53 +1,245 @@
-"""The disc's centre and systemic velocity from one fit to every pixel, the rotation curve held."""
+"""The disc's centre and systemic velocity from one fit to every pixel, the rotation curve held.
+
+Model of a pixel at (x, y) (Begeman 1989; Warner, Wright & Baldwin 1973), with the position angle
+phi, the inclination i and the rotation curve V(R) held::
+
+    v(x, y) = v_sys + sin i V(R) cos theta,        f = V(R) cos theta = V(R) x_d / R
+
+with the disc-plane coordinates of :mod:`..fitting.geometry`: (e, n) = J (x - x0, y - y0),
+x_d = e sin phi + n cos phi, y_d = (e cos phi - n sin phi) / cos i. V(R) is linear between the
+rings (and from V = 0 at R = 0), so dV/dR is piecewise constant, and the derivatives are exact::
+
+    df/dx_d = V' cos^2 theta + (V / R) sin^2 theta
+    df/dy_d = (V' - V / R) cos theta sin theta
+    dx_d/dx0 = -(J00 sin phi + J10 cos phi),  dy_d/dx0 = -(J00 cos phi - J10 sin phi) / cos i
+    (x0 -> y0: J01, J11 in place of J00, J10);  dv/dv_sys = 1
+
+The fit is Gauss-Newton with a Levenberg damping on (x0, y0, v_sys), the weights held within a
+step and renewed between steps (iteratively reweighted least squares):
+
+- |cos theta| (Begeman 1989: the minor axis carries no rotation information);
+- a smooth outer taper 1 / (1 + exp((R - r_outer) / s)), s a quarter of the outermost ring's
+  width, in place of a hard cut (a pixel slides in and out smoothly as the centre moves);
+- a Huber weight min(1, k / |r / sigma|), k = 3 (Huber 1964), so that a few wild pixels
+  (foreground, a spiral arm) do not pull the centre;
+- an error floor: when the reduced chi-square with the given errors exceeds 2 (the error map is
+  too small for the model: non-circular motions, a warp), an intrinsic scatter
+  s^2 = (1.4826 MAD(r))^2 - median(sigma^2) is added to every error in quadrature, and the
+  fit says so.
+
+Errors come from the final Jacobian: C = (J^T W J)^-1 s^2 max(p / k, 1), s^2 the weighted
+residual variance, p pixels per beam and k the thinning stride (every k-th pixel of a large map
+is used): the beam's correlation is counted once, and only where the thinned pixels still share
+beams. The result is then checked against the rings: when it departs from the median of the
+free rings' values by more than three times their ring-to-ring scatter (and its own error) the
+rings' weighted medians are kept instead, with a caution.
+"""
 
 from __future__ import annotations
+
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from ..fitting.geometry import disc_coordinates
 from ..fitting.parameters import CENTRE_AND_SYSTEMIC
 
-__all__ = ["refine_centre"]
+__all__ = ["refine_centre", "CentreFit", "centre_model", "check_against_rings"]
+
+MAX_PIXELS = 40_000  # three parameters: 40,000 pixels are plenty (regular thinning, so repeatable)
+HUBER_K = 3.0
+FLOOR_CHI2 = 2.0
+MAD_TO_SIGMA = 1.4826
+MAX_STEPS = 60
+DISAGREEMENT = 3.0  # ring scatters
+MIN_DISAGREEMENT = {"x_center": 0.25, "y_center": 0.25, "v_systemic": 1.0}  # pixels, km/s: below, never a fallback
+NAMES = tuple(p.name for p in CENTRE_AND_SYSTEMIC)
 
 
-def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=()):
-    """Centre and systemic velocity from one fit to all pixels at once, the rotation curve held.
+@dataclass
+class CentreFit:
+    """What :func:`refine_centre` found: values (every starting value, the fitted ones replaced), errors of the
+    fitted ones, whether it converged, the steps taken, the intrinsic scatter added (km/s, 0 if none), the
+    reduced chi-square with the given errors and the cautions to print."""
 
-    ``rings``: per-ring ``radius`` and ``v_rotation`` and one ``position_angle`` and ``inclination``
-    for the whole disc. Minimises sum |cos theta| (v - v_sys - sin i v_rot(R) cos theta)^2 / sigma^2
-    over (x_center, y_center, v_systemic), v_rot(R) interpolated between the rings (held at the end
-    values beyond them, nothing beyond ``r_outer``), so every ring constrains the centre coherently
-    instead of each ring alone. Large maps are thinned to about 40,000 pixels (every k-th). Returns
-    (values, errors) dicts; errors scaled by sqrt(reduced chi-square x pixels per beam x k).
-    """
-    from scipy.optimize import least_squares
+    values: dict
+    errors: dict
+    converged: bool = False
+    steps: int = 0
+    intrinsic_scatter: float = 0.0
+    chi2_reduced: float = float("nan")
+    cautions: list = field(default_factory=list)
 
-    x, y, v, sigma = pixels
-    stride = max(1, len(x) // 40_000)  # three parameters: 40,000 pixels are plenty (regular, so repeatable)
-    x, y, v, sigma = x[::stride], y[::stride], v[::stride], sigma[::stride]
-    names = [p.name for p in CENTRE_AND_SYSTEMIC if p.name not in fixed]
-    if not names:
-        return dict(start), {}
+
+def _curve(rings):
+    """Ring radii and speeds sorted, with V = 0 at R = 0 in front (so V / R stays finite at the centre)."""
     order = np.argsort(rings["radius"])
-    radii, v_rot = np.asarray(rings["radius"], float)[order], np.asarray(rings["v_rotation"], float)[order]
-    pa, inc = float(rings["position_angle"]), float(rings["inclination"])
+    radii = np.asarray(rings["radius"], float)[order]
+    speeds = np.asarray(rings["v_rotation"], float)[order]
+    ok = np.isfinite(radii) & np.isfinite(speeds) & (radii > 0)
+    return np.concatenate([[0.0], radii[ok]]), np.concatenate([[0.0], speeds[ok]])
 
-    def residual(q):
-        cen = dict(start)
-        cen.update(zip(names, q))
-        radius, cos_t, _ = disc_coordinates(x, y, cen["x_center"], cen["y_center"], vmap.sky_jacobian, pa, inc)
-        model = cen["v_systemic"] + np.sin(np.radians(inc)) * np.interp(radius, radii, v_rot) * cos_t
-        return np.where(radius <= r_outer, np.sqrt(np.abs(cos_t)) * (v - model) / sigma, 0.0)
 
-    q0 = np.array([start[n] for n in names])
-    sol = least_squares(residual, q0, x_scale=np.array([0.5 if n != "v_systemic" else 2.0 for n in names]),
-                        diff_step=1e-4, max_nfev=60)
-    values = dict(start)
-    values.update(zip(names, sol.x))
-    dof = max(np.count_nonzero(sol.fun) - len(names), 1)
+def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, radii, speeds):
+    """(model velocity, d model / d (x0, y0, v_sys) as an (n, 3) array, R, cos theta) (module docstring)."""
+    radius, cos_t, sin_t = disc_coordinates(x, y, centre["x_center"], centre["y_center"], sky_jacobian,
+                                            position_angle, inclination)
+    sp, cp = np.sin(np.radians(position_angle)), np.cos(np.radians(position_angle))
+    ci, si = np.cos(np.radians(inclination)), np.sin(np.radians(inclination))
+    v = np.interp(radius, radii, speeds)
+    k = np.clip(np.searchsorted(radii, radius, side="right") - 1, 0, len(radii) - 2)
+    slope = np.where(radius < radii[-1], (speeds[k + 1] - speeds[k]) / (radii[k + 1] - radii[k]), 0.0)
+    over_r = np.where(radius > 0, v / np.maximum(radius, 1e-12), slope)
+    df_dx = slope * cos_t**2 + over_r * sin_t**2
+    df_dy = (slope - over_r) * cos_t * sin_t
+    jac = np.asarray(sky_jacobian, float)
+    jacobian = np.empty((len(radius), 3))
+    for col, (je, jn) in enumerate(((jac[0, 0], jac[1, 0]), (jac[0, 1], jac[1, 1]))):
+        dxd = -(je * sp + jn * cp)
+        dyd = -(je * cp - jn * sp) / ci
+        jacobian[:, col] = si * (df_dx * dxd + df_dy * dyd)
+    jacobian[:, 2] = 1.0
+    return centre["v_systemic"] + si * v * cos_t, jacobian, radius, cos_t
+
+
+def _weights(radius, cos_t, residual, sigma, r_outer, softness):
+    """Geometric weight (|cos theta| and the outer taper) and the Huber weight of each pixel."""
+    taper = 0.5 * (1.0 - np.tanh(0.5 * (radius - r_outer) / softness))  # = 1 / (1 + exp((R - r_outer) / s))
+    z = np.abs(residual) / sigma
+    return np.abs(cos_t) * taper, np.minimum(1.0, HUBER_K / np.maximum(z, 1e-12))
+
+
+def _solve(pixels, centre, free, geometry, sigma, limits):
+    """Damped Gauss-Newton on the ``free`` columns from ``centre``; returns (centre, converged, steps,
+    last (model, jacobian, geometric weight, huber weight))."""
+    x, y, v = pixels
+    centre = dict(centre)
+    damping, converged = 1e-3, False
+    for step in range(1, MAX_STEPS + 1):
+        model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry)
+        residual = v - model
+        geo, hub = _weights(radius, cos_t, residual, sigma, *limits)
+        w = geo * hub / sigma**2
+        a = jacobian[:, free]
+        normal = a.T @ (a * w[:, None])
+        gradient = a.T @ (w * residual)
+        cost = float(np.sum(w * residual**2))
+        while True:
+            try:
+                delta = np.linalg.solve(normal + damping * np.diag(np.diag(normal) + 1e-12), gradient)
+            except np.linalg.LinAlgError:
+                return centre, False, step, (model, jacobian, geo, hub)
+            trial = dict(centre)
+            for name, d in zip(np.array(NAMES)[free], delta):
+                trial[name] += float(d)
+            new_residual = v - centre_model(x, y, trial, *geometry)[0]
+            if float(np.sum(w * new_residual**2)) <= cost or damping > 1e6:
+                break
+            damping *= 10.0
+        damping = max(damping / 10.0, 1e-6)
+        centre = trial
+        scales = np.array([0.01, 0.01, 0.01])[free]  # pixels, pixels, km/s
+        if np.all(np.abs(delta) < scales):
+            converged = True
+            break
+    model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry)
+    geo, hub = _weights(radius, cos_t, v - model, sigma, *limits)
+    return centre, converged, step, (model, jacobian, geo, hub)
+
+
+def _intrinsic_scatter(residual, sigma, weight) -> float:
+    """sqrt((1.4826 MAD)^2 - median sigma^2) of the pixels that count (weight > 0.5), or 0."""
+    use = weight > 0.5
+    if use.sum() < 10:
+        return 0.0
+    r = residual[use]
+    spread = MAD_TO_SIGMA * np.median(np.abs(r - np.median(r)))
+    return float(np.sqrt(max(spread**2 - np.median(sigma[use] ** 2), 0.0)))
+
+
+def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=(), ring_width=None) -> CentreFit:
+    """Centre and systemic velocity from one fit to all pixels at once, the rotation curve held (module docstring).
+
+    ``rings``: per-ring ``radius`` and ``v_rotation`` and one ``position_angle`` and ``inclination`` for the
+    whole disc; ``r_outer``: the outer edge of the rings (arcsec); ``start``: every starting value by name;
+    ``fixed``: names held; ``ring_width``: sets the taper's softness (default a tenth of ``r_outer``).
+    """
+    x, y, v, sigma = (np.asarray(a, float) for a in pixels)
+    stride = max(1, len(x) // MAX_PIXELS)
+    x, y, v, sigma = x[::stride], y[::stride], v[::stride], sigma[::stride]
+    free = np.array([n not in fixed for n in NAMES])
+    if not free.any():
+        return CentreFit(dict(start), {}, converged=True)
+    radii, speeds = _curve(rings)
+    geometry = (vmap.sky_jacobian, float(rings["position_angle"]), float(rings["inclination"]), radii, speeds)
+    softness = 0.25 * float(ring_width) if ring_width else 0.1 * r_outer
+    limits = (float(r_outer), max(softness, 1e-3))
+    centre, converged, steps, last = _solve((x, y, v), start, free, geometry, sigma, limits)
+    model, jacobian, geo, hub = last
+    residual = v - model
+    counted = geo > 0.5
+    chi2 = float(np.sum(geo * (residual / sigma) ** 2) / max(np.sum(geo) - free.sum(), 1.0))
+    fit = CentreFit(dict(start), {}, chi2_reduced=chi2)
+    if chi2 > FLOOR_CHI2 and vmap.error is not None and counted.sum() > 10:
+        fit.intrinsic_scatter = _intrinsic_scatter(residual, sigma, geo)
+        if fit.intrinsic_scatter > 0:
+            sigma = np.sqrt(sigma**2 + fit.intrinsic_scatter**2)
+            centre, converged, more, last = _solve((x, y, v), centre, free, geometry, sigma, limits)
+            steps += more
+            model, jacobian, geo, hub = last
+            residual = v - model
+            fit.cautions.append(
+                f"the error map is too small for the model (reduced chi-square {chi2:.1f} in the centre fit): an "
+                f"intrinsic scatter of {fit.intrinsic_scatter:.1f} km/s was added in quadrature to every error "
+                "for the centre and systemic velocity")
+    fit.values.update({n: float(centre[n]) for n in np.array(NAMES)[free]})
+    fit.errors = _errors(jacobian[:, free], geo * hub / sigma**2, residual, geo, vmap.pixels_per_beam, stride,
+                         np.array(NAMES)[free])
+    fit.converged, fit.steps = converged, steps
+    return fit
+
+
+def _errors(a, w, residual, geo, pixels_per_beam, stride, names) -> dict:
+    """Errors from the final Jacobian (module docstring): the beam's correlation counted once."""
+    dof = max(float(np.sum(geo)) - len(names), 1.0)
+    s2 = float(np.sum(w * residual**2)) / dof
     try:
-        cov = np.linalg.inv(sol.jac.T @ sol.jac) * (2 * sol.cost / dof) * vmap.pixels_per_beam * stride
-        errors = dict(zip(names, np.sqrt(np.clip(np.diag(cov), 0, None))))
+        cov = np.linalg.inv(a.T @ (a * w[:, None])) * s2 * max(pixels_per_beam / stride, 1.0)
     except np.linalg.LinAlgError:
-        errors = {n: np.nan for n in names}
-    return values, errors
+        return {n: float("nan") for n in names}
+    return {n: float(e) for n, e in zip(names, np.sqrt(np.clip(np.diag(cov), 0, None)))}
+
+
+def check_against_rings(fit: CentreFit, ring_values: dict, ring_medians: dict) -> tuple:
+    """(values to adopt, errors, summary) after comparing ``fit`` with the free rings (module docstring).
+
+    ``ring_values``: per name, the free rings' values; ``ring_medians``: per name, their weighted medians
+    (what is kept on a fallback)."""
+    summary = {"method": "one fit to all pixels (analytic derivatives, |cos theta| and Huber weights, smooth "
+                         "outer taper), checked against the free rings",
+               "converged": bool(fit.converged), "steps": int(fit.steps),
+               "chi2_reduced": fit.chi2_reduced, "intrinsic_scatter": fit.intrinsic_scatter,
+               "global": {n: fit.values[n] for n in fit.errors}, "global_errors": dict(fit.errors)}
+    disagree = []
+    for name in fit.errors:
+        values = np.asarray(ring_values.get(name, []), float)
+        values = values[np.isfinite(values)]
+        if values.size < 3:
+            continue
+        median = float(np.median(values))
+        scatter = MAD_TO_SIGMA * float(np.median(np.abs(values - median)))
+        allowed = max(DISAGREEMENT * np.hypot(scatter, np.nan_to_num(fit.errors[name])), MIN_DISAGREEMENT[name])
+        summary.setdefault("rings", {})[name] = {"median": median, "scatter": scatter}
+        if abs(fit.values[name] - median) > allowed:
+            disagree.append(name)
+    if fit.converged and not disagree:
+        summary["fallback"] = False
+        return fit.values, fit.errors, summary
+    values = dict(fit.values)
+    values.update({n: ring_medians[n] for n in fit.errors})
+    summary["fallback"] = True
+    summary["disagrees_with_rings"] = disagree
+    why = (f"disagreed with the free rings in {', '.join(disagree)} (by more than {DISAGREEMENT:g} times their "
+           "scatter)") if disagree else f"did not converge in {fit.steps} steps"
+    summary["note"] = f"the all-pixel centre fit {why}: the rings' weighted medians are used"
+    return values, {n: float("nan") for n in fit.errors}, summary
