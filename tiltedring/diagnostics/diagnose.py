@@ -95,7 +95,8 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
             "disc_preferred_model": flows["disc"].get("preferred"),
             **{key: text for m in models for key, text in m.notes.items()},
             **_guards(flows, radii),
-            "thresholds": {"min_delta_bic": test.flows.min_delta_bic, "min_half_share": test.flows.min_half_share, "min_flow_amplitude": test.flows.min_amplitude,
+            "thresholds": {"min_delta_bic": test.flows.min_delta_bic, "min_half_share": test.flows.min_half_share,
+                           "min_flow_amplitude": test.flows.min_amplitude,
                            "min_harmonic_amplitude": test.min_amplitude, "max_p_value": test.max_p_value},
         }
     }

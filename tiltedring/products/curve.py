@@ -113,9 +113,11 @@ def _rest_frame(result, v_sys: float, given) -> tuple:
     if convention is None:
         _, radio = rest_frame_stretch(v_sys, "radio")
         _, optical = rest_frame_stretch(v_sys, "optical")
+        change = 100 * abs(optical / radio - 1)
         entry["assumed"] = (f"the map states no velocity convention: optical (v = cz) assumed for the rest-frame "
-                            f"correction; if it is radio the speeds are {100 * (optical / radio - 1):+.1f} per cent "
-                            "off: state it with --velocity-convention")
+                            f"correction; if it is radio, the rest-frame speeds are {change:.1f} per cent "
+                            f"{'higher' if optical > radio else 'lower'} than given: state the convention with "
+                            "--velocity-convention")
         convention = "optical"
     _, stretch = rest_frame_stretch(v_sys, convention)
     return convention, entry, (stretch if abs(stretch - 1.0) > _Z_THRESHOLD else 1.0)
