@@ -6,8 +6,14 @@ phi, the inclination i and the rotation curve V(R) held::
     v(x, y) = v_sys + sin i V(R) cos theta,        f = V(R) cos theta = V(R) x_d / R
 
 with the disc-plane coordinates of :mod:`..fitting.geometry`: (e, n) = J (x - x0, y - y0),
-x_d = e sin phi + n cos phi, y_d = (e cos phi - n sin phi) / cos i. V(R) is linear between the
-rings (and from V = 0 at R = 0), so dV/dR is piecewise constant, and the derivatives are exact::
+x_d = e sin phi + n cos phi, y_d = (e cos phi - n sin phi) / cos i. V(R) is linear between nodes
+at the rings' radii (and from V = 0 at R = 0; held beyond the last), so dV/dR is piecewise
+constant, and the derivatives are exact. The node speeds V_j are first fitted at the starting
+centre (the rings' weighted medians), where the model is linear in them (d v / d V_j =
+sin i B_j(R) cos theta, B_j the hat function of node j), and then held: the free rings' own
+speeds, each fitted at its own centre, are too noisy to hold, while fitting the curve together
+with the centre would let a slowly rising (near solid-body) curve trade a centre shift along the
+major axis for a systemic velocity::
 
     df/dx_d = V' cos^2 theta + (V / R) sin^2 theta
     df/dy_d = (V' - V / R) cos theta sin theta
@@ -20,8 +26,9 @@ step and renewed between steps (iteratively reweighted least squares):
 - |cos theta| (Begeman 1989: the minor axis carries no rotation information);
 - a smooth outer taper 1 / (1 + exp((R - r_outer) / s)), s a quarter of the outermost ring's
   width, in place of a hard cut (a pixel slides in and out smoothly as the centre moves);
-- a Huber weight min(1, k / |r / sigma|), k = 3 (Huber 1964), so that a few wild pixels
-  (foreground, a spiral arm) do not pull the centre;
+- a Huber weight min(1, k s / |r / sigma|), k = 3 and s the robust scale 1.4826 MAD(r / sigma)
+  (Huber 1964), so that a few wild pixels (foreground, a spiral arm) do not pull the centre,
+  whatever the scale of the errors (none given: sigma = 1);
 - an error floor: when the reduced chi-square with the given errors exceeds 2 (the error map is
   too small for the model: non-circular motions, a warp), an intrinsic scatter
   s^2 = (1.4826 MAD(r))^2 - median(sigma^2) is added to every error in quadrature, and the
@@ -68,6 +75,7 @@ class CentreFit:
     steps: int = 0
     intrinsic_scatter: float = 0.0
     chi2_reduced: float = float("nan")
+    v_rotation: np.ndarray | None = None
     cautions: list = field(default_factory=list)
 
 
@@ -81,7 +89,8 @@ def _curve(rings):
 
 
 def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, radii, speeds):
-    """(model velocity, d model / d (x0, y0, v_sys) as an (n, 3) array, R, cos theta) (module docstring)."""
+    """(model velocity, d model / d (x0, y0, v_sys, V_1 .. V_m) as an (n, 3 + m) array, R, cos theta) (module
+    docstring); ``radii``/``speeds`` start with the node (0, 0), which is held."""
     radius, cos_t, sin_t = disc_coordinates(x, y, centre["x_center"], centre["y_center"], sky_jacobian,
                                             position_angle, inclination)
     sp, cp = np.sin(np.radians(position_angle)), np.cos(np.radians(position_angle))
@@ -93,58 +102,71 @@ def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, 
     df_dx = slope * cos_t**2 + over_r * sin_t**2
     df_dy = (slope - over_r) * cos_t * sin_t
     jac = np.asarray(sky_jacobian, float)
-    jacobian = np.empty((len(radius), 3))
+    jacobian = np.empty((len(radius), 2 + len(radii)))
     for col, (je, jn) in enumerate(((jac[0, 0], jac[1, 0]), (jac[0, 1], jac[1, 1]))):
         dxd = -(je * sp + jn * cp)
         dyd = -(je * cp - jn * sp) / ci
         jacobian[:, col] = si * (df_dx * dxd + df_dy * dyd)
     jacobian[:, 2] = 1.0
+    for j in range(1, len(radii)):  # hat functions of linear interpolation: d v / d V_j
+        node = np.zeros(len(radii))
+        node[j] = 1.0
+        jacobian[:, 2 + j] = si * np.interp(radius, radii, node) * cos_t
     return centre["v_systemic"] + si * v * cos_t, jacobian, radius, cos_t
 
 
 def _weights(radius, cos_t, residual, sigma, r_outer, softness):
     """Geometric weight (|cos theta| and the outer taper) and the Huber weight of each pixel."""
     taper = 0.5 * (1.0 - np.tanh(0.5 * (radius - r_outer) / softness))  # = 1 / (1 + exp((R - r_outer) / s))
-    z = np.abs(residual) / sigma
-    return np.abs(cos_t) * taper, np.minimum(1.0, HUBER_K / np.maximum(z, 1e-12))
+    geo = np.abs(cos_t) * taper
+    z = residual / sigma
+    counted = z[geo > 0.5]
+    scale = MAD_TO_SIGMA * np.median(np.abs(counted - np.median(counted))) if counted.size >= 10 else 1.0
+    return geo, np.minimum(1.0, HUBER_K * max(scale, 1e-12) / np.maximum(np.abs(z), 1e-12))
 
 
-def _solve(pixels, centre, free, geometry, sigma, limits):
-    """Damped Gauss-Newton on the ``free`` columns from ``centre``; returns (centre, converged, steps,
-    last (model, jacobian, geometric weight, huber weight))."""
+def _solve(pixels, centre, speeds, free, geometry, sigma, limits, fit_speeds=False):
+    """Damped Gauss-Newton on the ``free`` centre columns (and every node speed when ``fit_speeds``) from
+    ``centre`` and ``speeds``; returns (centre, speeds, converged, steps, last (model, jacobian, geometric
+    weight, huber weight))."""
     x, y, v = pixels
-    centre = dict(centre)
+    centre, speeds = dict(centre), np.array(speeds, float)
+    names = np.array(NAMES)[free]
+    columns = np.concatenate([free, np.full(len(speeds) - 1, bool(fit_speeds))])
+    tolerance = np.full(int(columns.sum()), 0.01)  # px, km/s
     damping, converged = 1e-3, False
     for step in range(1, MAX_STEPS + 1):
-        model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry)
+        model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds)
         residual = v - model
         geo, hub = _weights(radius, cos_t, residual, sigma, *limits)
         w = geo * hub / sigma**2
-        a = jacobian[:, free]
+        a = jacobian[:, columns]
         normal = a.T @ (a * w[:, None])
         gradient = a.T @ (w * residual)
         cost = float(np.sum(w * residual**2))
         while True:
             try:
-                delta = np.linalg.solve(normal + damping * np.diag(np.diag(normal) + 1e-12), gradient)
+                delta = np.linalg.solve(normal + damping * np.diag(np.diag(normal) + 1e-9), gradient)
             except np.linalg.LinAlgError:
-                return centre, False, step, (model, jacobian, geo, hub)
+                return centre, speeds, False, step, (model, jacobian, geo, hub)
             trial = dict(centre)
-            for name, d in zip(np.array(NAMES)[free], delta):
+            for name, d in zip(names, delta):
                 trial[name] += float(d)
-            new_residual = v - centre_model(x, y, trial, *geometry)[0]
+            trial_speeds = speeds.copy()
+            if fit_speeds:
+                trial_speeds[1:] += delta[len(names):]
+            new_residual = v - centre_model(x, y, trial, *geometry, trial_speeds)[0]
             if float(np.sum(w * new_residual**2)) <= cost or damping > 1e6:
                 break
             damping *= 10.0
         damping = max(damping / 10.0, 1e-6)
-        centre = trial
-        scales = np.array([0.01, 0.01, 0.01])[free]  # pixels, pixels, km/s
-        if np.all(np.abs(delta) < scales):
+        centre, speeds = trial, trial_speeds
+        if np.all(np.abs(delta) < tolerance):
             converged = True
             break
-    model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry)
+    model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds)
     geo, hub = _weights(radius, cos_t, v - model, sigma, *limits)
-    return centre, converged, step, (model, jacobian, geo, hub)
+    return centre, speeds, converged, step, (model, jacobian, geo, hub)
 
 
 def _intrinsic_scatter(residual, sigma, weight) -> float:
@@ -157,12 +179,17 @@ def _intrinsic_scatter(residual, sigma, weight) -> float:
     return float(np.sqrt(max(spread**2 - np.median(sigma[use] ** 2), 0.0)))
 
 
-def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=(), ring_width=None) -> CentreFit:
+def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=(), ring_width=None,
+                  curve_centre: dict | None = None) -> CentreFit:
     """Centre and systemic velocity from one fit to all pixels at once, the rotation curve held (module docstring).
 
-    ``rings``: per-ring ``radius`` and ``v_rotation`` and one ``position_angle`` and ``inclination`` for the
+    ``rings``: per-ring ``radius`` and ``v_rotation`` (the curve's nodes and starting speeds; the speeds held,
+    fitted at the starting centre, are returned as ``v_rotation``) and one ``position_angle`` and
+    ``inclination`` (held) for the
     whole disc; ``r_outer``: the outer edge of the rings (arcsec); ``start``: every starting value by name;
-    ``fixed``: names held; ``ring_width``: sets the taper's softness (default a tenth of ``r_outer``).
+    ``fixed``: names held; ``ring_width``: sets the taper's softness (default a tenth of ``r_outer``);
+    ``curve_centre``: where the held curve is fitted (default ``start``; the staged fit starts from the rings'
+    weighted medians), so that the objective does not depend on where the search starts.
     """
     x, y, v, sigma = (np.asarray(a, float) for a in pixels)
     stride = max(1, len(x) // MAX_PIXELS)
@@ -171,10 +198,15 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
     if not free.any():
         return CentreFit(dict(start), {}, converged=True)
     radii, speeds = _curve(rings)
-    geometry = (vmap.sky_jacobian, float(rings["position_angle"]), float(rings["inclination"]), radii, speeds)
+    geometry = (vmap.sky_jacobian, float(rings["position_angle"]), float(rings["inclination"]), radii)
     softness = 0.25 * float(ring_width) if ring_width else 0.1 * r_outer
     limits = (float(r_outer), max(softness, 1e-3))
-    centre, converged, steps, last = _solve((x, y, v), start, free, geometry, sigma, limits)
+    curve_only = np.array([False, False, bool(free[2])])
+    reference = {**start, **(curve_centre or {})}
+    _, speeds, _, first, _ = _solve((x, y, v), reference, speeds, curve_only, geometry, sigma, limits,
+                                    fit_speeds=True)
+    centre, speeds, converged, steps, last = _solve((x, y, v), start, speeds, free, geometry, sigma, limits)
+    steps += first
     model, jacobian, geo, hub = last
     residual = v - model
     counted = geo > 0.5
@@ -184,7 +216,7 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
         fit.intrinsic_scatter = _intrinsic_scatter(residual, sigma, geo)
         if fit.intrinsic_scatter > 0:
             sigma = np.sqrt(sigma**2 + fit.intrinsic_scatter**2)
-            centre, converged, more, last = _solve((x, y, v), centre, free, geometry, sigma, limits)
+            centre, speeds, converged, more, last = _solve((x, y, v), centre, speeds, free, geometry, sigma, limits)
             steps += more
             model, jacobian, geo, hub = last
             residual = v - model
@@ -192,22 +224,24 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
                 f"the error map is too small for the model (reduced chi-square {chi2:.1f} in the centre fit): an "
                 f"intrinsic scatter of {fit.intrinsic_scatter:.1f} km/s was added in quadrature to every error "
                 "for the centre and systemic velocity")
-    fit.values.update({n: float(centre[n]) for n in np.array(NAMES)[free]})
-    fit.errors = _errors(jacobian[:, free], geo * hub / sigma**2, residual, geo, vmap.pixels_per_beam, stride,
+    fit.values.update({str(n): float(centre[n]) for n in np.array(NAMES)[free]})
+    columns = np.concatenate([free, np.zeros(len(speeds) - 1, bool)])
+    fit.errors = _errors(jacobian[:, columns], geo * hub / sigma**2, residual, geo, vmap.pixels_per_beam, stride,
                          np.array(NAMES)[free])
+    fit.v_rotation = speeds[1:]
     fit.converged, fit.steps = converged, steps
     return fit
 
 
 def _errors(a, w, residual, geo, pixels_per_beam, stride, names) -> dict:
     """Errors from the final Jacobian (module docstring): the beam's correlation counted once."""
-    dof = max(float(np.sum(geo)) - len(names), 1.0)
+    dof = max(float(np.sum(geo)) - a.shape[1], 1.0)
     s2 = float(np.sum(w * residual**2)) / dof
     try:
         cov = np.linalg.inv(a.T @ (a * w[:, None])) * s2 * max(pixels_per_beam / stride, 1.0)
     except np.linalg.LinAlgError:
-        return {n: float("nan") for n in names}
-    return {n: float(e) for n, e in zip(names, np.sqrt(np.clip(np.diag(cov), 0, None)))}
+        return {str(n): float("nan") for n in names}
+    return {str(n): float(e) for n, e in zip(names, np.sqrt(np.clip(np.diag(cov), 0, None)))}
 
 
 def check_against_rings(fit: CentreFit, ring_values: dict, ring_medians: dict) -> tuple:
