@@ -83,15 +83,18 @@ def test_analytic_derivatives_match_finite_differences(large_field):
 def test_error_floor_when_the_error_map_is_too_small(large_field):
     """An error map ten times too small (0.5 km/s against 5 km/s of noise): an intrinsic scatter near
     sqrt(5^2 - 0.5^2) ~ 5 km/s (beam-smoothed noise: its MAD-based rms is that of the map, within 30 per cent)
-    is added and named in a caution, and the centre's errors stay honest (within 3 of them of the truth)."""
+    is found and named in a caution, and the centre's errors, from the residuals, stay honest: within 30 per
+    cent of those with the right error map, and the truth within 3 of them."""
     vmap, truth, rings = large_field
     small = vmap.__class__(**{**vmap.__dict__, "error": np.where(np.isfinite(vmap.velocity), 0.5, np.nan)})
     fit = refine_centre(small, valid_pixels(small), rings, float(rings["radius"][-1]), _start(truth, 1, 1, 3))
     assert fit.chi2_reduced > 50
     assert fit.intrinsic_scatter == pytest.approx(5.0, rel=0.3)
     assert any("intrinsic scatter" in c for c in fit.cautions)
-    for name in ("x_center", "y_center"):
+    right = refine_centre(vmap, valid_pixels(vmap), rings, float(rings["radius"][-1]), _start(truth, 1, 1, 3))
+    for name in ("x_center", "y_center", "v_systemic"):
         assert abs(fit.values[name] - truth[name]) < 3 * fit.errors[name]
+        assert fit.errors[name] == pytest.approx(right.errors[name], rel=0.3)
 
 
 def test_fallback_to_the_rings_when_the_global_fit_disagrees():
