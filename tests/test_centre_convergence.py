@@ -40,14 +40,13 @@ def _start(truth, dx, dy, dv):
 
 
 def test_three_starts_converge_to_one_centre_near_the_truth(large_field):
-    """Starts 1.5 px and 5 km/s off the truth, the curve held as fitted at one point standing for the rings'
-    medians (the old finite-difference fit ended 0.39 px apart on a 512 x 512 field, 4.5 times its error):
+    """Starts 1.5 px and 5 km/s off the truth, the true curve held (the old finite-difference fit ended 0.39 px
+    apart on a 512 x 512 field, 4.5 times its error):
     every start converges, the centres agree to a tenth of the reported error, and each lies within 3 reported
     errors of the truth (x, y and v_systemic)."""
     vmap, truth, rings = large_field
-    medians = _start(truth, 0.4, -0.3, 1.0)  # stands for the rings' weighted medians, where the curve is fitted
-    fits = [refine_centre(vmap, valid_pixels(vmap), rings, float(rings["radius"][-1]), _start(truth, *s),
-                          curve_centre=medians) for s in STARTS]
+    fits = [refine_centre(vmap, valid_pixels(vmap), rings, float(rings["radius"][-1]), _start(truth, *s))
+            for s in STARTS]
     assert all(f.converged for f in fits)
     for name in ("x_center", "y_center", "v_systemic"):
         values = np.array([f.values[name] for f in fits])
