@@ -65,7 +65,10 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
     amplitude = np.zeros(n)
     for k in range(n):
         model = flow_model(flows["flow_model"][k])
-        if model.flag is not None:
+        if flows["radial_or_bisymmetric"][k]:
+            ring_flags[k].add("radial_or_bisymmetric")
+            amplitude[k] = model.amplitude({key: flows[key][k] for key in model.table_columns()})[0]
+        elif model.flag is not None:
             ring_flags[k].add(model.flag)
             amplitude[k] = model.amplitude({key: flows[key][k] for key in model.table_columns()})[0]
         if strong[k]:
@@ -114,8 +117,8 @@ def _guards(flows, radii) -> dict:
     if ambiguous.any():
         out["radial_or_bisymmetric_note"] = (
             f"in {int(ambiguous.sum())} ring(s) a radial flow with the major axis turned explains the velocities as "
-            "well as a bisymmetric (bar-like) flow: called radial there, not a bar; refit with v_radial free "
-            "(--fit-radial, fit_radial=True) to tell them apart")
+            "well as a bisymmetric (bar-like) flow (flag radial_or_bisymmetric; not called a bar): refit with "
+            "v_radial free (--fit-radial, fit_radial=True) to tell them apart")
     return out
 
 

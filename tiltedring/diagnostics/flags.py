@@ -4,7 +4,8 @@ A flag never removes a ring: the ring stays in the table and the flag says why i
 care. ``flags`` holds the flag names of a ring joined by ``,`` (empty when none).
 
 The vocabulary is the fixed flags of the ring fit and the geometry below, the flag of each
-registered flow model (:mod:`.flow_models`, in registration order) and ``strong_harmonics``.
+registered flow model (:mod:`.flow_models`, in registration order), ``radial_or_bisymmetric``
+(:mod:`.flows`) and ``strong_harmonics``.
 """
 
 __all__ = ["RING_FLAGS", "HARMONIC_FLAGS", "vocabulary", "join", "split"]
@@ -24,6 +25,9 @@ RING_FLAGS = {
 }
 
 HARMONIC_FLAGS = {
+    "radial_or_bisymmetric": "a radial flow with the major axis turned explains the ring as well as a bisymmetric "
+                             "(bar-like) flow: non-circular, of a kind the map at this geometry cannot tell; refit "
+                             "with v_radial free (--fit-radial) to tell them apart",
     "strong_harmonics": "significant non-circular harmonics (orders 1-3) in the ring's velocities",
 }
 

@@ -28,8 +28,10 @@ Two guards keep the choice honest:
   position angle, v_t sin i sin theta (cos i sin^2 theta + cos^2 theta / cos i) per radian; 4
   parameters) by ``min_delta_bic``, summed over the rings that chose it (a uniform flow is a disc-wide
   pattern, so the evidence is pooled). Otherwise those rings are called ``radial`` and marked
-  ``radial_or_bisymmetric``: the two explain it about equally, and the fit with v_radial free
-  (``fit_radial``, ``--fit-radial``) tells them apart.
+  ``radial_or_bisymmetric`` (the ring flag of that name, not ``radial_flow``, so they do not by
+  themselves start the automatic refit with v_radial free, which on NGC 6946's peak-velocity map
+  adopted a 36 km/s "flow" and turned the position angle by 12 deg): the two explain it about
+  equally, and the fit with v_radial free (``fit_radial``, ``--fit-radial``) tells them apart.
 """
 
 from __future__ import annotations
