@@ -48,7 +48,7 @@ def grid_wcs(ra, dec, shape, pixel_scale, rotation=0.0):
 def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0, beam_pixels=4.0, noise=4.0,
                v_flat=200.0, r_turn=12.0, v_systemic=3000.0, centre_offset=(3.3, -2.7), rotation=0.0,
                unit="km/s", seed=0, n_particles=3_000_000, disc_radius=None, ra=210.5, dec=-33.25,
-               warp=None, bar=None, v_radial=0.0, scale_length=None):
+               warp=None, bar=None, v_radial=0.0, scale_length=None, lopsided=0.0):
     """Return (HDUList of the velocity map, truth dict). Rotation curve v_flat tanh(R / r_turn).
 
     warp: (onset radius arcsec, twist deg, tilt deg) reached linearly at the disc edge.
@@ -56,7 +56,8 @@ def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0
     the bisymmetric flow of Spekkens & Sellwood 2007, tangential v_t - v_2t cos 2(t - angle) and radial
     -v_2r sin 2(t - angle), inside the bar radius (tapered over 5 per cent of it).
     v_radial: a uniform radial velocity (positive outward).
-    scale_length: exponential surface density of that scale length (arcsec) instead of a uniform one."""
+    scale_length: exponential surface density of that scale length (arcsec) instead of a uniform one.
+    lopsided: an m = 1 lopsided rotation, v_t (1 + lopsided cos t): the receding half (t = 0) faster."""
     rng = np.random.default_rng(seed)
     ny, nx = shape
     disc_radius = disc_radius or 0.45 * min(shape) * pixel_scale
@@ -67,7 +68,7 @@ def draw_field(position_angle, inclination, *, shape=(200, 200), pixel_scale=1.0
         cdf = 1.0 - (1.0 + grid / scale_length) * np.exp(-grid / scale_length)
         radius = np.interp(rng.uniform(0, cdf[-1], n_particles), cdf, grid)
     azimuth = rng.uniform(0, 2 * np.pi, n_particles)
-    v_c = v_flat * np.tanh(radius / r_turn)
+    v_c = v_flat * np.tanh(radius / r_turn) * (1.0 + lopsided * np.cos(azimuth))
     v_r = np.full(n_particles, float(v_radial))
     pa_r = np.full(n_particles, float(position_angle))
     inc_r = np.full(n_particles, float(inclination))

@@ -107,7 +107,7 @@ def test_decisions_name_new_sections_and_fallbacks():
                      "a_later_step": {"detected": True, "note": "something to read"}})
     lines = dict(decision_lines(result))
     assert lines["geometry"].startswith("flat disc")
-    assert "2 rings at 4 and 12 arcsec" in lines["rings left out"]
+    assert "2 rings (4 and 12 arcsec)" in lines["rings left out"]
     assert "not applied: the corrected disc explained the rings worse" in lines["beam smearing"]
     assert "disagreed in x_center" in lines["centre and v_systemic"]
     assert lines["a later step"] == "detected: yes; something to read"

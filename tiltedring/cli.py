@@ -453,9 +453,11 @@ def _maps_parser(sub):
 
 def _cube_specs() -> dict:
     from .pipeline.option_fields import flat_specs
-    from .pipeline.options import CubeOptions
+    from .pipeline.options import CubeOptions, InputOptions
 
-    return flat_specs(CubeOptions)
+    specs = flat_specs(CubeOptions)
+    specs["velocity_convention"] = flat_specs(InputOptions)["velocity_convention"]
+    return specs
 
 
 def run_maps(args) -> int:
@@ -467,7 +469,9 @@ def run_maps(args) -> int:
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FitCaution)  # printed below from the record
-        maps = make_velocity_maps(args.cube, **CubeOptions(**job_values(args, _cube_specs())).map_arguments())
+        values = job_values(args, _cube_specs())
+        convention = values.pop("velocity_convention", None)
+        maps = make_velocity_maps(args.cube, **CubeOptions(**values).map_arguments(convention))
     maps.write(args.out, overwrite=args.overwrite)
     if not args.quiet:
         rec = maps.record

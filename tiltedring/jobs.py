@@ -204,7 +204,7 @@ def cube_velocity_maps(job: Job):
     from .io.velocity_fields import make_velocity_maps
 
     cube = read_job_cube(job)
-    return make_velocity_maps(cube, **job.cube.map_arguments()), cube
+    return make_velocity_maps(cube, **job.cube.map_arguments(job.inputs.velocity_convention)), cube
 
 
 def read_job_cube(job: Job):
@@ -213,7 +213,7 @@ def read_job_cube(job: Job):
 
     if isinstance(job.velocity_map, LineCube):
         return job.velocity_map
-    arguments = job.cube.map_arguments()
+    arguments = job.cube.map_arguments(job.inputs.velocity_convention)
     return read_cube(job.velocity_map, brightness_unit=arguments["brightness_unit"],
                      rest_frequency=arguments["rest_frequency"], convention=arguments["convention"])
 

@@ -23,7 +23,11 @@ from .flow_models import flow_model, flow_models
 from .flows import FlowTest, fit_flows
 from .harmonics import HARMONIC_NAMES, NON_CIRCULAR, ring_harmonics
 
-__all__ = ["NonCircularTest", "diagnose", "harmonic_columns", "flow_columns", "asymmetry_summary"]
+__all__ = ["NonCircularTest", "diagnose", "harmonic_columns", "flow_columns", "asymmetry_summary",
+           "asymmetric_sides", "ASYMMETRY_SIGMA", "ASYMMETRY_MIN_SPEED"]
+
+ASYMMETRY_SIGMA = 3.0  # the sides must differ by this many times their combined error
+ASYMMETRY_MIN_SPEED = 10.0  # km/s, and by at least this much (common practice: a few beam-scale streaming speeds)
 
 KM_S = u.km / u.s
 
@@ -55,13 +59,16 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
     members = gather_rings(pixels, sky_jacobian, rings, inner, outer)
     harm = ring_harmonics(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, members)
     flows = fit_flows(pixels, sky_jacobian, rings, inner, outer, pixels_per_beam, test.flows, bar_range, members)
-    strong = _strong_harmonics(harm, rings, test)
+    strong = _strong_harmonics(harm, rings, test) & flows["both_halves"]
     models = flow_models()
     ring_flags = [set() for _ in range(n)]
     amplitude = np.zeros(n)
     for k in range(n):
         model = flow_model(flows["flow_model"][k])
-        if model.flag is not None:
+        if flows["radial_or_bisymmetric"][k]:
+            ring_flags[k].add("radial_or_bisymmetric")
+            amplitude[k] = model.amplitude({key: flows[key][k] for key in model.table_columns()})[0]
+        elif model.flag is not None:
             ring_flags[k].add(model.flag)
             amplitude[k] = model.amplitude({key: flows[key][k] for key in model.table_columns()})[0]
         if strong[k]:
@@ -90,11 +97,29 @@ def diagnose(pixels, sky_jacobian, rings: dict, inner, outer, pixels_per_beam, r
             "disc_model_bic": flows["disc"].get("bic"),
             "disc_preferred_model": flows["disc"].get("preferred"),
             **{key: text for m in models for key, text in m.notes.items()},
-            "thresholds": {"min_delta_bic": test.flows.min_delta_bic, "min_flow_amplitude": test.flows.min_amplitude,
+            **_guards(flows, radii),
+            "thresholds": {"min_delta_bic": test.flows.min_delta_bic, "min_half_share": test.flows.min_half_share,
+                           "min_flow_amplitude": test.flows.min_amplitude,
                            "min_harmonic_amplitude": test.min_amplitude, "max_p_value": test.max_p_value},
         }
     }
     return columns, ring_flags, summary
+
+
+def _guards(flows, radii) -> dict:
+    """The summary entries of the flow test's guards (:mod:`.flows`): rings not tested for want of data on both
+    halves, and rings a radial flow and a bisymmetric flow explain about equally (with the option that tells)."""
+    fitted = np.isfinite(np.asarray(flows["noise_scale"], float))
+    one_sided = fitted & ~flows["both_halves"]
+    ambiguous = flows["radial_or_bisymmetric"] & flows["both_halves"]
+    out = {"one_sided_radii": [float(r) for r in radii[one_sided]],
+           "radial_or_bisymmetric_radii": [float(r) for r in radii[ambiguous]]}
+    if ambiguous.any():
+        out["radial_or_bisymmetric_note"] = (
+            f"in {int(ambiguous.sum())} ring(s) a radial flow with the major axis turned explains the velocities as "
+            "well as a bisymmetric (bar-like) flow (flag radial_or_bisymmetric; not called a bar): refit with "
+            "v_radial free (--fit-radial, fit_radial=True) to tell them apart")
+    return out
 
 
 def harmonic_columns() -> dict:
@@ -150,3 +175,22 @@ def asymmetry_summary(v_approaching, v_receding, usable) -> dict:
     return {"lopsidedness": float(np.median(np.abs(diff) / (va[ok] + vr[ok]))),
             "median_difference": float(np.median(diff)), "max_difference": float(diff[np.argmax(np.abs(diff))]),
             "meaning": "difference = v_receding - v_approaching (km/s); lopsidedness = median |difference| / sum"}
+
+
+def asymmetric_sides(approaching, receding) -> np.ndarray:
+    """Per ring, whether the approaching and receding halves (two :class:`..pipeline.state.StageResult`) give
+    rotation speeds that differ by more than ``ASYMMETRY_SIGMA`` times their combined error
+    sqrt(err_app^2 + err_rec^2) and by more than ``ASYMMETRY_MIN_SPEED`` km/s (the two halves are fitted from
+    disjoint pixels, so their errors add in quadrature). Rings where either half did not converge: False."""
+    from ..fitting.parameters import Parameter
+
+    def speeds(stage):
+        ok = np.array([s.converged for s in stage.solutions], bool)
+        return (np.where(ok, stage.params[:, Parameter.v_rotation], np.nan),
+                np.where(ok, stage.errors[:, Parameter.v_rotation], np.nan))
+
+    (v_app, e_app), (v_rec, e_rec) = speeds(approaching), speeds(receding)
+    difference = np.abs(v_app - v_rec)
+    with np.errstate(invalid="ignore"):
+        return np.isfinite(difference) & (difference > np.maximum(ASYMMETRY_SIGMA * np.hypot(e_app, e_rec),
+                                                                  ASYMMETRY_MIN_SPEED))

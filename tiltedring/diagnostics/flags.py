@@ -4,7 +4,8 @@ A flag never removes a ring: the ring stays in the table and the flag says why i
 care. ``flags`` holds the flag names of a ring joined by ``,`` (empty when none).
 
 The vocabulary is the fixed flags of the ring fit and the geometry below, the flag of each
-registered flow model (:mod:`.flow_models`, in registration order) and ``strong_harmonics``.
+registered flow model (:mod:`.flow_models`, in registration order), ``radial_or_bisymmetric``
+(:mod:`.flows`) and ``strong_harmonics``.
 """
 
 __all__ = ["RING_FLAGS", "HARMONIC_FLAGS", "vocabulary", "join", "split"]
@@ -18,11 +19,15 @@ RING_FLAGS = {
     "inside_beam": "ring centre within one beam of the kinematic centre: beam smearing biases v_rotation low",
     "ill_conditioned": "the ring's fit is ill-conditioned (inclination outside 0-90 deg, or a v_rotation error larger "
                        "than the speed and 100 km/s): its values are not measurements and are not plotted",
-    "asymmetric": "approaching and receding sides differ by more than 3 sigma and 10 km/s",
+    "asymmetric": "approaching and receding halves' rotation speeds differ by more than 3 times their combined "
+                  "error and by more than 10 km/s (a lopsided disc, or streaming on one side)",
     "warp": "beyond the warp onset: position angle and inclination follow the warp profile",
 }
 
 HARMONIC_FLAGS = {
+    "radial_or_bisymmetric": "a radial flow with the major axis turned explains the ring as well as a bisymmetric "
+                             "(bar-like) flow: non-circular, of a kind the map at this geometry cannot tell; refit "
+                             "with v_radial free (--fit-radial) to tell them apart",
     "strong_harmonics": "significant non-circular harmonics (orders 1-3) in the ring's velocities",
 }
 

@@ -29,18 +29,17 @@ from astropy.io import fits
 from astropy.wcs import WCS, FITSFixedWarning
 
 from ..errors import FitCaution, InputError
+from .conventions import CONVENTIONS
+from .conventions import DEFAULT_CONVENTION as _DEFAULT_CONVENTION
+from .conventions import OWN_CONVENTION as _OWN_CONVENTION
 from .maps import Beam, centre_jacobian, open_image, pixel_scale_of
 
 __all__ = ["LineCube", "read_cube", "channel_noise", "looks_like_cube", "CONVENTIONS"]
 
 KM_S = u.km / u.s
-CONVENTIONS = ("radio", "optical", "relativistic")
 _FRAMES = {"LSRK": "LSRK", "LSRD": "LSRD", "BARYCENT": "BARYCENTRIC", "HELIOCEN": "HELIOCENTRIC",
            "TOPOCENT": "TOPOCENTRIC", "GEOCENTR": "GEOCENTRIC", "SOURCE": "SOURCE", "GALACTOC": "GALACTOCENTRIC",
            "LOCALGRP": "LOCALGROUP", "CMBDIPOL": "CMBDIPOLE"}
-_OWN_CONVENTION = {"VRAD": "radio", "VOPT": "optical", "ZOPT": "optical", "VELO": "relativistic",
-                   "BETA": "relativistic"}
-_DEFAULT_CONVENTION = {"FREQ": "radio", "ENER": "radio", "WAVN": "radio", "WAVE": "optical", "AWAV": "optical"}
 HI_REST_FREQUENCY_HZ = 1420405751.768  # the HI hyperfine line (e.g. Hellwig et al. 1970)
 
 

@@ -110,6 +110,8 @@ class VelocityMap:
     source: str = "array"
     notes: list = field(default_factory=list)
     object_name: str | None = None  # the header's OBJECT card, when there is one
+    velocity_convention: str | None = None  # radio, optical, relativistic; None: not stated (:mod:`.conventions`)
+    convention_source: str = "not stated"  # where the convention was read or given
 
     @property
     def shape(self) -> tuple:
@@ -486,6 +488,7 @@ def read_velocity_map(
     velocity_unit=None,
     error_unit=None,
     hdu=None,
+    velocity_convention: str | None = None,
 ) -> VelocityMap:
     """Read a velocity map (and optional error and intensity maps) into a :class:`VelocityMap`.
 
@@ -500,6 +503,9 @@ def read_velocity_map(
         Arcsec per pixel, only used when the map has no celestial WCS (north up, east left).
     velocity_unit, error_unit
         Override or supply BUNIT (``"km/s"``, ``"m/s"``...). Values are stored in km/s.
+    velocity_convention
+        ``"radio"``, ``"optical"`` or ``"relativistic"``: the Doppler convention of the velocities
+        (default: read from the header, :mod:`.conventions`; ``None`` when it states none).
 
     Inputs are never modified: arrays are copied.
     """
@@ -518,8 +524,14 @@ def read_velocity_map(
         beam = Beam.parse(beam)
     beam = beam if beam is not None else Beam.from_header(header, f"velocity map {name}")
     check_beam_size(beam, jac, data.shape, f"velocity map {name}", not given, notes)
+    from .conventions import choose_convention
+
+    convention, convention_source, convention_note = choose_convention(velocity_convention, header)
+    if convention_note:
+        notes.append(convention_note)
     vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes,
-                       object_name=str(header.get("OBJECT", "")).strip() or None)
+                       object_name=str(header.get("OBJECT", "")).strip() or None, velocity_convention=convention,
+                       convention_source=convention_source)
     if wcs is not None and vmap.celestial_frame not in (None, "icrs"):
         notes.append(f"the map's celestial frame is {vmap.celestial_frame}: ra_center/dec_center in the tables are "
                      "ICRS, converted with astropy (and --ra-center/--dec-center are read as ICRS)")

@@ -68,8 +68,12 @@ class VelocityMaps:
     record: dict = field(default_factory=dict)
 
     def header_for(self, bunit: str) -> fits.Header:
+        """The maps' 2-D header with BUNIT ``bunit`` and the velocity convention card (:mod:`.conventions`)."""
+        from .conventions import CONVENTION_CARD
+
         header = self.header.copy()
         header["BUNIT"] = bunit
+        header[CONVENTION_CARD] = (self.convention, "Doppler convention of the velocities")
         return header
 
     def pairs(self) -> dict:

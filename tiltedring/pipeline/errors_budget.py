@@ -20,6 +20,7 @@ from astropy import units as u
 
 from ..fitting.parameters import CENTRE_AND_SYSTEMIC, Parameter
 from ..fitting.resampling import resample
+from ..diagnostics.diagnose import asymmetric_sides
 from .beam import speed_stretch
 from .state import Additions
 
@@ -73,7 +74,7 @@ def speed_errors(column, sides: dict, low_inclination: float) -> tuple:
 
     ``column(name)`` gives the ring table's current column ``name`` (None if absent); ``sides``: the
     approaching and receding stages (empty when only one half was fitted). ``asymmetric``: per ring, whether
-    the halves differ by more than max(3 sigma, 10 km/s).
+    the halves differ beyond their errors (:func:`..diagnostics.diagnose.asymmetric_sides`).
     """
     v = column("v_rotation").to_value(_KMS)
     formal = column("v_rotation_err").to_value(_KMS)
@@ -85,7 +86,7 @@ def speed_errors(column, sides: dict, low_inclination: float) -> tuple:
         columns["v_rotation_approaching"] = v_app * _KMS
         columns["v_rotation_receding"] = v_rec * _KMS
         halves = np.where(np.isfinite(v_app) & np.isfinite(v_rec), 0.5 * np.abs(v_app - v_rec), np.nan)
-        asymmetric = np.isfinite(halves) & (2 * halves > np.maximum(3 * np.hypot(formal, halves), 10.0))
+        asymmetric = asymmetric_sides(sides["approaching"], sides["receding"])
     inc = column("inclination").to_value(u.rad)
     inc_err = np.nan_to_num(column("inclination_err").to_value(u.rad))
     from_inc = np.abs(v) * inc_err / np.tan(inc)

@@ -33,6 +33,7 @@ HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
 EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
 CHANNEL_RESPONSE_NAMES = ("boxcar", "hanning")  # fitting.cube_model.CHANNEL_RESPONSES
+CONVENTION_NAMES = ("radio", "optical", "relativistic")  # io.conventions.CONVENTIONS
 
 SPEED_OF_LIGHT = 299792.458  # km/s (CODATA, as astropy.constants.c)
 STARTING_BOUNDS = {
@@ -215,6 +216,13 @@ class InputOptions:
                                        help="arcsec per pixel, for maps without celestial WCS")
     velocity_unit: str | None = option(None, group="inputs", metavar="UNIT",
                                        help="unit of the map when BUNIT is missing or wrong (km/s, m/s)")
+    velocity_convention: str | None = option(
+        None, group="inputs", choices=CONVENTION_NAMES,
+        help="Doppler convention of the velocities: for a velocity map, the one it is in (default: read from its "
+             "header: CTYPE3 VRAD/VOPT/VELO/FREQ, VELREF, or the VELCONV card of 'tiltedring maps'; optical assumed "
+             "with a caution when it says none); for a cube, the one its maps are made in (default: the cube's own; "
+             "radio for a frequency axis, optical for a wavelength axis). Sets the rest-frame correction of "
+             "curve.ecsv")
     bin: int | None = option(None, group="inputs", metavar="N", bounds=Bounds(minimum=1, maximum=1000),
                              help="average N x N pixel blocks before fitting (for maps too large for memory, or far "
                                   "finer than the beam)")
@@ -236,7 +244,8 @@ class InputOptions:
     def read_arguments(self) -> dict:
         """Keyword arguments of :func:`..io.maps.read_velocity_map` (maps by their reader's names)."""
         return {"error": self.error_map, "intensity": self.intensity_map, "dispersion": self.dispersion_map,
-                "beam": self.beam, "pixel_scale": self.pixel_scale, "velocity_unit": self.velocity_unit}
+                "beam": self.beam, "pixel_scale": self.pixel_scale, "velocity_unit": self.velocity_unit,
+                "velocity_convention": self.velocity_convention}
 
 
 @dataclass
@@ -303,9 +312,6 @@ class CubeOptions:
                                          help="unit of the cube when BUNIT is missing or wrong (Jy/beam, K)")
     rest_frequency: float | None = option(None, group="cube", metavar="HZ", bounds=Bounds(above=0),
                                           help="rest frequency in Hz when the cube states none")
-    velocity_convention: str | None = option(None, group="cube", choices=("radio", "optical", "relativistic"),
-                                             help="velocities in this convention (default: the cube's own; radio "
-                                                  "for a frequency axis, optical for a wavelength axis)")
 
     curve_from_cube: bool = option(True, group="cube",
                                    help="skip refitting the inner rings' rotation speed and dispersion on the cube "
@@ -323,11 +329,12 @@ class CubeOptions:
     def to_dict(self) -> dict:
         return asdict(self)
 
-    def map_arguments(self) -> dict:
-        """Keyword arguments of :func:`..io.velocity_fields.make_velocity_maps`."""
+    def map_arguments(self, convention: str | None = None) -> dict:
+        """Keyword arguments of :func:`..io.velocity_fields.make_velocity_maps`; ``convention`` is the
+        input option ``velocity_convention`` (:class:`InputOptions`)."""
         return {"kind": self.velocity_kind, "exclude_velocities": self.exclude_velocities or (),
                 "exclusion": self.exclusion, "keep_regions": "all" if self.all_regions else "largest",
                 "mask_threshold": self.mask_threshold, "minimum_run": self.minimum_run,
                 "detect_foreground": self.detect_foreground, "brightness_unit": self.brightness_unit, "rest_frequency": self.rest_frequency,
-                "convention": self.velocity_convention}
+                "convention": convention}
 

@@ -22,7 +22,7 @@ from ..fitting.first_guess import first_guess, guess_rotation
 from ..fitting.geometry import centre_angle, wrap_angle
 from ..fitting.kinematics import model_field
 from ..fitting.parameters import CENTRE_AND_SYSTEMIC, GEOMETRY, ORIENTATION, PARAMETERS, SPEEDS, Parameter, mask
-from .centre import refine_centre
+from .centre import check_against_rings, refine_centre
 from .inputs import ring_layout
 from .ring_stage import fit_stage, weighted_median
 from .state import Additions, Centre, GeometryDecision, StartValues
@@ -80,10 +80,17 @@ def centre(state) -> Additions:
     held = {"radius": state.layout.radii[use], "v_rotation": params[use, Parameter.v_rotation]}
     for p in ORIENTATION:
         held[p.name] = weighted_median(params[use, p], errors[use, p])
-    found = {}
+    found, summaries, cautions = {}, {}, []
     if use.sum() >= 2:
-        values, found = refine_centre(state.vmap, state.inputs.pixels, held, state.layout.edges[-1], values, fixed)
-    return Additions(fields={"centre": Centre(values, found, use)})
+        medians = dict(values)
+        widths = np.diff(state.layout.edges)
+        fit = refine_centre(state.vmap, state.inputs.pixels, held, state.layout.edges[-1], values, fixed,
+                            ring_width=float(widths[-1]) if len(widths) else None)
+        rings = {p.name: params[use, p] for p in CENTRE_AND_SYSTEMIC}
+        values, found, summary = check_against_rings(fit, rings, medians)
+        summaries["centre"] = summary
+        cautions = list(fit.cautions) + ([summary["note"]] if summary.get("fallback") else [])
+    return Additions(fields={"centre": Centre(values, found, use)}, summaries=summaries, cautions=cautions)
 
 
 def centred_starts(state) -> np.ndarray:

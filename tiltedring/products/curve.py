@@ -5,9 +5,21 @@ From a fit's final ring table:
 - radius in arcsec and, given a distance (or a redshift and a stated astropy cosmology, using the
   angular-diameter distance), in kpc: R = theta D (small angles);
 - v_rotation with every error component and the total (see ``fit.json`` ``error_columns``);
-- the rest-frame correction: line-of-sight velocity *differences* measured at redshift z are
-  stretched by (1 + z), so speeds are divided by (1 + z) with z = v_systemic / c (optical
-  convention) when that changes them by more than 0.1 per cent (v_systemic > 300 km/s);
+- the rest-frame correction (:func:`rest_frame_stretch`): a speed u in the galaxy's own frame
+  appears as a line-of-sight velocity *difference* dv that depends on the Doppler convention of
+  the map (Greisen et al. 2006, A&A 446, 747, for the definitions). The galaxy at redshift z and
+  a gas element moving at u along the line of sight give 1 + z_obs = (1 + z)(1 + u/c) to first
+  order in u/c, so with beta = v_systemic / c::
+
+      optical       v = c z_obs                 dv/du = 1 + z           1 + z = 1 + beta
+      radio         v = c (1 - 1/(1 + z_obs))   dv/du = 1 / (1 + z)     1 + z = 1 / (1 - beta)
+      relativistic  v = c ((1+z_obs)^2 - 1) / ((1+z_obs)^2 + 1)
+                                                dv/du = 1 - beta^2 (relativistic velocity addition)
+
+  and speeds are multiplied by du/dv (divided by 1 + z for optical, multiplied by 1 + z for radio,
+  divided by 1 - beta^2 for relativistic) when that changes them by more than 0.1 per cent
+  (|v_systemic| > 300 km/s). The convention is the map's (read from its header or given); when
+  neither says, optical is assumed with a caution;
 - with a velocity-dispersion (moment-2) map and the intensity map, the circular speed corrected for
   asymmetric drift (pressure support of an isotropic gas disc; Binney & Tremaine 2008 eq. 4.228 with
   sigma_R = sigma_phi; as applied to HI by e.g. Oh et al. 2015, AJ 149, 180)::
@@ -33,7 +45,7 @@ from astropy.table import QTable
 from ..errors import InputError
 from ..fitting.geometry import disc_coordinates
 
-__all__ = ["RotationCurve", "parse_distance", "asymmetric_drift", "ring_statistic"]
+__all__ = ["RotationCurve", "parse_distance", "asymmetric_drift", "ring_statistic", "rest_frame_stretch"]
 
 KMS = u.km / u.s
 _Z_THRESHOLD = 1e-3
@@ -62,6 +74,20 @@ def parse_distance(text) -> u.Quantity:
     return value
 
 
+def rest_frame_stretch(v_systemic: float, convention: str) -> tuple:
+    """(z, d v_observed / d u) for a galaxy whose systemic velocity is ``v_systemic`` km/s in
+    ``convention``: the factor by which a speed u in the galaxy's frame is stretched on the map
+    (module docstring). Divide the map's speeds by it to get rest-frame speeds."""
+    beta = float(v_systemic) / const.c.to_value(KMS)
+    if convention == "optical":
+        return beta, 1.0 + beta
+    if convention == "radio":
+        return beta / (1.0 - beta), 1.0 - beta
+    if convention == "relativistic":
+        return float(np.sqrt((1.0 + beta) / (1.0 - beta))) - 1.0, 1.0 - beta**2
+    raise InputError(f"velocity convention {convention!r}: give radio, optical or relativistic")
+
+
 def ring_statistic(image, sky_jacobian, rings: dict, inner, outer, statistic=np.nanmean) -> np.ndarray:
     """``statistic`` of ``image`` over each ring's pixels at that ring's geometry (NaN pixels ignored)."""
     ny, nx = image.shape
@@ -76,6 +102,25 @@ def ring_statistic(image, sky_jacobian, rings: dict, inner, outer, statistic=np.
         if sel.sum() >= 3:
             out[k] = statistic(values[sel])
     return out
+
+
+def _rest_frame(result, v_sys: float, given) -> tuple:
+    """(convention, its ``velocity_convention`` meta entry, stretch d v_observed / d u; 1 when below 0.1 per cent)."""
+    vmap = result.vmap
+    convention = given or getattr(vmap, "velocity_convention", None)
+    source = "given (velocity_convention)" if given else getattr(vmap, "convention_source", "not stated")
+    entry = {"convention": convention or "optical", "source": source}
+    if convention is None:
+        _, radio = rest_frame_stretch(v_sys, "radio")
+        _, optical = rest_frame_stretch(v_sys, "optical")
+        change = 100 * abs(optical / radio - 1)
+        entry["assumed"] = (f"the map states no velocity convention: optical (v = cz) assumed for the rest-frame "
+                            f"correction; if it is radio, the rest-frame speeds are {change:.1f} per cent "
+                            f"{'higher' if optical > radio else 'lower'} than given: state the convention with "
+                            "--velocity-convention")
+        convention = "optical"
+    _, stretch = rest_frame_stretch(v_sys, convention)
+    return convention, entry, (stretch if abs(stretch - 1.0) > _Z_THRESHOLD else 1.0)
 
 
 def asymmetric_drift(radius, v_rotation, sigma, surface_density):
@@ -104,8 +149,11 @@ class RotationCurve:
     meta: dict = field(default_factory=dict)
 
     @classmethod
-    def from_fit(cls, result, distance=None, redshift=None, cosmology: str = "Planck18", dispersion=None):
+    def from_fit(cls, result, distance=None, redshift=None, cosmology: str = "Planck18", dispersion=None,
+                 velocity_convention: str | None = None):
         """Build the product from a :class:`.result.FitResult` (module docstring).
+
+        ``velocity_convention``: overrides the map's (``result.vmap.velocity_convention``).
 
         ``distance``: number (Mpc) or length; ``redshift``: used with the named astropy cosmology when no
         distance is given; ``dispersion``: a moment-2 map on the fit's grid in km/s (default: the map's own).
@@ -133,16 +181,19 @@ class RotationCurve:
             t["radius_kpc"] = (rings["radius"].to(u.rad).value * d).to(u.kpc)
         v_sys = rings["v_systemic"].to_value(KMS)
         v_sys = float(np.nanmedian(v_sys)) if np.isfinite(v_sys).any() else 0.0
-        z = v_sys / const.c.to_value(KMS)
-        if not abs(z) < 0.5:
+        if not abs(v_sys / const.c.to_value(KMS)) < 0.5:
             from ..errors import ResultNotPhysical
 
             raise ResultNotPhysical(f"systemic velocity {v_sys:.6g} km/s is not a recession speed a resolved disc can "
-                                    "have (z = v/c beyond 0.5); check the map's velocity unit (--velocity-unit)")
-        stretch = 1.0 + z if abs(z) > _Z_THRESHOLD else 1.0
+                                    "have (beyond c/2); check the map's velocity unit (--velocity-unit)")
+        convention, meta["velocity_convention"], stretch = _rest_frame(result, v_sys, velocity_convention)
         if stretch != 1.0:
+            z, _ = rest_frame_stretch(v_sys, convention)
             meta["rest_frame_correction"] = {"z": float(z), "factor": float(1.0 / stretch),
-                                             "note": "speeds divided by (1 + z), z = v_systemic / c"}
+                                             "convention": convention,
+                                             "note": f"speeds multiplied by {1.0 / stretch:.6f}: the map's velocity "
+                                                     f"differences in the {convention} convention turned into "
+                                                     "rest-frame speeds"}
         speed_columns = [c for c in rings.colnames if c.startswith("v_rotation") and c not in ("v_rotation_difference",)]
         for name in speed_columns:
             t[name] = rings[name] / stretch
@@ -173,6 +224,13 @@ class RotationCurve:
         meta["error_components"] = "v_rotation_err = noise (max of formal, resampled), sides and inclination terms " \
                                    "in quadrature"
         return cls(t, meta)
+
+    def cautions(self) -> list:
+        """Cautions the product adds (an assumed velocity convention that changed the speeds)."""
+        convention = self.meta.get("velocity_convention") or {}
+        if self.meta.get("rest_frame_correction") and convention.get("assumed"):
+            return [convention["assumed"]]
+        return []
 
     def write(self, path) -> None:
         """Write ``curve.ecsv`` atomically, with ``meta`` in the header."""

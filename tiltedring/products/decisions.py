@@ -28,12 +28,12 @@ def plural(n: int, word: str, many: str | None = None) -> str:
 
 
 def format_radii(radii, unit: str = "arcsec", limit: int = 8) -> str:
-    """``"4, 12 and 20 arcsec"``; long lists shortened to their range and count."""
+    """``"4, 12 and 20 arcsec"``; long lists shortened to their range (``"26 to 90 arcsec"``)."""
     values = [float(r) for r in radii]
     if not values:
         return "none"
     if len(values) > limit:
-        return f"{len(values)} rings from {min(values):.0f} to {max(values):.0f} {unit}"
+        return f"{min(values):.0f} to {max(values):.0f} {unit}"
     text = [f"{v:.0f}" for v in values]
     joined = text[0] if len(text) == 1 else ", ".join(text[:-1]) + " and " + text[-1]
     return f"{joined} {unit}"
@@ -94,7 +94,7 @@ def _warp(section: dict, result) -> list:
                                       "motions or an inner disc; the outer geometry is used for every ring"))
     excluded = section.get("rings_excluded_as_non_circular")
     if excluded:
-        lines.append(("rings left out", f"{plural(len(excluded), 'ring')} at {format_radii(excluded)} took no part in "
+        lines.append(("rings left out", f"{plural(len(excluded), 'ring')} ({format_radii(excluded)}) took no part in "
                                         "the geometry: not circular even at their own best geometry"))
     elif excluded is not None:
         lines.append(("rings left out", "none: every usable ring took part in the geometry"))
@@ -106,7 +106,7 @@ def _non_circular(section: dict, result) -> list:
         text = "none detected"
         if section.get("disc_preferred_model"):
             text += f"; the disc as a whole prefers the {section['disc_preferred_model']} model"
-        return [("non-circular motions", text + _extras(section))]
+        return [("non-circular motions", text + _extras(section))] + _flow_guards(section)
     kinds = ", ".join(section.get("kinds") or [section.get("kind") or "harmonic"])
     radii = section.get("radii") or []
     text = (f"{kinds} in {plural(len(radii), 'ring')} ({format_radii(radii)}), up to "
@@ -114,12 +114,27 @@ def _non_circular(section: dict, result) -> list:
             "circular speed")
     if section.get("bar_angle") is not None:
         text += f"; bar angle {_number(section['bar_angle'], '.0f')} deg in the disc plane"
-    return [("non-circular motions", text + _extras(section))]
+    return [("non-circular motions", text + _extras(section))] + _flow_guards(section)
+
+
+def _flow_guards(section: dict) -> list:
+    """Lines for the flow test's guards (:mod:`..diagnostics.flows`): rings radial and bisymmetric flows explain
+    about equally, and rings with data on one half only."""
+    lines = []
+    if section.get("radial_or_bisymmetric_note"):
+        lines.append(("radial or bar", str(section["radial_or_bisymmetric_note"])))
+    one_sided = section.get("one_sided_radii") or []
+    if one_sided:
+        lines.append(("one-sided rings", f"{plural(len(one_sided), 'ring')} ({format_radii(one_sided)}) with data on "
+                                         "one half only (of either side of the major or minor axis): not tested "
+                                         "for non-circular motions"))
+    return lines
 
 
 def _radial_test(section: dict, result) -> list:
     verdict = "adopted" if section.get("adopted") else "not adopted"
-    return [("radial-flow refit", f"a refit with v_radial free in every ring was {verdict} (disc-wide delta BIC "
+    return [("radial-flow refit", f"a refit with v_radial free in every ring (as --fit-radial does) was {verdict} "
+                                  f"(disc-wide delta BIC "
                                   f"{_number(section.get('delta_bic'), '.0f')})" + _extras(section))]
 
 

@@ -166,6 +166,8 @@ class FitResult:
                 "pixels": "0-based (numpy order, astropy origin=0)",
                 "sky_centre": f"ra_center, dec_center: ICRS deg, converted with astropy from the map's own celestial "
                               f"frame ({self.vmap.celestial_frame or 'none: no celestial WCS, so they are blank'})",
+                "velocity": f"{getattr(self.vmap, 'velocity_convention', None) or 'not stated (optical assumed)'} "
+                            f"convention; {getattr(self.vmap, 'convention_source', 'not stated')}",
                 "v_radial": "positive when the minor-axis half at position_angle + 90 recedes; inflow or outflow "
                             "needs the near side",
             },
@@ -239,7 +241,9 @@ class FitResult:
         """The :class:`.curve.RotationCurve` product (physical units, corrections, error budget)."""
         from .curve import RotationCurve
 
-        return RotationCurve.from_fit(self, distance=distance, redshift=redshift, cosmology=cosmology)
+        curve = RotationCurve.from_fit(self, distance=distance, redshift=redshift, cosmology=cosmology)
+        self.cautions.extend(c for c in curve.cautions() if c not in self.cautions)
+        return curve
 
     # ------------------------------------------------------------------ figures (matplotlib imported on use)
     def plot_maps(self, axes=None):
