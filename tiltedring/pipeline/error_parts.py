@@ -28,7 +28,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["asymmetry_term", "geometry_response", "band_correlation", "total_error", "SIGNIFICANCE"]
+__all__ = ["asymmetry_term", "geometry_response", "band_correlation", "total_error", "excess_scatter",
+           "SIGNIFICANCE"]
 
 #: the approaching-receding difference counts as asymmetry only beyond this many of its own sigmas
 SIGNIFICANCE = 2.0
@@ -94,3 +95,24 @@ def total_error(parts: dict) -> np.ndarray:
     stacked = np.array([np.asarray(p, float) for p in parts.values()])
     total = np.sqrt(np.sum(np.nan_to_num(stacked) ** 2, axis=0))
     return np.where(np.isfinite(stacked).any(axis=0), total, np.nan)
+
+
+def excess_scatter(values, errors) -> float:
+    """Scatter of ``values`` about their weighted mean beyond what their ``errors`` explain (the
+    between-study variance of DerSimonian & Laird 1986, Controlled Clinical Trials 7, 177)::
+
+        Q = sum w (x - x_w)^2,  w = 1 / e^2,   tau^2 = max(0, (Q - (k - 1)) / (sum w - sum w^2 / sum w))
+
+    Returns tau (0 with fewer than three finite values). Used for the rings' own orientation about an
+    adopted constant one: an undetected small warp or non-circular motions turn rings by more than
+    their noise.
+    """
+    x, e = np.asarray(values, float), np.asarray(errors, float)
+    ok = np.isfinite(x) & np.isfinite(e) & (e > 0)
+    if ok.sum() < 3:
+        return 0.0
+    w = 1.0 / e[ok] ** 2
+    mean = np.sum(w * x[ok]) / w.sum()
+    q = np.sum(w * (x[ok] - mean) ** 2)
+    tau2 = (q - (ok.sum() - 1)) / (w.sum() - np.sum(w**2) / w.sum())
+    return float(np.sqrt(max(tau2, 0.0)))

@@ -3,11 +3,12 @@
 v_rotation's uncertainty is split into parts that share no source (:mod:`.error_parts`), each its
 own column, and their sum in quadrature, ``v_rotation_err``:
 
-- ``v_rotation_err_random``: the noise at the adopted geometry — the resampled scatter
+- ``v_rotation_err_random``: the noise at the adopted geometry — the larger of
+  ``v_rotation_err_formal`` (least squares, scaled by sqrt(reduced chi-square) and sqrt(pixels per
+  beam), as the beam treatment left it: it sees a ring's own misfit) and the resampled scatter
   (:mod:`..fitting.resampling`: noise fields with the residual's power spectrum through the fit's
-  first-order response, the orientation held) where resampling ran, else ``v_rotation_err_formal``
-  (least squares, scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)); stretched with the
-  beam correction. The correlation of each ring with its next ``k`` neighbours out (those within a
+  first-order response, the orientation held, stretched with the beam correction: it sees the
+  noise's correlation over the beam). The correlation of each ring with its next ``k`` neighbours out (those within a
   beam) is in ``random_correlation_<k>``;
 - ``v_rotation_err_geometry``: the response to the orientation's 1 sigma, from the signed columns
   ``v_rotation_shift_inclination`` (-v cot(i) sigma_i) and ``v_rotation_shift_position_angle``
@@ -21,7 +22,9 @@ says so), so there it is more than the parts' sum. The covariance of the curve f
 same columns (:mod:`..products.covariance`).
 
 Centre and systemic velocity: the larger of the global fit's error and the ring-to-ring scatter
-of stage ``free``. Orientation: the larger of the profile's error and the resampled scatter.
+of stage ``free``. Orientation: the larger of the profile's error and the resampled scatter; for a
+constant orientation, each ring's error adds the rings' own scatter about it beyond their noise
+(:func:`orientation_spread`).
 One step (:func:`error_budget`) with the same interface as the others, so it can be replaced whole.
 """
 
@@ -33,7 +36,8 @@ from astropy import units as u
 from ..fitting.parameters import CENTRE_AND_SYSTEMIC, Parameter
 from ..fitting.resampling import resample_draws
 from .beam import speed_stretch
-from .error_parts import SIGNIFICANCE, asymmetry_term, band_correlation, geometry_response, total_error
+from ..fitting.geometry import centre_angle
+from .error_parts import SIGNIFICANCE, asymmetry_term, band_correlation, excess_scatter, geometry_response, total_error
 from .state import Additions
 
 __all__ = ["error_budget", "centre_errors", "resampled_errors", "speed_errors", "correlation_reach", "ERROR_MODEL"]
@@ -44,9 +48,9 @@ _KMS = u.km / u.s
 ERROR_MODEL = {
     "total": "v_rotation_err = sqrt(random^2 + geometry^2 + beam^2 + asymmetry^2); below the low-inclination "
              "limit widened to at least v_rotation / 2",
-    "random": "v_rotation_err_random: scatter of v_rotation over refits (first order) of model + noise fields with "
-              "the residual map's power spectrum, orientation held at the adopted values; the formal error when "
-              "no resampling ran. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
+    "random": "v_rotation_err_random: the larger of the formal error (scaled by sqrt(reduced chi-square) and "
+              "sqrt(pixels per beam)) and the scatter of v_rotation over refits (first order) of model + noise "
+              "fields with the residual map's power spectrum, orientation held at the adopted values. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
               "beam; 0 beyond)",
     "geometry": "v_rotation_err_geometry = hypot(v_rotation_shift_inclination, v_rotation_shift_position_angle): "
                 "signed change of v_rotation at the orientation's +1 sigma, -v cot(i) sigma_i and "
@@ -122,6 +126,30 @@ def resampled_errors(state) -> tuple:
     return columns, {"resampling": summary}
 
 
+def orientation_spread(state) -> tuple:
+    """(columns, summary): for each orientation adopted as one number for the whole disc, the rings' own
+    scatter about it beyond their noise (:func:`.error_parts.excess_scatter`, rings of stage ``centred`` that
+    informed the geometry) added in quadrature to its error: the error of one ring's orientation, not only of
+    the mean. 0 for a flat disc seen through noise alone; a warp too small to be detected, or non-circular
+    motions that turn the rings, make it larger."""
+    stage, profile = state.centred_rings, state.geometry.profile
+    used = profile.used if profile.used is not None else stage.usable
+    columns, summary = {}, {}
+    if state.geometry.warped:
+        return columns, summary
+    for p in (Parameter.position_angle, Parameter.inclination):
+        if p.name in state.inputs.fixed:
+            continue
+        adopted = float(np.nanmedian(state.geometry.adopted[p.name][0]))
+        values = stage.params[:, p]
+        if p is Parameter.position_angle:
+            values = centre_angle(values, adopted)
+        tau = excess_scatter(values[used], stage.errors[used, p])
+        summary[p.name] = tau
+        columns[p.name] = tau
+    return columns, summary
+
+
 def _side_speeds(stage, scale) -> tuple:
     """(speeds, noise errors) of one half's stage, NaN where a ring did not converge; the formal errors are
     scaled by ``scale`` (the whole disc's random / formal ratio) so both halves' noise is on one footing."""
@@ -141,7 +169,7 @@ def speed_errors(column, sides: dict, low_inclination: float) -> tuple:
     v = column("v_rotation").to_value(_KMS)
     formal = column("v_rotation_err").to_value(_KMS)
     resampled = column("v_rotation_err_resampled")
-    random = formal if resampled is None else resampled.to_value(_KMS)
+    random = formal if resampled is None else np.fmax(formal, resampled.to_value(_KMS))
     columns = {"v_rotation_err_formal": formal * _KMS, "v_rotation_err_random": random * _KMS}
     asymmetry = np.zeros(len(v))
     asymmetric = np.zeros(len(v), bool)
@@ -189,6 +217,16 @@ def error_budget(state) -> Additions:
     speeds, asymmetric = speed_errors(column, state.sides, state.options.low_inclination)
     columns.update(speeds)
     columns.pop("v_rotation_err_resampled", None)  # the random part where resampling ran
+    # after the speeds: v_rotation responds to the adopted orientation's error, a ring's own angle to both
+    spread, spread_summary = orientation_spread(state)
+    for name, tau in spread.items():
+        base = columns.get(f"{name}_err", state.table[f"{name}_err"]).to_value(u.deg)
+        columns[f"{name}_err"] = np.hypot(base, tau) * u.deg
+    summaries["orientation_spread"] = {"degrees": spread_summary, "method": "rings' own scatter about the adopted "
+                                       "constant orientation beyond their noise (DerSimonian & Laird 1986), added "
+                                       "in quadrature to each ring's orientation error (not to the error the "
+                                       "geometry part of v_rotation uses: a ring's speed is fitted at the adopted "
+                                       "orientation, and its own misfit is in its random part)"}
     summaries["error_model"] = dict(ERROR_MODEL, random_source="resampled" if resampled else "formal")
     return Additions(columns=columns, flags=[{"asymmetric"} if a else set() for a in asymmetric],
                      summaries=summaries)
