@@ -3,12 +3,11 @@
 v_rotation's uncertainty is split into parts that share no source (:mod:`.error_parts`), each its
 own column, and their sum in quadrature, ``v_rotation_err``:
 
-- ``v_rotation_err_random``: the noise at the adopted geometry — the larger of
-  ``v_rotation_err_formal`` (least squares, scaled by sqrt(reduced chi-square) and sqrt(pixels per
-  beam), as the beam treatment left it: it sees a ring's own misfit) and the resampled scatter
+- ``v_rotation_err_random``: the noise at the adopted geometry — the resampled scatter
   (:mod:`..fitting.resampling`: noise fields with the residual's power spectrum through the fit's
-  first-order response, the orientation held, stretched with the beam correction: it sees the
-  noise's correlation over the beam). The correlation of each ring with its next ``k`` neighbours out (those within a
+  first-order response, the orientation held), enlarged as the beam treatment enlarged the formal
+  error (:func:`noise_gain`); without resampling, ``v_rotation_err_formal`` (least squares, scaled by
+  sqrt(reduced chi-square) and sqrt(pixels per beam), as the beam treatment left it). The correlation of each ring with its next ``k`` neighbours out (those within a
   beam) is in ``random_correlation_<k>``;
 - ``v_rotation_err_geometry``: the response to the orientation's 1 sigma, from the signed columns
   ``v_rotation_shift_inclination`` (-v cot(i) sigma_i) and ``v_rotation_shift_position_angle``
@@ -22,7 +21,8 @@ says so), so there it is more than the parts' sum. The covariance of the curve f
 same columns (:mod:`..products.covariance`).
 
 Centre and systemic velocity: the larger of the global fit's error and the ring-to-ring scatter
-of stage ``free``. Orientation: the larger of the profile's error and the resampled scatter; for a
+of stage ``free``. Orientation: the larger of the profile's error (enlarged for rings sharing a beam)
+and the resampled scatter; for a
 constant orientation, each ring's error adds the rings' own scatter about it beyond their noise
 (:func:`orientation_spread`).
 One step (:func:`error_budget`) with the same interface as the others, so it can be replaced whole.
@@ -35,7 +35,6 @@ from astropy import units as u
 
 from ..fitting.parameters import CENTRE_AND_SYSTEMIC, Parameter
 from ..fitting.resampling import resample_draws
-from .beam import speed_stretch
 from ..fitting.geometry import centre_angle
 from .error_parts import SIGNIFICANCE, asymmetry_term, band_correlation, excess_scatter, geometry_response, total_error
 from .state import Additions
@@ -48,9 +47,10 @@ _KMS = u.km / u.s
 ERROR_MODEL = {
     "total": "v_rotation_err = sqrt(random^2 + geometry^2 + beam^2 + asymmetry^2); below the low-inclination "
              "limit widened to at least v_rotation / 2",
-    "random": "v_rotation_err_random: the larger of the formal error (scaled by sqrt(reduced chi-square) and "
-              "sqrt(pixels per beam)) and the scatter of v_rotation over refits (first order) of model + noise "
-              "fields with the residual map's power spectrum, orientation held at the adopted values. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
+    "random": "v_rotation_err_random: scatter of v_rotation over refits (first order) of model + noise fields "
+              "with the residual map's power spectrum, orientation held at the adopted values, enlarged as the beam "
+              "treatment enlarged the formal error; the formal error (scaled by sqrt(reduced chi-square) and "
+              "sqrt(pixels per beam)) when no resampling ran. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
               "beam; 0 beyond)",
     "geometry": "v_rotation_err_geometry = hypot(v_rotation_shift_inclination, v_rotation_shift_position_angle): "
                 "signed change of v_rotation at the orientation's +1 sigma, -v cot(i) sigma_i and "
@@ -63,14 +63,17 @@ ERROR_MODEL = {
 
 def centre_errors(state) -> dict:
     """Error columns of the centre and systemic velocity: the larger of the global fit's error and the
-    ring-to-ring scatter of stage ``free`` (1.2533 sigma / sqrt(n), the error of a median), since
-    beam-smearing residuals make the global fit's formal error optimistic; NaN where held."""
+    ring-to-ring scatter of stage ``free`` (1.2533 sigma sqrt((1 + k) / n), the error of a median of n rings
+    each correlated with its k neighbours within a beam: with neighbour correlations of at most 1/2 the
+    variance of a mean grows by at most 1 + 2 k / 2), since beam-smearing residuals make the global fit's
+    formal error optimistic; NaN where held."""
     use = state.centre.rings_used
     params = state.free_rings.params
     n = len(state.layout)
+    shared = 1 + correlation_reach(state.layout, state.vmap.beam)
     columns = {}
     for p in CENTRE_AND_SYSTEMIC:
-        spread = 1.2533 * np.std(params[use, p]) / np.sqrt(use.sum()) if use.sum() > 2 else np.nan
+        spread = 1.2533 * np.std(params[use, p]) * np.sqrt(shared / use.sum()) if use.sum() > 2 else np.nan
         error = np.nan
         if p.name not in state.inputs.fixed:
             error = float(np.nanmax([state.centre.errors.get(p.name, np.nan), spread]))
@@ -87,6 +90,17 @@ def correlation_reach(layout, beam) -> int:
     return max(1, int(np.ceil(beam.fwhm / spacing - 1e-6))) if spacing > 0 else 1
 
 
+def noise_gain(state) -> np.ndarray:
+    """Per ring, how much the steps after stage ``final`` (the beam treatment) enlarged the noise error: the
+    ring table's ``v_rotation_err`` over the stage's own formal error, at least 1. The resampled scatter is
+    measured on the stage's fit, so it is scaled alike (the beam correction stretches or propagates noise)."""
+    before = state.final_rings.errors[:, Parameter.v_rotation]
+    after = state.table["v_rotation_err"].to_value(_KMS)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        gain = np.where(np.isfinite(before) & (before > 0), after / before, 1.0)
+    return np.fmax(1.0, np.nan_to_num(gain, nan=1.0))
+
+
 def _held_geometry(response):
     """A measure giving, beside the response's own answer, v_rotation with the orientation held at the adopted
     values (the stage-final speeds move with the constant geometry through ``coupling``; this takes it back)."""
@@ -98,7 +112,16 @@ def _held_geometry(response):
     return measure
 
 
-def resampled_errors(state) -> tuple:
+def profile_errors(state) -> dict:
+    """The adopted orientation's errors from the geometry profile, enlarged by sqrt(1 + k): the profile treats
+    the rings as independent, but each shares noise with its k neighbours within a beam (see
+    :func:`centre_errors`). Held angles are left alone."""
+    shared = 1 + correlation_reach(state.layout, state.vmap.beam)
+    return {f"{name}_err": state.table[f"{name}_err"] * np.sqrt(shared)
+            for name in ("position_angle", "inclination") if name not in state.inputs.fixed}
+
+
+def resampled_errors(state, current=None) -> tuple:
     """(columns, summaries) of the resampling errors when asked for and v_rotation is fitted: the random part
     at the held orientation with its neighbour correlations; the constant orientation's errors become the
     larger of theirs and the resampled scatter."""
@@ -109,10 +132,12 @@ def resampled_errors(state) -> tuple:
     draws = resample_draws(state.model, state.residual, _held_geometry(response), options.resamples,
                            seed=options.seed, quiet=options.quiet)
     held = draws["v_rotation_held"]
-    columns = {"v_rotation_err_resampled": np.nanstd(held, axis=0, ddof=1) * speed_stretch(table) * _KMS}
+    columns = {"v_rotation_err_resampled": np.nanstd(held, axis=0, ddof=1) * noise_gain(state) * _KMS}
+    current = current or {}
     for name in response.names:
         scatter = float(np.nanstd(draws[name], ddof=1))
-        columns[f"{name}_err"] = np.fmax(table[f"{name}_err"].to_value(u.deg), scatter) * u.deg
+        columns[f"{name}_err"] = np.fmax(current.get(f"{name}_err", table[f"{name}_err"]).to_value(u.deg),
+                                         scatter) * u.deg
     reach = correlation_reach(state.layout, state.vmap.beam)
     corr = band_correlation(held, reach)
     for k in range(1, reach + 1):
@@ -169,7 +194,7 @@ def speed_errors(column, sides: dict, low_inclination: float) -> tuple:
     v = column("v_rotation").to_value(_KMS)
     formal = column("v_rotation_err").to_value(_KMS)
     resampled = column("v_rotation_err_resampled")
-    random = formal if resampled is None else np.fmax(formal, resampled.to_value(_KMS))
+    random = formal if resampled is None else resampled.to_value(_KMS)
     columns = {"v_rotation_err_formal": formal * _KMS, "v_rotation_err_random": random * _KMS}
     asymmetry = np.zeros(len(v))
     asymmetric = np.zeros(len(v), bool)
@@ -206,7 +231,8 @@ def speed_errors(column, sides: dict, low_inclination: float) -> tuple:
 def error_budget(state) -> Additions:
     """The errors step: centre, resampled and v_rotation error columns, and the ``asymmetric`` flag."""
     columns = centre_errors(state)
-    resampled, summaries = resampled_errors(state)
+    columns.update(profile_errors(state))
+    resampled, summaries = resampled_errors(state, columns)
     columns.update(resampled)
 
     def column(name):
