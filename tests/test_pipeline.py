@@ -82,12 +82,10 @@ def test_every_stage_is_kept_and_final_has_required_columns(quiet):
     for col in ("radius", "x_center", "y_center", "ra_center", "dec_center", "v_systemic", "position_angle",
                 "inclination", "v_rotation", "v_rotation_err", "x_center_err", "y_center_err", "v_systemic_err",
                 "position_angle_err", "inclination_err", "n_pixels", "flags", "v_rotation_err_formal",
-                "v_rotation_err_sides", "v_rotation_err_inclination"):
+                "v_rotation_err_random", "v_rotation_err_geometry", "v_rotation_err_beam", "v_rotation_err_asymmetry"):
         assert col in res.rings.colnames, col
     total = res.rings["v_rotation_err"].value
-    noise = np.fmax(res.rings["v_rotation_err_formal"].value, res.rings["v_rotation_err_resampled"].value)
-    parts = np.sqrt(noise**2 + np.nan_to_num(res.rings["v_rotation_err_sides"].value) ** 2
-                    + res.rings["v_rotation_err_inclination"].value ** 2)
+    parts = np.sqrt(sum(res.rings[f"v_rotation_err_{p}"].value ** 2 for p in ("random", "geometry", "beam", "asymmetry")))
     np.testing.assert_allclose(total, parts, equal_nan=True)
 
 

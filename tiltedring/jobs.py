@@ -283,8 +283,8 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
     are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
 
     Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
-    ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``; ``report_*.png``
-    with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
+    ``curve_covariance.ecsv``, ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``;
+    ``report_*.png`` with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
     says under ``gas`` whether ``gas.ecsv`` was written and why not. ``inputs``: paths the folder
     may not be or hold (:mod:`.io.output_safety`; the files named in the result's input record are
     added).
@@ -310,6 +310,7 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
             write_cube(tmp / "residual_cube.fits", result.cube.data - result.model_cube, result.cube,
                        "tiltedring data - model cube")
         curve.write(tmp / "curve.ecsv")
+        curve.write_covariance(tmp / "curve_covariance.ecsv")
         if gas is not None:
             write_table(gas, tmp / "gas.ecsv", comment=gas.meta.get("comment"))
         write_json(tmp / "fit.json", record)

@@ -18,7 +18,7 @@ import time
 import numpy as np
 from scipy import fft
 
-__all__ = ["residual_like_noise", "resample", "Progress"]
+__all__ = ["residual_like_noise", "resample", "resample_draws", "Progress"]
 
 
 def residual_like_noise(residual, n: int, seed: int = 0):
@@ -63,12 +63,9 @@ class Progress:
             sys.stderr.flush()
 
 
-def resample(model, residual, measure, n: int, seed: int = 0, quiet: bool = True) -> dict:
-    """Scatter of ``measure(model + fake residual)`` over ``n`` draws.
-
-    ``measure(map)`` returns a dict of arrays or scalars (e.g. v_rotation per ring, a constant
-    inclination). Returns the sample standard deviation of each (NaN-aware) and ``n``.
-    """
+def resample_draws(model, residual, measure, n: int, seed: int = 0, quiet: bool = True) -> dict:
+    """Every draw of ``measure(model + fake residual)`` over ``n`` draws: by name, an array whose first
+    axis is the draw (so covariances between rings can be measured, not only each ring's scatter)."""
     draws = {}
     progress = Progress("resampling errors", n, quiet=quiet)
     for k, noise in enumerate(residual_like_noise(residual, n, seed), start=1):
@@ -77,6 +74,16 @@ def resample(model, residual, measure, n: int, seed: int = 0, quiet: bool = True
             draws.setdefault(name, []).append(np.asarray(value, float))
         progress.update(k)
     progress.close()
-    out = {name: np.nanstd(np.array(values), axis=0, ddof=1) for name, values in draws.items()}
+    return {name: np.array(values) for name, values in draws.items()}
+
+
+def resample(model, residual, measure, n: int, seed: int = 0, quiet: bool = True) -> dict:
+    """Scatter of ``measure(model + fake residual)`` over ``n`` draws.
+
+    ``measure(map)`` returns a dict of arrays or scalars (e.g. v_rotation per ring, a constant
+    inclination). Returns the sample standard deviation of each (NaN-aware) and ``n``.
+    """
+    draws = resample_draws(model, residual, measure, n, seed, quiet)
+    out = {name: np.nanstd(values, axis=0, ddof=1) for name, values in draws.items()}
     out["n"] = n
     return out

@@ -4,8 +4,9 @@ The ring table keeps the map's values in their own columns (``v_rotation_map``,
 ``v_rotation_err_map``) and gains ``dispersion``, ``dispersion_err``, ``surface_brightness`` and
 ``curve_source`` (``cube``: v_rotation, dispersion and surface brightness fitted to the cube;
 ``map``: v_rotation from the map fit, dispersion matched by line width). For the rings fitted to the
-cube, ``v_rotation_err`` is the cube fit's noise error with the sides and inclination terms of the
-map fit in quadrature (the inclination term scaled to the new speed). ``fit.json`` records the
+cube, ``v_rotation_err_random`` is the cube fit's noise error and ``v_rotation_err`` adds the map fit's
+geometry and asymmetry parts in quadrature (the geometry part scaled to the new speed; the cube fit
+treats the beam itself, so the map's beam part is set to 0 there). ``fit.json`` records the
 treatment under ``curve_from_cube``, with the velocity ranges whose channels were left out
 (``excluded_velocities``: those stated and those found as foreground when the maps were made).
 """
@@ -89,13 +90,22 @@ def _update_table(table, fitted) -> None:
     table.add_column(v_map * KMS, name="v_rotation_map", index=index)
     table.add_column(err_map * KMS, name="v_rotation_err_map", index=index + 1)
     v = np.where(cube_rows, rings["v_rotation"], v_map)
-    sides = np.nan_to_num(table["v_rotation_err_sides"].to_value(KMS)) if "v_rotation_err_sides" in table.colnames \
-        else np.zeros(len(v))
-    incl = np.nan_to_num(table["v_rotation_err_inclination"].to_value(KMS)) \
-        if "v_rotation_err_inclination" in table.colnames else np.zeros(len(v))
+    def part(name):
+        return np.nan_to_num(table[name].to_value(KMS)) if name in table.colnames else np.zeros(len(v))
+
+    asymmetry = part("v_rotation_err_asymmetry")
     with np.errstate(invalid="ignore", divide="ignore"):
-        incl = incl * np.where(v_map != 0, np.abs(v / v_map), 1.0)
-    total = np.sqrt(np.nan_to_num(rings["v_rotation_err"]) ** 2 + sides**2 + incl**2)
+        scale = np.where(v_map != 0, np.abs(v / v_map), 1.0)
+    geometry = part("v_rotation_err_geometry") * scale
+    for name in ("v_rotation_shift_inclination", "v_rotation_shift_position_angle"):
+        if name in table.colnames:
+            table[name] = np.where(cube_rows, part(name) * scale, part(name)) * KMS
+    total = np.sqrt(np.nan_to_num(rings["v_rotation_err"]) ** 2 + asymmetry**2 + geometry**2)
+    if "v_rotation_err_random" in table.colnames:
+        table["v_rotation_err_random"] = np.where(cube_rows, rings["v_rotation_err"], part("v_rotation_err_random")) \
+            * KMS
+        table["v_rotation_err_geometry"] = np.where(cube_rows, geometry, part("v_rotation_err_geometry")) * KMS
+        table["v_rotation_err_beam"] = np.where(cube_rows, 0.0, part("v_rotation_err_beam")) * KMS
     table["v_rotation"] = v * KMS
     table["v_rotation_err"] = np.where(cube_rows, total, err_map) * KMS
     table["v_rotation_err_cube"] = np.where(cube_rows, rings["v_rotation_err"], np.nan) * KMS

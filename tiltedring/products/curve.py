@@ -4,7 +4,9 @@ From a fit's final ring table:
 
 - radius in arcsec and, given a distance (or a redshift and a stated astropy cosmology, using the
   angular-diameter distance), in kpc: R = theta D (small angles);
-- v_rotation with every error component and the total (see ``fit.json`` ``error_columns``);
+- v_rotation with every named error part and the total (see ``fit.json`` ``error_model``), and the
+  covariance of the curve between rings (:meth:`RotationCurve.covariance`, written beside
+  ``curve.ecsv`` as ``curve_covariance.ecsv``; :mod:`.covariance`);
 - the rest-frame correction (:func:`rest_frame_stretch`): a speed u in the galaxy's own frame
   appears as a line-of-sight velocity *difference* dv that depends on the Doppler convention of
   the map (Greisen et al. 2006, A&A 446, 747, for the definitions). The galaxy at redshift z and
@@ -141,6 +143,13 @@ def asymmetric_drift(radius, v_rotation, sigma, surface_density):
     return np.sqrt(np.clip(v2, 0, None)), drift2
 
 
+def _carry_correlations(rings, curve) -> None:
+    """Copy the random part's neighbour correlations (``random_correlation_<k>``, unitless) into the curve."""
+    for name in rings.colnames:
+        if name.startswith("random_correlation_"):
+            curve[name] = rings[name]
+
+
 @dataclass
 class RotationCurve:
     """The rotation-curve table (astropy QTable) and what was done to it (``meta``)."""
@@ -197,6 +206,7 @@ class RotationCurve:
         speed_columns = [c for c in rings.colnames if c.startswith("v_rotation") and c not in ("v_rotation_difference",)]
         for name in speed_columns:
             t[name] = rings[name] / stretch
+        _carry_correlations(rings, t)
         t["inclination"] = rings["inclination"]
         t["inclination_err"] = rings["inclination_err"]
         disp = dispersion if dispersion is not None else getattr(result.vmap, "dispersion", None)
@@ -221,8 +231,8 @@ class RotationCurve:
         meta["measured_quantity"] = "v_rotation_sin_i (low inclination: v_rotation and inclination are degenerate)" \
             if low else "v_rotation"
         t["flags"] = rings["flags"]
-        meta["error_components"] = "v_rotation_err = noise (max of formal, resampled), sides and inclination terms " \
-                                   "in quadrature"
+        meta["error_components"] = "v_rotation_err = random, geometry, beam and asymmetry parts in quadrature " \
+                                   "(fit.json error_model); covariance between rings: curve_covariance.ecsv"
         return cls(t, meta)
 
     def cautions(self) -> list:
@@ -231,6 +241,18 @@ class RotationCurve:
         if self.meta.get("rest_frame_correction") and convention.get("assumed"):
             return [convention["assumed"]]
         return []
+
+    def covariance(self) -> dict:
+        """The curve's covariance between rings, each part and the total, in (km/s)^2 (:mod:`.covariance`)."""
+        from .covariance import curve_covariance
+
+        return curve_covariance(self.table)
+
+    def write_covariance(self, path) -> None:
+        """Write ``curve_covariance.ecsv`` atomically (format in :mod:`.covariance`)."""
+        from .covariance import write_covariance
+
+        write_covariance(path, self.table["radius"], self.covariance())
 
     def write(self, path) -> None:
         """Write ``curve.ecsv`` atomically, with ``meta`` in the header."""

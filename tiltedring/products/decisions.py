@@ -172,8 +172,9 @@ def _centre(section: dict, result) -> list:
 
 def _resampling(section: dict, result) -> list:
     n = int(section.get("realisations") or 0)
-    return [("errors", f"noise term from the formal error and {plural(n, 'resampled noise field')} "
-                       f"(seed {section.get('seed')}), whichever is larger" + _extras(section))]
+    return [("errors", f"random part from the formal error and {plural(n, 'resampled noise field')} "
+                       f"(seed {section.get('seed')}, orientation held), whichever is larger; geometry, beam and "
+                       f"asymmetry parts added in quadrature" + _extras(section))]
 
 
 def _asymmetry(section: dict, result) -> list:

@@ -30,8 +30,8 @@ __all__ = ["plot_map", "plot_maps", "plot_geometry", "plot_rotation_curve", "plo
 PAGE = 7.0
 STAGE_STYLE = {"free": dict(marker="o", mfc="none", color=GREY, ms=3.5, ls="none", label="stage free"),
                "centred": dict(marker="s", mfc="none", color=TEAL, ms=3.5, ls="none", label="stage centred")}
-ERROR_STYLE = {"formal": ("-", SLATE), "resampled": ("--", TEAL), "sides": (":", COPPER),
-               "inclination": ("-.", "#7f4b80"), "beam": ((0, (5, 1.5, 1, 1.5)), "#5b7f3a")}
+ERROR_STYLE = {"formal": ("-", SLATE), "random": ("--", TEAL), "asymmetry": (":", COPPER),
+               "geometry": ("-.", "#7f4b80"), "beam": ((0, (5, 1.5, 1, 1.5)), "#5b7f3a")}
 
 
 def _figure(figsize, layout="constrained"):

@@ -32,15 +32,18 @@ from ..fitting.parameters import SPEEDS, Parameter
 __all__ = ["FitResult", "stage_table", "write_table", "plain_table", "ERROR_COLUMNS"]
 
 ERROR_COLUMNS = {
-    "v_rotation_err": "total uncertainty of v_rotation: noise term (larger of formal and resampled), sides and "
-                      "inclination terms in quadrature (widened to half of v_rotation at low inclination)",
-    "v_rotation_err_resampled": "scatter of v_rotation over refits of model + noise drawn with the residual map's "
-                                "power spectrum (seeded)",
+    "v_rotation_err": "total uncertainty of v_rotation: random, geometry, beam and asymmetry parts in quadrature "
+                      "(widened to half of v_rotation at low inclination); see error_model",
+    "v_rotation_err_random": "noise at the adopted geometry: resampled scatter with the orientation held (formal "
+                             "error without resampling); correlation with the k-th next ring: random_correlation_<k>",
+    "v_rotation_err_geometry": "response to the orientation's 1 sigma, hypot of v_rotation_shift_inclination and "
+                               "v_rotation_shift_position_angle (signed, fully correlated across rings)",
+    "v_rotation_err_beam": "the beam treatment's own uncertainty: half the spread of the beam-smearing-corrected "
+                           "v_rotation over the intensity assumptions of its forward model (exponential profile, "
+                           "uniform, the intensity map as given); 0 without the treatment",
+    "v_rotation_err_asymmetry": "sqrt(d^2 - s_d^2)/2 where approaching and receding halves differ (d) beyond their "
+                                "noise (s_d), else 0",
     "v_rotation_err_formal": "least-squares error scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)",
-    "v_rotation_err_sides": "half the difference between approaching-side and receding-side fits",
-    "v_rotation_err_inclination": "v_rotation cot(i) times the inclination error",
-    "v_rotation_err_beam": "half the spread of the beam-smearing-corrected v_rotation over the intensity assumptions "
-                           "of its forward model (exponential profile, uniform, the intensity map as given)",
     "<parameter>_err of geometry": "formal errors scaled as above; in the final table, errors of the regularised "
                                    "profile or of the robust average over rings",
 }
