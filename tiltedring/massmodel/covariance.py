@@ -12,12 +12,16 @@ exactly g g^T to C).
 File of a covariance matrix (:func:`read_covariance`), N x N over the curve's N rows (rings, in the
 order of ``curve.ecsv``, 0-based), in km^2/s^2:
 
-- ECSV: N rows and N columns named ``ring_0`` ... ``ring_<N-1>`` (plain ``0`` ... ``<N-1>`` also
-  read); row k is ring k. Columns may carry a unit convertible to km2 / s2 (none: km2 / s2). Other
-  columns (e.g. ``ring`` or ``radius``) are ignored.
+- ECSV, square: N rows and N columns named ``ring_0`` ... ``ring_<N-1>`` (plain ``0`` ... ``<N-1>``
+  also read); row k is ring k. Columns may carry a unit convertible to km2 / s2 (none: km2 / s2).
+  Other columns (e.g. ``ring`` or ``radius``) are ignored.
+- ECSV, by pairs: the fit's own ``curve_covariance.ecsv`` (:mod:`..products.covariance`), one row per
+  ordered pair of rings with columns ``ring_i``, ``ring_j`` and ``total`` (km2 / s2); its parts
+  are ignored here.
 - FITS: the first HDU holding a 2-D N x N image; BUNIT, when present, convertible to km2 / s2.
 
-The matrix must be finite, symmetric (to 1e-6 of its largest element) and positive definite.
+Rows and columns of rings without a usable speed may be blank (NaN): they are dropped with those
+rings. What remains must be finite, symmetric (to 1e-6 of its largest element) and positive definite.
 :func:`covariance_beside` finds ``<curve stem>_covariance.ecsv`` (or ``.fits``) next to a curve,
 e.g. ``curve_covariance.ecsv`` beside ``curve.ecsv``.
 """
@@ -61,6 +65,12 @@ def _read_ecsv(path) -> np.ndarray:
     from astropy.table import Table
 
     table = Table.read(path, format="ascii.ecsv")
+    if {"ring_i", "ring_j", "total"} <= set(table.colnames):  # the fit's own file, one row per pair of rings
+        i, j = np.asarray(table["ring_i"], int), np.asarray(table["ring_j"], int)
+        n = int(max(i.max(), j.max())) + 1 if len(table) else 0
+        cov = np.full((n, n), np.nan)
+        cov[i, j] = np.asarray(table["total"], float) * _unit_factor(table["total"].unit, str(path))
+        return cov
     n = len(table)
     for names in ([f"ring_{k}" for k in range(n)], [str(k) for k in range(n)]):
         if all(name in table.colnames for name in names):
@@ -81,7 +91,9 @@ def _read_fits(path) -> np.ndarray:
 
 
 def read_covariance(path, n: int | None = None) -> np.ndarray:
-    """The N x N covariance (km^2/s^2) from an ECSV or FITS file (module docstring); ``n``: the curve's rows."""
+    """The N x N covariance (km^2/s^2) from an ECSV or FITS file (module docstring); ``n``: the curve's rows.
+    Only the shape is checked here (blank rows belong to rings the curve cannot use); the rest when the
+    curve's usable rings are known (:func:`check_covariance`)."""
     from ..io.input_files import check_input_file
 
     path = check_input_file(path, "covariance file")
@@ -89,17 +101,22 @@ def read_covariance(path, n: int | None = None) -> np.ndarray:
         cov = _read_fits(path)
     else:
         cov = _read_ecsv(path)
-    return check_covariance(cov, n, f"covariance file {path}")
+    return check_covariance(cov, n, f"covariance file {path}", blank_rows=True)
 
 
-def check_covariance(cov, n: int | None = None, where: str = "covariance") -> np.ndarray:
-    """``cov`` as a float array, refused unless square (n x n when given), finite, symmetric, positive definite."""
+def check_covariance(cov, n: int | None = None, where: str = "covariance", blank_rows: bool = False) -> np.ndarray:
+    """``cov`` as a float array, refused unless square (n x n when given), finite, symmetric, positive definite.
+    ``blank_rows``: check only the shape and the rows and columns that are not wholly blank (NaN)."""
     cov = np.array(cov, dtype=float)
     if cov.ndim != 2 or cov.shape[0] != cov.shape[1]:
         raise InputError(f"{where}: shape {cov.shape} is not a square matrix")
     if n is not None and cov.shape[0] != n:
         raise InputError(f"{where}: {cov.shape[0]} x {cov.shape[0]} matrix for a curve of {n} rows; give one row "
                          "and column per ring of the curve, in its order")
+    if blank_rows:
+        keep = ~np.all(np.isnan(cov), axis=1)
+        check_covariance(cov[np.ix_(keep, keep)], where=where)
+        return cov
     if not np.all(np.isfinite(cov)):
         raise InputError(f"{where}: blank or infinite entries; every entry must be a number")
     scale = float(np.max(np.abs(cov))) if cov.size else 0.0

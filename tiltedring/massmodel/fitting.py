@@ -79,7 +79,7 @@ class CurveData:
         if not self.radius.shape == self.v.shape == self.v_err.shape:
             raise InputError("radius, speed and error of a curve must have one value per point each")
         if self.covariance is not None:
-            self.covariance = check_covariance(self.covariance, self.radius.size, "curve covariance")
+            self.covariance = check_covariance(self.covariance, self.radius.size, "curve covariance", blank_rows=True)
             self.covariance_kind = self.covariance_kind or "given"
             if self.covariance_kind not in ("given", "geometry"):
                 raise InputError("covariance_kind must be 'given' or 'geometry'")
@@ -88,7 +88,7 @@ class CurveData:
             raise InputError("a mass model needs at least three points with radius, speed and a positive error")
         self.radius, self.v, self.v_err = self.radius[ok], self.v[ok], self.v_err[ok]
         if self.covariance is not None:
-            self.covariance = self.covariance[np.ix_(ok, ok)]
+            self.covariance = check_covariance(self.covariance[np.ix_(ok, ok)], where="curve covariance")
         elif self.v_err_geometry is not None:
             from .covariance import with_correlated_term
 
