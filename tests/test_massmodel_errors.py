@@ -218,3 +218,25 @@ def test_command_line_reads_the_covariance_and_reports_it(tmp_path, reference_da
                  "--inclination-error", "3", "--out", str(tmp_path / "m2"), "-q"]) == 0
     rows = {r["parameter"]: r for r in Table.read(tmp_path / "m2" / "parameters.ecsv")}
     assert rows["inclination"]["unit"] == "deg" and rows["inclination"]["status"] == "free"
+
+
+def test_the_fits_own_pair_file_is_read_with_blank_rings(tmp_path):
+    """The fit writes curve_covariance.ecsv one row per pair of rings (products.covariance); the mass model
+    reads its total, and a ring without a usable speed (NaN row and column) is dropped with that ring.
+    Reference: the matrix built here with numpy (random diagonal plus a rank-one geometry term)."""
+    from tiltedring.massmodel.io import CurveData
+    from tiltedring.products.covariance import write_covariance
+
+    n = 5
+    e = np.array([3.0, 2.0, 2.5, 4.0, 3.5])
+    g = np.array([1.0, 2.0, 3.0, 3.0, 3.0])
+    total = np.diag(e**2) + np.outer(g, g)
+    total[0, :] = total[:, 0] = np.nan  # ring 0 has no usable speed
+    zero = np.zeros((n, n))
+    parts = {"total": total, "random": zero, "geometry": zero, "beam": zero, "asymmetry": zero, "widening": zero}
+    path = tmp_path / "curve_covariance.ecsv"
+    write_covariance(path, np.arange(1.0, n + 1) * u.arcsec, parts)
+    cov = read_covariance(path, n)
+    np.testing.assert_allclose(cov[1:, 1:], total[1:, 1:])
+    curve = CurveData(np.arange(1.0, n + 1), np.array([np.nan, 50, 80, 90, 95.0]), e, covariance=cov)
+    np.testing.assert_allclose(curve.covariance, total[1:, 1:])
