@@ -56,15 +56,18 @@ def test_three_starts_converge_to_one_centre_near_the_truth(large_field):
         assert abs(values[0] - truth[name]) < 3 * error, (name, values[0], truth[name], error)
 
 
-def test_analytic_derivatives_match_finite_differences(large_field):
-    """d model / d (x0, y0, v_sys) of centre_model against central differences (step 1e-4 px, km/s), away from
-    the ring nodes where dV/dR jumps: agreement to 1e-5 relative to the largest derivative."""
+@pytest.mark.parametrize("with_radial", [False, True])
+def test_analytic_derivatives_match_finite_differences(large_field, with_radial):
+    """d model / d (x0, y0, v_sys) of centre_model (with and without a radial-speed term) against central
+    differences (step 1e-4 px, km/s), away from the ring nodes where dV/dR jumps: agreement to 1e-5 relative to
+    the largest derivative."""
     vmap, truth, rings = large_field
     pixels = valid_pixels(vmap)
     x, y = pixels.x[::97], pixels.y[::97]
     radii = np.concatenate([[0.0], rings["radius"]])
     speeds = np.concatenate([[0.0], rings["v_rotation"]])
-    geometry = (vmap.sky_jacobian, truth["position_angle"], truth["inclination"], radii, speeds)
+    radial = -15.0 * np.tanh(radii / 30.0) if with_radial else None
+    geometry = (vmap.sky_jacobian, truth["position_angle"], truth["inclination"], radii, speeds, radial)
     centre = _start(truth, 0.3, -0.2, 0.0)
     _, jacobian, radius, _ = centre_model(x, y, centre, *geometry)
     step = 1e-4

@@ -5,6 +5,9 @@ phi, the inclination i and the rotation curve V(R) held::
 
     v(x, y) = v_sys + sin i V(R) cos theta,        f = V(R) cos theta = V(R) x_d / R
 
+(plus sin i V_r(R) sin theta when the rings fitted a radial speed: g = V_r y_d / R, with
+dg/dx_d = (V_r' - V_r / R) cos theta sin theta and dg/dy_d = V_r' sin^2 theta + (V_r / R) cos^2 theta)
+
 with the disc-plane coordinates of :mod:`..fitting.geometry`: (e, n) = J (x - x0, y - y0),
 x_d = e sin phi + n cos phi, y_d = (e cos phi - n sin phi) / cos i. V(R) is linear between nodes
 at the rings' radii (and from V = 0 at R = 0; held beyond the last), so dV/dR is piecewise
@@ -89,27 +92,44 @@ class CentreFit:
 
 
 def _curve(rings):
-    """Ring radii and speeds sorted, with V = 0 at R = 0 in front (so V / R stays finite at the centre)."""
+    """Ring radii, speeds and radial speeds (None when not given) sorted, with 0 at R = 0 in front (so V / R
+    stays finite at the centre)."""
     order = np.argsort(rings["radius"])
     radii = np.asarray(rings["radius"], float)[order]
     speeds = np.asarray(rings["v_rotation"], float)[order]
     ok = np.isfinite(radii) & np.isfinite(speeds) & (radii > 0)
-    return np.concatenate([[0.0], radii[ok]]), np.concatenate([[0.0], speeds[ok]])
+    radial = None
+    if rings.get("v_radial") is not None:
+        radial = np.nan_to_num(np.asarray(rings["v_radial"], float)[order][ok])
+        radial = np.concatenate([[0.0], radial])
+    return np.concatenate([[0.0], radii[ok]]), np.concatenate([[0.0], speeds[ok]]), radial
 
 
-def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, radii, speeds):
+def _profile(radius, radii, values):
+    """Linear interpolation of ``values`` at ``radius`` and its slope (0 beyond the last node)."""
+    k = np.clip(np.searchsorted(radii, radius, side="right") - 1, 0, len(radii) - 2)
+    slope = np.where(radius < radii[-1], (values[k + 1] - values[k]) / (radii[k + 1] - radii[k]), 0.0)
+    return np.interp(radius, radii, values), slope
+
+
+def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, radii, speeds, radial=None):
     """(model velocity, d model / d (x0, y0, v_sys, V_1 .. V_m) as an (n, 3 + m) array, R, cos theta) (module
     docstring); ``radii``/``speeds`` start with the node (0, 0), which is held."""
     radius, cos_t, sin_t = disc_coordinates(x, y, centre["x_center"], centre["y_center"], sky_jacobian,
                                             position_angle, inclination)
     sp, cp = np.sin(np.radians(position_angle)), np.cos(np.radians(position_angle))
     ci, si = np.cos(np.radians(inclination)), np.sin(np.radians(inclination))
-    v = np.interp(radius, radii, speeds)
-    k = np.clip(np.searchsorted(radii, radius, side="right") - 1, 0, len(radii) - 2)
-    slope = np.where(radius < radii[-1], (speeds[k + 1] - speeds[k]) / (radii[k + 1] - radii[k]), 0.0)
+    v, slope = _profile(radius, radii, speeds)
     over_r = np.where(radius > 0, v / np.maximum(radius, 1e-12), slope)
     df_dx = slope * cos_t**2 + over_r * sin_t**2
     df_dy = (slope - over_r) * cos_t * sin_t
+    model = centre["v_systemic"] + si * v * cos_t
+    if radial is not None:  # g = V_r(R) sin theta = V_r y_d / R
+        vr, vr_slope = _profile(radius, radii, radial)
+        vr_over_r = np.where(radius > 0, vr / np.maximum(radius, 1e-12), vr_slope)
+        df_dx = df_dx + (vr_slope - vr_over_r) * cos_t * sin_t
+        df_dy = df_dy + vr_slope * sin_t**2 + vr_over_r * cos_t**2
+        model = model + si * vr * sin_t
     jac = np.asarray(sky_jacobian, float)
     jacobian = np.empty((len(radius), 2 + len(radii)))
     for col, (je, jn) in enumerate(((jac[0, 0], jac[1, 0]), (jac[0, 1], jac[1, 1]))):
@@ -121,7 +141,7 @@ def centre_model(x, y, centre: dict, sky_jacobian, position_angle, inclination, 
         node = np.zeros(len(radii))
         node[j] = 1.0
         jacobian[:, 2 + j] = si * np.interp(radius, radii, node) * cos_t
-    return centre["v_systemic"] + si * v * cos_t, jacobian, radius, cos_t
+    return model, jacobian, radius, cos_t
 
 
 def _weights(radius, cos_t, residual, sigma, r_outer, softness, width):
@@ -135,7 +155,7 @@ def _weights(radius, cos_t, residual, sigma, r_outer, softness, width):
     return geo, np.minimum(1.0, HUBER_K * max(scale, 1e-12) / np.maximum(np.abs(z), 1e-12)), core
 
 
-def _solve(pixels, centre, speeds, free, geometry, sigma, limits):
+def _solve(pixels, centre, speeds, free, geometry, sigma, limits, radial=None):
     """Damped Gauss-Newton on the ``free`` centre columns from ``centre``, the curve ``speeds`` held; returns
     (centre, converged, steps, last (model, jacobian, geometric weight, huber weight, core mask))."""
     x, y, v = pixels
@@ -145,7 +165,7 @@ def _solve(pixels, centre, speeds, free, geometry, sigma, limits):
     tolerance = np.full(int(columns.sum()), 0.01)  # px, km/s
     damping, converged = 1e-3, False
     for step in range(1, MAX_STEPS + 1):
-        model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds)
+        model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds, radial)
         residual = v - model
         geo, hub, core = _weights(radius, cos_t, residual, sigma, *limits)
         w = geo * hub / sigma**2
@@ -161,7 +181,7 @@ def _solve(pixels, centre, speeds, free, geometry, sigma, limits):
             trial = dict(centre)
             for name, d in zip(names, delta):
                 trial[name] += float(d)
-            new_residual = v - centre_model(x, y, trial, *geometry, speeds)[0]
+            new_residual = v - centre_model(x, y, trial, *geometry, speeds, radial)[0]
             if float(np.sum(w * new_residual**2)) <= cost or damping > 1e6:
                 break
             damping *= 10.0
@@ -170,7 +190,7 @@ def _solve(pixels, centre, speeds, free, geometry, sigma, limits):
         if np.all(np.abs(delta) < tolerance):
             converged = True
             break
-    model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds)
+    model, jacobian, radius, cos_t = centre_model(x, y, centre, *geometry, speeds, radial)
     geo, hub, core = _weights(radius, cos_t, v - model, sigma, *limits)
     return centre, converged, step, (model, jacobian, geo, hub, core)
 
@@ -198,11 +218,11 @@ def refine_centre(vmap, pixels, rings: dict, r_outer: float, start: dict, fixed=
     free = np.array([n not in fixed for n in NAMES])
     if not free.any():
         return CentreFit(dict(start), {}, converged=True)
-    radii, speeds = _curve(rings)
+    radii, speeds, radial = _curve(rings)
     geometry = (vmap.sky_jacobian, float(rings["position_angle"]), float(rings["inclination"]), radii)
     width = float(ring_width) if ring_width else 0.1 * r_outer
     limits = (float(r_outer), max(0.25 * width, 1e-3), width)
-    centre, converged, steps, last = _solve((x, y, v), start, speeds, free, geometry, sigma, limits)
+    centre, converged, steps, last = _solve((x, y, v), start, speeds, free, geometry, sigma, limits, radial)
     model, jacobian, geo, hub, core = last
     residual = v - model
     chi2 = float(np.sum(geo * (residual / sigma) ** 2) / max(np.sum(geo) - free.sum(), 1.0))
