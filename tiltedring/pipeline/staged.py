@@ -46,7 +46,8 @@ def fit_velocity_map(vmap: VelocityMap, options: FitOptions | None = None, **opt
     judge at a geometry fitted without it. When the diagnostics flag radial flows in three or more
     rings (and ``fit_radial`` is off and v_radial not fixed), the fit is run again with v_radial
     free in every stage, and that run is adopted only when it lowers the disc-wide BIC by more than
-    10 (:func:`compare_radial`). Either way the comparison is reported in ``diagnostics``.
+    10, or by more than 30 when it turns the position angle or inclination by more than three times
+    their errors (:func:`compare_radial`). Either way the comparison is reported in ``diagnostics``.
 
     A map whose fit would need more memory than is available is refused before fitting, with the
     binning factor (:func:`.binning.bin_map`) that would fit.
@@ -85,14 +86,35 @@ def radial_rerun_wanted(result, options) -> bool:
     return options.diagnostics and not options.fit_radial and "v_radial" not in options.fixed and radial_rings >= 3
 
 
+def _geometry_turn(circular, radial) -> float:
+    """The largest change of the disc's median position angle or inclination between the two runs, in units of
+    the circular run's median error of that angle (0 when an error is unknown)."""
+    from ..fitting.geometry import centre_angle
+
+    turns = [0.0]
+    for name in ("position_angle", "inclination"):
+        a, b = np.asarray(circular[name], float), np.asarray(radial[name], float)
+        err = float(np.nanmedian(np.asarray(circular[f"{name}_err"], float)))
+        if not np.isfinite(err) or err <= 0:
+            continue
+        ref = float(np.nanmedian(a))
+        if name == "position_angle":
+            a, b = centre_angle(a, ref), centre_angle(b, ref)
+        turns.append(abs(float(np.nanmedian(b) - np.nanmedian(a))) / err)
+    return float(np.nanmax(turns))
+
+
 def compare_radial(circular, radial, pixels_per_beam: float, min_delta_bic: float = 10.0,
-                   min_amplitude: float = 5.0) -> dict:
+                   min_amplitude: float = 5.0, turning_delta_bic: float = 30.0) -> dict:
     """Disc-wide BIC of the final-stage fits with and without v_radial (pixel-correlation corrected).
 
     chi^2 of each run = sum over rings of chi2_reduced (n_pixels - k); s^2 = the radial run's
     chi^2 per degree of freedom; BIC = chi^2 / (s^2 p) + k_total ln(n / p), p pixels per beam.
     Adopted when delta BIC > ``min_delta_bic`` and the median |v_radial| exceeds both
-    ``min_amplitude`` km/s and three times its median error.
+    ``min_amplitude`` km/s and three times its median error. A radial run that turns the disc's
+    position angle or inclination by more than three times its error needs delta BIC >
+    ``turning_delta_bic``: a turned major axis and a radial flow are nearly degenerate, and residual
+    structure the models lack (spiral streaming, a skewed velocity map) tips a BIC near 10 either way.
     """
     ok = np.isfinite(np.asarray(circular["chi2_reduced"], float)) & np.isfinite(np.asarray(radial["chi2_reduced"], float))
     if ok.sum() < 2:
@@ -108,7 +130,10 @@ def compare_radial(circular, radial, pixels_per_beam: float, min_delta_bic: floa
     vr = radial["v_radial"].value[ok]
     er = radial["v_radial_err"].value[ok]
     amplitude, error = float(np.nanmedian(np.abs(vr))), float(np.nanmedian(er))
-    adopted = bool(delta > min_delta_bic and amplitude > max(min_amplitude, 3 * error))
+    turn = _geometry_turn(circular, radial)
+    needed = turning_delta_bic if turn > 3.0 else min_delta_bic
+    adopted = bool(delta > needed and amplitude > max(min_amplitude, 3 * error))
     return {"adopted": adopted, "delta_bic": float(delta), "median_abs_v_radial": amplitude,
-            "median_v_radial_err": error,
-            "criterion": f"delta BIC > {min_delta_bic} and median |v_radial| > max({min_amplitude} km/s, 3 x its error)"}
+            "median_v_radial_err": error, "geometry_turn_sigma": turn,
+            "criterion": f"delta BIC > {min_delta_bic} ({turning_delta_bic} when the geometry turns by more than 3 "
+                         f"sigma) and median |v_radial| > max({min_amplitude} km/s, 3 x its error)"}
