@@ -6,7 +6,8 @@ own column, and their sum in quadrature, ``v_rotation_err``:
 - ``v_rotation_err_random``: the noise at the adopted geometry — the resampled scatter
   (:mod:`..fitting.resampling`: noise fields with the residual's power spectrum through the fit's
   first-order response, the orientation held), enlarged as the beam treatment enlarged the formal
-  error (:func:`noise_gain`); without resampling, ``v_rotation_err_formal`` (least squares, scaled by
+  error (:func:`noise_gain`), or, for a treatment that states no noise of its own, each draw carried
+  through its linearisation (:func:`beam_propagation`); without resampling, ``v_rotation_err_formal`` (least squares, scaled by
   sqrt(reduced chi-square) and sqrt(pixels per beam), as the beam treatment left it). The correlation of each ring with its next ``k`` neighbours out (those within a
   beam) is in ``random_correlation_<k>``;
 - ``v_rotation_err_geometry``: the response to the orientation's 1 sigma, from the signed columns
@@ -48,8 +49,9 @@ ERROR_MODEL = {
     "total": "v_rotation_err = sqrt(random^2 + geometry^2 + beam^2 + asymmetry^2); below the low-inclination "
              "limit widened to at least v_rotation / 2",
     "random": "v_rotation_err_random: scatter of v_rotation over refits (first order) of model + noise fields "
-              "with the residual map's power spectrum, orientation held at the adopted values, enlarged as the beam "
-              "treatment enlarged the formal error; the formal error (scaled by sqrt(reduced chi-square) and "
+              "with the residual map's power spectrum, orientation held at the adopted values, carried through the "
+              "beam correction (as it enlarged the formal error, or through its linearisation when it states no "
+              "noise of its own); the formal error (scaled by sqrt(reduced chi-square) and "
               "sqrt(pixels per beam)) when no resampling ran. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
               "beam; 0 beyond)",
     "geometry": "v_rotation_err_geometry = hypot(v_rotation_shift_inclination, v_rotation_shift_position_angle): "
