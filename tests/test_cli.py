@@ -24,7 +24,8 @@ def demo_run(tmp_path_factory):
 def test_fit_writes_every_output(demo_run):
     code, out, demo = demo_run
     assert code == 0
-    assert {p.name for p in out.iterdir()} == {".tiltedring-output.json", "rings.ecsv", "curve.ecsv", "stage_free.ecsv", "stage_centred.ecsv",
+    assert {p.name for p in out.iterdir()} == {".tiltedring-output.json", "rings.ecsv", "curve.ecsv",
+                                              "curve_covariance.ecsv", "stage_free.ecsv", "stage_centred.ecsv",
                                               "model.fits", "residual.fits", "fit.json", "report.pdf"}
     rings = Table.read(out / "rings.ecsv")
     assert str(rings["v_rotation"].unit) == "km / s" and str(rings["radius"].unit) == "arcsec"
