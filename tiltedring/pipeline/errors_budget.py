@@ -208,9 +208,14 @@ def orientation_spread(state) -> tuple:
     scatter about it beyond their noise (:func:`.error_parts.excess_scatter`, rings of stage ``centred`` that
     informed the geometry) added in quadrature to its error: the error of one ring's orientation, not only of
     the mean. 0 for a flat disc seen through noise alone; a warp too small to be detected, or non-circular
-    motions that turn the rings, make it larger."""
+    motions that turn the rings, make it larger. When the geometry decision found an inner change (the outer
+    value adopted for every ring), only the rings outside it count: the inner rings' departure is reported
+    as that decision, not as an error of the disc's orientation."""
     stage, profile = state.centred_rings, state.geometry.profile
-    used = profile.used if profile.used is not None else stage.usable
+    used = np.array(profile.used if profile.used is not None else stage.usable, bool)
+    inner = state.geometry.summary.get("inner_change")
+    if inner:
+        used = used & (state.layout.radii >= inner["radius"])
     columns, summary = {}, {}
     if state.geometry.warped:
         return columns, summary
