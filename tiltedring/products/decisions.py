@@ -173,8 +173,23 @@ def _centre(section: dict, result) -> list:
 def _resampling(section: dict, result) -> list:
     n = int(section.get("realisations") or 0)
     return [("errors", f"random part from the formal error and {plural(n, 'resampled noise field')} "
-                       f"(seed {section.get('seed')}, orientation held), whichever is larger; geometry, beam and "
-                       f"asymmetry parts added in quadrature" + _extras(section))]
+                       f"(seed {section.get('seed')}, orientation held), whichever is larger" + _extras(section))]
+
+
+def _orientation_spread(section: dict, result) -> list:
+    spread = {k: v for k, v in (section.get("degrees") or {}).items() if v is not None and np.isfinite(v)}
+    if not spread:
+        return []
+    if not any(v > 0.05 for v in spread.values()):
+        return [("orientation spread", "the rings agree with the adopted orientation within their noise")]
+    return [("orientation spread", "rings scatter about the adopted orientation beyond their noise by " +
+             ", ".join(f"{k.replace('_', ' ')} {_number(v, '.1f')} deg" for k, v in spread.items()) +
+             " (added to each ring's orientation error)")]
+
+
+def _error_model(section: dict, result) -> list:
+    return [("error parts", "v_rotation_err = random, geometry (correlated across rings), beam and asymmetry parts "
+                            "in quadrature; covariance between rings in curve_covariance.ecsv")]
 
 
 def _asymmetry(section: dict, result) -> list:
@@ -205,8 +220,10 @@ def _generic(key: str, section) -> list:
 
 
 _KNOWN = {"warp": _warp, "non_circular": _non_circular, "radial_test": _radial_test, "beam_smearing": _beam,
-          "centre": _centre, "resampling": _resampling, "asymmetry": _asymmetry}
-_ORDER = ("centre", "warp", "beam_smearing", "non_circular", "radial_test", "asymmetry", "resampling")
+          "centre": _centre, "resampling": _resampling, "asymmetry": _asymmetry,
+          "orientation_spread": _orientation_spread, "error_model": _error_model}
+_ORDER = ("centre", "warp", "beam_smearing", "non_circular", "radial_test", "asymmetry", "resampling",
+          "orientation_spread", "error_model")
 
 
 def decision_lines(result) -> list:
