@@ -65,6 +65,25 @@ def _design(r, onset, degree, outward=True):
     return np.column_stack([np.ones_like(r)] + [d**p for p in range(1, degree + 1)])
 
 
+def _best_changes(rt, values: dict, errors: dict, min_flat_rings: int) -> dict:
+    """Per direction (True: a warp beyond an onset; False: an inner change inside it), the lowest-BIC
+    (chi2, parameter count, onset, degree, fits) over the onsets at the tested rings and degrees 1 and 2."""
+    n, m, best = len(rt), min_flat_rings, {}
+    for outward, onsets in ((True, rt[m - 1:-3]), (False, rt[3:len(rt) - m + 1])):
+        for onset in onsets:
+            for degree in (1, 2):
+                k = len(values) * (degree + 1) + 1
+                if n - k < 2:
+                    continue
+                a = _design(rt, onset, degree, outward)
+                fits = {name: _weighted(a, values[name], errors[name]) for name in values}
+                chi2 = sum(f[2] for f in fits.values())
+                old = best.get(outward)
+                if old is None or chi2 + k * np.log(n) < old[0] + old[1] * np.log(n):
+                    best[outward] = (chi2, k, onset, degree, fits)
+    return best
+
+
 def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test: WarpTest = WarpTest()):
     """Decide flat or warped and return the :class:`GeometryProfile` (module docstring).
 
@@ -89,21 +108,8 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
     flat = {name: _weighted(np.ones((n, 1)), values[name][tested], errors[name][tested]) for name in free}
     chi2_flat = sum(f[2] for f in flat.values())
     constant = {name: float(np.median(values[name][ok])) for name in ("pa", "inc")}
-    best = {}
-    if n >= 6 and free:
-        m = test.min_inner_rings
-        for outward, onsets in ((True, rt[m - 1:-3]), (False, rt[3:len(rt) - m + 1])):
-            for onset in onsets:
-                for degree in (1, 2):
-                    k = len(free) * (degree + 1) + 1
-                    if n - k < 2:
-                        continue
-                    a = _design(rt, onset, degree, outward)
-                    fits = {name: _weighted(a, values[name][tested], errors[name][tested]) for name in free}
-                    chi2 = sum(f[2] for f in fits.values())
-                    old = best.get(outward)
-                    if old is None or chi2 + k * np.log(n) < old[0] + old[1] * np.log(n):
-                        best[outward] = (chi2, k, onset, degree, fits)
+    best = _best_changes(rt, {name: values[name][tested] for name in free},
+                         {name: errors[name][tested] for name in free}, test.min_inner_rings) if n >= 6 and free else {}
     summary = {"detected": False, "onset_radius": None, "twist": 0.0, "tilt": 0.0, "delta_bic": None,
                "rings_tested": n, "test": "flat versus warp beyond an onset radius versus inner change (BIC)",
                "thresholds": {"min_delta_bic": test.min_delta_bic, "min_change_deg": test.min_change,

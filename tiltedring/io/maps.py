@@ -477,6 +477,33 @@ def _velocity_like(source, role, vmap, own_unit, velocity_unit, notes):
     return data, name
 
 
+
+def _attach_maps(vmap, error, dispersion, intensity, error_unit, velocity_unit, notes) -> None:
+    """The error, dispersion and intensity maps, checked and put on the velocity map's grid, into ``vmap``."""
+    if error is not None:
+        edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
+        bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
+        if bad.any():
+            raise InputError(
+                f"error map {ename} has {int(bad.sum())} zero or negative value{'' if bad.sum() == 1 else 's'} where "
+                "the velocity map is "
+                "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
+            )
+        vmap.error = edata
+    if dispersion is not None:
+        vmap.dispersion, _ = _velocity_like(dispersion, "dispersion map", vmap, error_unit, velocity_unit, notes)
+    if intensity is not None:
+        idata, iheader, iname = load_image(intensity, "intensity map")
+        vmap.intensity_unit = str(iheader.get("BUNIT", "")).strip() or None
+        idata = _finite_check(regrid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
+        on_disc = np.isfinite(vmap.velocity) & np.isfinite(idata)
+        if not (on_disc & (np.nan_to_num(idata) > 0)).any():
+            raise InputError(f"intensity map {iname} has no positive value where the velocity map has data (it does not "
+                             "overlap it on the sky, or is blank or negative there); give the moment-0 map of the same "
+                             "galaxy")
+        vmap.intensity = idata
+
+
 def read_velocity_map(
     source,
     *,
@@ -536,28 +563,7 @@ def read_velocity_map(
         notes.append(f"the map's celestial frame is {vmap.celestial_frame}: ra_center/dec_center in the tables are "
                      "ICRS, converted with astropy (and --ra-center/--dec-center are read as ICRS)")
 
-    if error is not None:
-        edata, ename = _velocity_like(error, "error map", vmap, error_unit, velocity_unit, notes)
-        bad = np.isfinite(vmap.velocity) & np.isfinite(edata) & (edata <= 0)
-        if bad.any():
-            raise InputError(
-                f"error map {ename} has {int(bad.sum())} zero or negative value{'' if bad.sum() == 1 else 's'} where "
-                "the velocity map is "
-                "valid; errors must be positive (blank those pixels with NaN or fix the error map)"
-            )
-        vmap.error = edata
-    if dispersion is not None:
-        vmap.dispersion, _ = _velocity_like(dispersion, "dispersion map", vmap, error_unit, velocity_unit, notes)
-    if intensity is not None:
-        idata, iheader, iname = load_image(intensity, "intensity map")
-        vmap.intensity_unit = str(iheader.get("BUNIT", "")).strip() or None
-        idata = _finite_check(regrid(idata, iheader, vmap, "intensity map", iname, notes), "intensity map", iname, notes)
-        on_disc = np.isfinite(vmap.velocity) & np.isfinite(idata)
-        if not (on_disc & (np.nan_to_num(idata) > 0)).any():
-            raise InputError(f"intensity map {iname} has no positive value where the velocity map has data (it does not "
-                             "overlap it on the sky, or is blank or negative there); give the moment-0 map of the same "
-                             "galaxy")
-        vmap.intensity = idata
+    _attach_maps(vmap, error, dispersion, intensity, error_unit, velocity_unit, notes)
     if not vmap.valid.any():
         raise InputError(f"velocity map {name} has no pixel with both a finite velocity and a positive error")
     from .map_checks import check_spread
