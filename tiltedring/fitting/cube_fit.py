@@ -20,6 +20,10 @@ noise::
    each summed in a fixed order (:mod:`.normal_equations`), so the result does not depend on the
    number of threads.
 3. The outer rings keep the map's v_rotation; their dispersion is matched again to the final model.
+   A ring whose matched dispersion runs to the floor or above 50 km/s is no measurement (faint lines,
+   or the map curve off on the ring or a neighbour: the lines then sit beside the reference velocity
+   field, whose speed is interpolated between ring centres): its dispersion and error are left blank
+   (NaN) with a caution; the model cube keeps the matched value there.
 
 Errors of the fitted rings: the covariance (J^T J)^-1 scaled by chi^2 per degree of freedom and by
 the number of pixels per beam (noise correlated by the beam; times 8/3 for Hanning-smoothed channels,
@@ -135,19 +139,32 @@ def fit_curve_on_cube(cube, rings: dict, edges, within_beams: float = 4.0, subpi
         for name in err:
             err[name][inner] = fitted[f"{name}_err"]
     outer = everything[~np.isin(everything, inner)]
+    blank = np.zeros(len(everything), bool)
     if len(outer):
         err["dispersion"][outer] = spread.match(table, edges[-1], outer, passes)
-        odd = outer[(table["dispersion"][outer] <= MIN_DISPERSION * 1.001) | (table["dispersion"][outer] > 50.0)]
-        if odd.size:
-            cautions.append("dispersion matched by line width at its floor or above 50 km/s at radius "
-                            + ", ".join(f"{r:.1f}" for r in table["radius"][odd]) + " arcsec: faint or noisy "
-                            "lines, or a map curve far from the data there; do not trust those values")
+        blank, caution = _unmeasurable(table, outer)
+        cautions += caution
     model = model_cube(grid, table, edges[-1], subpixels=subpixels, threads=threads)
+    table["dispersion"] = np.where(blank, np.nan, table["dispersion"])
+    err["dispersion"][blank] = np.nan
     table["v_rotation_err"] = err["v_rotation"]
     table["dispersion_err"] = err["dispersion"]
     treatment = np.where(np.isin(everything, inner), "cube", "map")
     record["rings_fitted_to_cube"] = [float(r) for r in table["radius"][inner]]
     return CubeCurve(rings=table, treatment=treatment, model=model, record=record, cautions=cautions)
+
+
+def _unmeasurable(table, outer):
+    """Outer rings whose matched dispersion is no measurement (module docstring, step 3): a mask over all
+    rings and the caution saying so."""
+    sigma, radius = table["dispersion"], table["radius"]
+    odd = np.zeros(len(radius), bool)
+    odd[outer] = (sigma[outer] <= MIN_DISPERSION * 1.001) | (sigma[outer] > 50.0)
+    if not odd.any():
+        return odd, []
+    return odd, ["dispersion not measurable by line width at radius " + ", ".join(f"{r:.1f}" for r in radius[odd])
+                 + f" arcsec (matched to its floor of {MIN_DISPERSION} km/s or above 50 km/s: faint or noisy lines, or "
+                 "a map curve far from the data on the ring or its neighbours); left blank"]
 
 
 class _LineWidths:
