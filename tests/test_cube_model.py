@@ -148,7 +148,7 @@ def test_innermost_ring_after_a_map_fit(chained):
 
 def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
     """The whole chain: beyond half a beam the curve within 5 % out to 2 beams and the dispersion within
-    3 km/s beyond 2 beams (where the map curve is sane);
+    3 km/s beyond 2 beams (where the map curve is sane), elsewhere beyond 2 beams right or blank with a caution;
     rings.ecsv keeps the map values, fit.json says which rings were fitted how, and the model and
     residual cubes are written with a spectral WCS (read back by astropy.wcs)."""
     result, cube, truth = chained
@@ -158,12 +158,25 @@ def test_curve_from_cube_after_a_map_fit(chained, tmp_path):
     ratio = table["v_rotation"].value / truth["v_rotation"](radius)
     inner = (radius > 0.5 * beam) & (radius <= 2 * beam)
     assert np.all(np.abs(ratio[inner] - 1) < 0.05), ratio[inner]
-    # beyond 2 beams where the map curve itself is sane (within 5 %): the outer rings' line widths are
-    # measured about the map's velocity field, and the faint outer disc (peak S/N < 2) has a noisy map
+    # beyond 2 beams the line widths are matched about the map's velocity field, whose speed is interpolated
+    # between ring centres, so a ring's width needs the map curve sane (within 5 %) on the ring and on both
+    # neighbours; the faint outer disc (peak S/N < 2) has a noisy map. (Measured: the ring at 8.5 beams,
+    # its own map speed 1.3 % off but the next ring's 35 % low, matched to 1 km/s; with the map speed
+    # beyond it replaced by its own, 9.6 km/s.) There the dispersion is within 3 km/s (ours); on every
+    # other outer ring it is within 3 km/s or left blank with a caution naming the ring (rule 6): the code
+    # blanks a ring where the map's own errors, on the ring or a neighbour, make the reference too uncertain.
     sane = np.abs(table["v_rotation_map"].value / truth["v_rotation"](radius) - 1) < 0.05
-    outer = (radius > 2 * beam) & sane
-    assert outer.sum() >= 3
-    assert np.all(np.abs(table["dispersion"].value[outer] - truth["dispersion"]) < 3.0)
+    outer = radius > 2 * beam
+    measured = outer & sane & np.r_[True, sane[:-1]] & np.r_[sane[1:], True]
+    assert measured.sum() >= 3
+    sigma = table["dispersion"].value
+    assert np.all(np.abs(sigma[measured] - truth["dispersion"]) < 3.0), sigma
+    blank = outer & ~np.isfinite(sigma)
+    assert np.all((np.abs(sigma[outer] - truth["dispersion"]) < 3.0) | blank[outer]), sigma
+    assert np.all(~np.isfinite(table["dispersion_err"].value[blank]))
+    if blank.any():
+        caution = " ".join(c for c in result.cautions if c.startswith("dispersion not measurable"))
+        assert all(f"{r:.1f} " in caution or f"{r:.1f}," in caution for r in radius[blank]), caution
     folder = result.write(tmp_path / "fit")
     rings = Table.read(folder / "rings.ecsv")
     for column in ("v_rotation_map", "v_rotation_err_map", "dispersion", "dispersion_err", "curve_source"):

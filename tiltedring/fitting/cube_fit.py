@@ -20,6 +20,18 @@ noise::
    each summed in a fixed order (:mod:`.normal_equations`), so the result does not depend on the
    number of threads.
 3. The outer rings keep the map's v_rotation; their dispersion is matched again to the final model.
+   The widths are measured about the map curve's velocity field, whose speed is interpolated between
+   ring centres, so the map's v_rotation errors e (when given) scatter the reference along the line of
+   sight by about::
+
+       delta_j = sin(i_j) max(e_j, e_(j-1) / 2, e_(j+1) / 2) / sqrt(2)
+
+   (rms of cos(theta) is 1/sqrt(2); a neighbour's speed weighs at most 1/2 inside the ring). Such a
+   scatter broadens the data's lines, sigma^2 + delta^2, so ``dispersion_err`` gains
+   sqrt(sigma^2 + delta^2) - sigma in quadrature. A ring's dispersion is not measurable, left blank
+   (NaN, with its error) with a caution, when delta_j > sigma_j / 2 (ours: the reference's scatter then
+   adds more than 12 % to the width), or when the matched value runs to the floor or above 50 km/s
+   (faint or noisy lines). The model cube keeps the matched value there.
 
 Errors of the fitted rings: the covariance (J^T J)^-1 scaled by chi^2 per degree of freedom and by
 the number of pixels per beam (noise correlated by the beam; times 8/3 for Hanning-smoothed channels,
@@ -135,19 +147,56 @@ def fit_curve_on_cube(cube, rings: dict, edges, within_beams: float = 4.0, subpi
         for name in err:
             err[name][inner] = fitted[f"{name}_err"]
     outer = everything[~np.isin(everything, inner)]
+    blank = np.zeros(len(everything), bool)
     if len(outer):
         err["dispersion"][outer] = spread.match(table, edges[-1], outer, passes)
-        odd = outer[(table["dispersion"][outer] <= MIN_DISPERSION * 1.001) | (table["dispersion"][outer] > 50.0)]
-        if odd.size:
-            cautions.append("dispersion matched by line width at its floor or above 50 km/s at radius "
-                            + ", ".join(f"{r:.1f}" for r in table["radius"][odd]) + " arcsec: faint or noisy "
-                            "lines, or a map curve far from the data there; do not trust those values")
+        delta = _reference_scatter(table, rings)
+        sigma = table["dispersion"]
+        err["dispersion"][outer] = np.hypot(err["dispersion"], np.hypot(sigma, delta) - sigma)[outer]
+        blank, caution = _unmeasurable(table, outer, delta)
+        cautions += caution
     model = model_cube(grid, table, edges[-1], subpixels=subpixels, threads=threads)
+    table["dispersion"] = np.where(blank, np.nan, table["dispersion"])
+    err["dispersion"][blank] = np.nan
     table["v_rotation_err"] = err["v_rotation"]
     table["dispersion_err"] = err["dispersion"]
     treatment = np.where(np.isin(everything, inner), "cube", "map")
     record["rings_fitted_to_cube"] = [float(r) for r in table["radius"][inner]]
     return CubeCurve(rings=table, treatment=treatment, model=model, record=record, cautions=cautions)
+
+
+def _reference_scatter(table, rings) -> np.ndarray:
+    """delta_j (module docstring, step 3) from the map's ``v_rotation_err`` (0 without it; infinite on a ring
+    without a map speed)."""
+    if "v_rotation_err" not in rings:
+        return np.zeros(len(table["radius"]))
+    order = np.argsort(np.asarray(rings["radius"], float))
+    e = np.abs(np.asarray(rings["v_rotation_err"], float)[order])
+    e[~np.isfinite(e) | ~np.isfinite(np.asarray(rings["v_rotation"], float)[order])] = np.inf
+    half = 0.5 * e
+    reach = np.maximum(e, np.maximum(np.r_[0.0, half[:-1]], np.r_[half[1:], 0.0]))
+    return np.sin(np.radians(table["inclination"])) * reach / np.sqrt(2.0)
+
+
+def _unmeasurable(table, outer, delta):
+    """Outer rings whose matched dispersion is no measurement (module docstring, step 3): a mask over all
+    rings and the cautions saying why."""
+    sigma, radius = table["dispersion"], table["radius"]
+    scattered, odd = np.zeros(len(radius), bool), np.zeros(len(radius), bool)
+    scattered[outer] = delta[outer] > 0.5 * sigma[outer]
+    odd[outer] = ~scattered[outer] & ((sigma[outer] <= MIN_DISPERSION * 1.001) | (sigma[outer] > 50.0))
+    def listed(mask):
+        return ", ".join(f"{r:.1f}" for r in radius[mask])
+
+    cautions = []
+    if scattered.any():
+        cautions.append(f"dispersion not measurable by line width at radius {listed(scattered)} arcsec: the map "
+                        "curve's errors there (on the ring or a neighbour) scatter the reference velocity field by "
+                        "more than half the line width; left blank")
+    if odd.any():
+        cautions.append(f"dispersion not measurable by line width at radius {listed(odd)} arcsec: matched to its "
+                        f"floor of {MIN_DISPERSION} km/s or above 50 km/s (faint or noisy lines); left blank")
+    return scattered | odd, cautions
 
 
 class _LineWidths:

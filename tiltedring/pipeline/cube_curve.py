@@ -51,8 +51,8 @@ def refit_curve_on_cube(result, cube, within_beams: float = 4.0, response: str =
     from ..fitting.cube_fit import fit_curve_on_cube
 
     table = result.rings
-    rings = {name: np.asarray(getattr(table[name], "value", table[name]), float) for name in ("radius",) + PARAMETERS
-             if name in table.colnames}
+    rings = {name: np.asarray(getattr(table[name], "value", table[name]), float)
+             for name in ("radius",) + PARAMETERS + ("v_rotation_err",) if name in table.colnames}
     order = np.argsort(rings["radius"])
     if np.any(order != np.arange(len(order))):
         raise ValueError("the ring table must be sorted by radius")
