@@ -118,7 +118,8 @@ def test_exponential_profile_is_recovered_through_the_beam():
 def test_a_correction_that_fits_worse_falls_back_with_a_caution(monkeypatch, quiet):
     """When the corrected disc's smeared model does not fit the data at least as well as the uncorrected
     model (forced here by a threshold no model can meet), the uncorrected curve is kept, fit.json says why and
-    the run's cautions say the inner curve is biased low."""
+    the run's cautions say the inner curve is biased low. The bias the correction would have removed becomes
+    v_rotation_err_beam (positive inside two beams, and part of the total in quadrature)."""
     from tiltedring.pipeline import beam
 
     monkeypatch.setattr(beam, "WORSE", -np.inf)
@@ -129,3 +130,9 @@ def test_a_correction_that_fits_worse_falls_back_with_a_caution(monkeypatch, qui
     assert section["corrected"] is False and "worse" in section["fallback"]
     assert "v_rotation_smeared" not in res.rings.colnames
     assert any("not applied" in c for c in res.cautions)
+    r = res.rings["radius"].value
+    bias = res.rings["v_rotation_err_beam"].value
+    inner = (r < 2 * 8.0) & np.isfinite(res.rings["v_rotation"].value)
+    assert np.all(bias[inner] > 0)
+    total = res.rings["v_rotation_err"].value
+    assert np.all(total[inner] >= bias[inner])

@@ -118,12 +118,18 @@ def intensity_assumptions(vmap, kernel, geometry: dict, r_outer: float) -> dict:
             "map as given": (np.clip(np.nan_to_num(given), 0.0, None), "the smeared intensity map as given")}
 
 
-def _fallback(summary: dict, reason: str) -> Additions:
-    """The uncorrected curve kept: the summary says why, and a caution is raised."""
+def _fallback(summary: dict, reason: str, bias=None) -> Additions:
+    """The uncorrected curve kept: the summary says why, and a caution is raised. ``bias``: per ring, the change
+    the correction would have made; the uncorrected curve keeps a smearing bias of about that size, so it
+    becomes the ring table's ``v_rotation_err_beam`` (a systematic, fully correlated like the beam part)."""
     summary.update({"corrected": False, "fallback": reason})
     caution = (f"beam-smearing correction not applied ({reason}): v_rotation within about two beams of the centre "
-               "is biased low")
-    return Additions(summaries={"beam_smearing": summary}, cautions=[caution])
+               "is biased low" + ("; the size of the bias is in v_rotation_err_beam" if bias is not None else ""))
+    fields = {} if bias is None else {"beam_bias": bias}
+    if bias is not None:
+        summary["uncertainty"] = ("v_rotation_err_beam: the change the correction would have made (the bias the "
+                                  "uncorrected curve keeps)")
+    return Additions(fields=fields, summaries={"beam_smearing": summary}, cautions=[caution])
 
 
 def _orientation_errors(state, names) -> np.ndarray:
@@ -193,8 +199,10 @@ def beam_treatment(state) -> Additions:
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
     if summary["misfit_change_beams"] > WORSE:
+        bias = np.full(len(layout), np.nan)
+        bias[ok] = np.abs(solution.x[:n] - target[:n])
         return _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
-                                  "uncorrected model")
+                                  "uncorrected model", bias)
     corrected, noise_full, spread = (np.full(len(layout), np.nan) for _ in range(3))
     corrected[ok], noise_full[ok] = solution.x[:n], solution.noise
     spread[ok] = 0.5 * np.ptp([s[0].x[:n] for s in solutions.values()], axis=0)

@@ -141,6 +141,7 @@ class FitState:
     sides: dict | None = None
     response: object = None
     beam: object = None
+    beam_bias: object = None  # per ring, the smearing bias the uncorrected curve keeps when the correction fell back
     table: object = None
     flags: list | None = None
     model: np.ndarray | None = None

@@ -251,6 +251,8 @@ def ring_table(state) -> Additions:
     if beam is not None:
         for name, column in beam.columns(table).items():
             table[name] = column
+    elif state.beam_bias is not None:  # the correction fell back: the bias it would have removed, as an error
+        table["v_rotation_err_beam"] = np.nan_to_num(state.beam_bias) * (u.km / u.s)
     if not np.isfinite(table["v_rotation"].value).any():
         raise InputError("no ring could be fitted: the map has too few valid pixels along the rings; "
                          "check the masking, or give wider rings (--ring-width)")
