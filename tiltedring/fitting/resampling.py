@@ -18,7 +18,7 @@ import time
 import numpy as np
 from scipy import fft
 
-__all__ = ["residual_like_noise", "resample", "resample_draws", "Progress"]
+__all__ = ["residual_like_noise", "resample_draws", "Progress"]
 
 
 def residual_like_noise(residual, n: int, seed: int = 0):
@@ -75,15 +75,3 @@ def resample_draws(model, residual, measure, n: int, seed: int = 0, quiet: bool 
         progress.update(k)
     progress.close()
     return {name: np.array(values) for name, values in draws.items()}
-
-
-def resample(model, residual, measure, n: int, seed: int = 0, quiet: bool = True) -> dict:
-    """Scatter of ``measure(model + fake residual)`` over ``n`` draws.
-
-    ``measure(map)`` returns a dict of arrays or scalars (e.g. v_rotation per ring, a constant
-    inclination). Returns the sample standard deviation of each (NaN-aware) and ``n``.
-    """
-    draws = resample_draws(model, residual, measure, n, seed, quiet)
-    out = {name: np.nanstd(values, axis=0, ddof=1) for name, values in draws.items()}
-    out["n"] = n
-    return out

@@ -66,11 +66,9 @@ def _read_ecsv(path) -> np.ndarray:
 
     table = Table.read(path, format="ascii.ecsv")
     if {"ring_i", "ring_j", "total"} <= set(table.colnames):  # the fit's own file, one row per pair of rings
-        i, j = np.asarray(table["ring_i"], int), np.asarray(table["ring_j"], int)
-        n = int(max(i.max(), j.max())) + 1 if len(table) else 0
-        cov = np.full((n, n), np.nan)
-        cov[i, j] = np.asarray(table["total"], float) * _unit_factor(table["total"].unit, str(path))
-        return cov
+        from ..products.covariance import read_covariance as read_pairs
+
+        return read_pairs(table)[1]["total"] * _unit_factor(table["total"].unit, str(path))
     n = len(table)
     for names in ([f"ring_{k}" for k in range(n)], [str(k) for k in range(n)]):
         if all(name in table.colnames for name in names):

@@ -31,7 +31,7 @@ from astropy import units as u
 from ..fitting.parameters import Parameter
 from .state import Additions
 
-__all__ = ["BeamTreatment", "beam_wanted", "beam_treatment", "speed_stretch", "intensity_assumptions",
+__all__ = ["BeamTreatment", "beam_wanted", "beam_treatment", "intensity_assumptions",
            "model_misfit"]
 
 _KMS = u.km / u.s
@@ -44,14 +44,6 @@ WORSE = 2.0
 
 def _stretch(corrected, observed) -> np.ndarray:
     return np.maximum(1.0, np.nan_to_num(corrected / observed, nan=1.0))
-
-
-def speed_stretch(table) -> np.ndarray:
-    """Per ring, how much the correction stretched v_rotation (at least 1; 1 where nothing was corrected):
-    the noise stretches alike, so noise errors are scaled by it."""
-    if "v_rotation_smeared" not in table.colnames:
-        return np.ones(len(table))
-    return _stretch(table["v_rotation"].to_value(_KMS), table["v_rotation_smeared"].to_value(_KMS))
 
 
 @dataclass(frozen=True)

@@ -6,10 +6,10 @@ own column, and their sum in quadrature, ``v_rotation_err``:
 - ``v_rotation_err_random``: the noise at the adopted geometry — the resampled scatter
   (:mod:`..fitting.resampling`: noise fields with the residual's power spectrum through the fit's
   first-order response, the orientation held), enlarged as the beam treatment enlarged the formal
-  error (:func:`noise_gain`), or, for a treatment that states no noise of its own, each draw carried
-  through its linearisation (:func:`beam_propagation`); without resampling, ``v_rotation_err_formal`` (least squares, scaled by
-  sqrt(reduced chi-square) and sqrt(pixels per beam), as the beam treatment left it). The correlation of each ring with its next ``k`` neighbours out (those within a
-  beam) is in ``random_correlation_<k>``;
+  error (:func:`noise_gain`; the treatment propagates the noise through its correction); without
+  resampling, ``v_rotation_err_formal`` (least squares, scaled by sqrt(reduced chi-square) and
+  sqrt(pixels per beam), as the beam treatment left it). The correlation of each ring with its
+  next ``k`` neighbours out (those within a beam) is in ``random_correlation_<k>``;
 - ``v_rotation_err_geometry``: the response to the orientation's 1 sigma, from the signed columns
   ``v_rotation_shift_inclination`` (-v cot(i) sigma_i) and ``v_rotation_shift_position_angle``
   (-v (1 - cos sigma_PA)), the same shift at every ring (fully correlated);
@@ -104,47 +104,6 @@ def noise_gain(state) -> np.ndarray:
     return np.fmax(1.0, np.nan_to_num(gain, nan=1.0))
 
 
-def beam_propagation(state, measure):
-    """For a beam treatment that does not state its own noise (no ``v_rotation_err_beam`` column): the linear
-    map J from the corrected curve to what the fit measures on its smeared model, J_jk = d v_j(measured) /
-    d v_k(corrected) (exact by differences: at a held orientation the model, the smearing
-    v_sys + G*(I (v - v_sys)) / G*I and the speeds' fit are all linear in v). Noise in the measured curve
-    dv_obs becomes J^-1 dv_obs in the corrected one. Returns (J^-1 over the rings with speeds, their mask) or
-    None (no correction, or one that states its noise, or J too ill-conditioned to invert)."""
-    from ..fitting.kinematics import model_field
-    from ..fitting.smearing import BeamKernel, smear
-
-    table, vmap = state.table, state.vmap
-    if state.beam is None or "v_rotation_err_beam" in table.colnames:
-        return None
-    speeds = table["v_rotation"].to_value(_KMS)
-    ok = np.isfinite(speeds)
-    if ok.sum() < 2:
-        return None
-    starts = state.final_rings.starts
-    rings = {p.name: starts[ok, p] for p in Parameter}
-    rings["radius"] = state.layout.radii[ok]
-    intensity = np.ones(vmap.shape) if vmap.intensity is None else np.clip(np.nan_to_num(vmap.intensity), 0, None)
-    kernel = BeamKernel(vmap.shape, vmap.beam, vmap.sky_jacobian)
-    v_sys = float(np.median(rings["v_systemic"]))
-
-    def measured(v):
-        rings["v_rotation"] = v
-        field = smear(kernel, model_field(vmap.shape, vmap.sky_jacobian, rings, state.layout.edges[-1]), intensity,
-                      v_sys)
-        return measure(field)["v_rotation_held"][ok]  # blank pixels count as unchanged: they cancel in J
-
-    base = measured(speeds[ok].copy())
-    jac = np.empty((ok.sum(), ok.sum()))
-    for k in range(ok.sum()):
-        step = speeds[ok].copy()
-        step[k] += 1.0
-        jac[:, k] = measured(step) - base
-    if not np.all(np.isfinite(jac)) or np.linalg.cond(jac) > 1e6:
-        return None
-    return np.linalg.inv(jac), ok
-
-
 def _held_geometry(response):
     """A measure giving, beside the response's own answer, v_rotation with the orientation held at the adopted
     values (the stage-final speeds move with the constant geometry through ``coupling``; this takes it back)."""
@@ -176,14 +135,7 @@ def resampled_errors(state, current=None) -> tuple:
     draws = resample_draws(state.model, state.residual, _held_geometry(response), options.resamples,
                            seed=options.seed, quiet=options.quiet)
     held = draws["v_rotation_held"]
-    propagation = beam_propagation(state, _held_geometry(response))
-    if propagation is None:
-        spread = np.nanstd(held, axis=0, ddof=1) * noise_gain(state)
-    else:  # each draw's deviation carried through the correction: the corrected curve's own scatter
-        inverse, ok = propagation
-        held = held - np.nanmean(held, axis=0)
-        held[:, ok] = np.nan_to_num(held[:, ok]) @ inverse.T
-        spread = np.nanstd(held, axis=0, ddof=1)
+    spread = np.nanstd(held, axis=0, ddof=1) * noise_gain(state)
     columns = {"v_rotation_err_resampled": spread * _KMS}
     current = current or {}
     for name in response.names:

@@ -95,15 +95,17 @@ def write_covariance(path, radius, parts: dict) -> None:
         t.write(tmp, format="ascii.ecsv")
 
 
-def read_covariance(path) -> tuple:
-    """(radius in arcsec, {part: n x n matrix in (km/s)^2}) from a file written by :func:`write_covariance`."""
-    t = Table.read(path, format="ascii.ecsv")
+def read_covariance(source) -> tuple:
+    """(radius in arcsec, {part: n x n matrix in (km/s)^2}) from a file written by :func:`write_covariance`
+    (``source``: its path, or the table already read); parts the file lacks are left out."""
+    t = source if isinstance(source, Table) else Table.read(source, format="ascii.ecsv")
     n = int(np.max(t["ring_i"])) + 1 if len(t) else 0
     i, j = np.asarray(t["ring_i"], int), np.asarray(t["ring_j"], int)
     radius = np.full(n, np.nan)
-    radius[i] = np.asarray(t["radius_i"], float)
+    if "radius_i" in t.colnames:
+        radius[i] = np.asarray(t["radius_i"], float)
     out = {}
-    for name in ("total",) + PARTS:
+    for name in [part for part in ("total",) + PARTS if part in t.colnames]:
         m = np.full((n, n), np.nan)
         m[i, j] = np.asarray(t[name], float)
         out[name] = m
