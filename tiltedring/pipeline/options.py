@@ -96,13 +96,13 @@ class FitOptions:
                                 help="clip pixels beyond this many robust sigma and refit (default: no clipping)")
     outlier_screen: bool = option(True, group="fitting",
                                   help="keep every valid pixel: no screen for wild pixels (by default, pixels beyond "
-                                       "outlier_level robust sigma off a median ring model are left out of the fit and "
-                                       "mapped in left_out.fits)")
+                                       "outlier_level robust sigma of a median ring model are left out of the fit "
+                                       "and mapped in left_out.fits)")
     outlier_level: float = option(5.0, group="fitting", metavar="SIGMA",
                                   bounds=Bounds(minimum=3, why="a lower level leaves out good pixels of a Gaussian "
                                                                 "residual"),
-                                  help="the outlier screen leaves out pixels whose residual from a first ring fit "
-                                       "is beyond this many robust sigma (from the MAD of its ring) off a median ring model")
+                                  help="the outlier screen leaves out pixels whose residual from a median ring model "
+                                       "is beyond this many robust sigma of their ring (its MAD and the error map)")
     outlier_share: float = option(0.05, group="fitting", metavar="FRACTION",
                                   bounds=Bounds(above=0, maximum=0.5, why="a screen that may leave out most pixels "
                                                                           "would hide what the model misses"),
