@@ -34,6 +34,17 @@ beam-smearing misfit of the inner rings and a noisier outer disc set their own l
 pattern such as a bisymmetric flow A cos 2 theta has s_k close to A and is never left out. Rings
 with fewer than ``MIN_RING_PIXELS`` pixels judge none; pixels in no ring are kept.
 
+**Beam coherence**: a map smoothed by a beam cannot change on the sky faster than the beam, so a
+departure shared by a pixel's neighbours within half a beam FWHM (at least 2 pixels)
+is something the data measure — a non-circular flow, a spiral arm, a cloud — not a wild pixel. A
+candidate is kept when its neighbours (itself excluded) share its departure smoothly: both
+|r_i - m_nb| and 1.4826 MAD_nb (the median and MAD of their residuals) within ``level`` times its
+scale sqrt(tau_k^2 + sigma_i^2). A patch of failed fits (neighbours scattered by hundreds of km/s,
+as at the noisy edge of a map) is not smooth, and goes; a candidate with fewer than three valid
+neighbours counts as isolated (wild). A smooth patch is still left out when its residual exceeds
+the disc's largest projected rotation speed max_k |V_k| sin i: no flow within the disc departs from
+rotation by more than the rotation itself (a foreground star or a background galaxy does).
+
 A cap keeps the screen honest: when more than ``share`` (default 5 %) of the judged pixels would go,
 none is left out and a caution says the residuals are not a few wild pixels (a warp, strong
 non-circular motions or bad masking) — clipping them would hide what the model misses. The screen
@@ -50,7 +61,8 @@ from ..fitting.candidates import Pixels
 from ..fitting.geometry import disc_coordinates
 from .state import Additions
 
-__all__ = ["OutlierScreen", "ring_speeds", "robust_scores", "reference_residuals", "screen", "screen_outliers",
+__all__ = ["OutlierScreen", "ring_speeds", "robust_scores", "reference_residuals", "neighbour_offsets", "coherent",
+           "screen", "screen_outliers", "beam_pixels",
            "NOTABLE_SHARE", "MIN_RING_PIXELS", "MAD_TO_SIGMA"]
 
 #: the MAD of a Gaussian times this is its standard deviation (1 / Phi^-1(3/4); Rousseeuw & Croux 1993)
@@ -95,8 +107,10 @@ class OutlierScreen:
                 "method": "Hampel identifier per ring on the residuals from a robust reference (first-guess "
                           "geometry, each ring's median deprojected speed): left out where |r - median| > level x "
                           "sqrt(tau^2 + sigma^2), tau^2 = (1.4826 MAD of the ring)^2 - median sigma^2 (sigma the "
-                          "error map; without one, level x 1.4826 MAD); none left out when more than the share "
-                          "limit would go",
+                          "error map; without one, level x 1.4826 MAD), and the pixel also departs by as much from "
+                          "the median of its neighbours within half a beam (a smooth departure the beam shares, no "
+                          "larger than the disc's projected rotation speed, is kept); "
+                          "none left out when more than the share limit would go",
                 "mask": "left_out.fits (1 = left out of the fit)"}
 
 
@@ -118,9 +132,10 @@ def ring_speeds(radius, cos_t, v, v_systemic, inclination, edges) -> np.ndarray:
 
 
 def robust_scores(residual, sigma, ring, n_rings: int, with_errors: bool) -> np.ndarray:
-    """Per pixel, d_i = |r_i - m_k| / sqrt(tau_k^2 + sigma_i^2) in its ring k (module docstring); NaN where
-    the pixel is in no ring (``ring`` outside 0..n_rings-1) or its ring has fewer than ``MIN_RING_PIXELS``."""
-    score = np.full(len(residual), np.nan)
+    """Per pixel, (d_i = |r_i - m_k| / sqrt(tau_k^2 + sigma_i^2) in its ring k, the scale sqrt(tau_k^2 +
+    sigma_i^2)) (module docstring); NaN where the pixel is in no ring (``ring`` outside 0..n_rings-1) or its
+    ring has fewer than ``MIN_RING_PIXELS``."""
+    score, scales = np.full(len(residual), np.nan), np.full(len(residual), np.nan)
     for k in range(n_rings):
         at = np.flatnonzero(ring == k)
         if len(at) < MIN_RING_PIXELS:
@@ -135,12 +150,14 @@ def robust_scores(residual, sigma, ring, n_rings: int, with_errors: bool) -> np.
             scale = np.full(len(at), spread)
         scale = np.maximum(scale, 1e-6 * max(np.max(np.abs(r - centre)), 1.0))  # a ring of identical residuals
         score[at] = np.abs(r - centre) / scale
-    return score
+        scales[at] = scale
+    return score, scales
 
 
 def reference_residuals(pixels: Pixels, sky_jacobian, geometry: dict, edges) -> tuple:
-    """(residual from the reference model, ring index) of every pixel (module docstring); ``geometry``: the
-    centre (pixels), v_systemic, position_angle and inclination by name."""
+    """(residual from the reference model, ring index) of every pixel, and the disc's largest projected speed
+    max_k |V_k| sin i (module docstring); ``geometry``: the centre (pixels), v_systemic, position_angle and
+    inclination by name."""
     g = geometry
     radius, cos_t, _ = disc_coordinates(pixels.x, pixels.y, g["x_center"], g["y_center"], sky_jacobian,
                                         g["position_angle"], g["inclination"])
@@ -149,17 +166,56 @@ def reference_residuals(pixels: Pixels, sky_jacobian, geometry: dict, edges) -> 
     inside = (ring >= 0) & (ring < len(speeds))
     model = g["v_systemic"] + np.sin(np.radians(g["inclination"])) * np.where(
         inside, speeds[np.clip(ring, 0, len(speeds) - 1)], 0.0) * cos_t
-    return pixels.v - model, np.where(inside, ring, -1)
+    amplitude = float(np.nanmax(np.abs(speeds))) * np.sin(np.radians(g["inclination"])) if len(speeds) else 0.0
+    return pixels.v - model, np.where(inside, ring, -1), amplitude
+
+
+def neighbour_offsets(radius: float) -> np.ndarray:
+    """(n, 2) integer (dx, dy) offsets within ``radius`` pixels (at least the eight neighbours), the pixel itself
+    left out."""
+    reach = max(float(radius), 2.0)
+    span = np.arange(-int(reach), int(reach) + 1)
+    dx, dy = np.meshgrid(span, span)
+    keep = (dx**2 + dy**2 <= reach**2) & ((dx != 0) | (dy != 0))
+    return np.column_stack([dx[keep], dy[keep]])
+
+
+def coherent(pixels: Pixels, residual, scale, candidates, radius: float, level: float) -> np.ndarray:
+    """For each candidate (indices into ``pixels``), whether its neighbours within ``radius`` pixels share its
+    departure smoothly: |r_i - m_nb| <= ``level`` x its ``scale`` and 1.4826 MAD_nb <= ``level`` x its ``scale``
+    (m_nb, MAD_nb: median and MAD of their residuals; module docstring). Candidates with fewer than three valid
+    neighbours are not coherent."""
+    ix, iy = pixels.x.astype(int), pixels.y.astype(int)
+    grid = np.full((iy.max() + 3, ix.max() + 3), np.nan)
+    grid[iy, ix] = residual
+    offsets = neighbour_offsets(radius)
+    nx = ix[candidates][:, None] + offsets[:, 0]
+    ny = iy[candidates][:, None] + offsets[:, 1]
+    inside = (nx >= 0) & (ny >= 0) & (nx < grid.shape[1]) & (ny < grid.shape[0])
+    values = np.where(inside, grid[np.clip(ny, 0, grid.shape[0] - 1), np.clip(nx, 0, grid.shape[1] - 1)], np.nan)
+    enough = np.isfinite(values).sum(axis=1) >= 3
+    local, spread = np.full(len(candidates), np.nan), np.full(len(candidates), np.nan)
+    if enough.any():
+        local[enough] = np.nanmedian(values[enough], axis=1)
+        spread[enough] = MAD_TO_SIGMA * np.nanmedian(np.abs(values[enough] - local[enough, None]), axis=1)
+    limit = level * scale[candidates]
+    return enough & (np.abs(residual[candidates] - local) <= limit) & (spread <= limit)
 
 
 def screen(pixels: Pixels, sky_jacobian, geometry: dict, edges, level: float = 5.0, share: float = 0.05,
-           with_errors: bool = True) -> OutlierScreen:
-    """The screen of ``pixels`` (module docstring): those scoring above ``level`` are left out, unless they are
-    more than ``share`` of the pixels judged. ``with_errors``: whether ``pixels.sigma`` is an error map."""
-    residual, ring = reference_residuals(pixels, sky_jacobian, geometry, edges)
-    score = robust_scores(residual, pixels.sigma, ring, len(edges) - 1, with_errors)
+           with_errors: bool = True, beam_pixels: float = 0.0) -> OutlierScreen:
+    """The screen of ``pixels`` (module docstring): those scoring above ``level`` whose neighbours within half a
+    beam (``beam_pixels``: its FWHM in pixels) do not share their departure are left out, unless they are more
+    than ``share`` of the pixels judged. ``with_errors``: whether ``pixels.sigma`` is an error map."""
+    residual, ring, amplitude = reference_residuals(pixels, sky_jacobian, geometry, edges)
+    score, scale = robust_scores(residual, pixels.sigma, ring, len(edges) - 1, with_errors)
     judged = int(np.isfinite(score).sum())
     beyond = np.nan_to_num(score, nan=0.0) > level
+    candidates = np.flatnonzero(beyond)
+    if len(candidates):
+        kept = coherent(pixels, residual, scale, candidates, 0.5 * beam_pixels, level)
+        kept &= np.abs(residual[candidates]) <= amplitude  # faster than the disc rotates: no flow of the disc
+        beyond[candidates[kept]] = False
     found = int(beyond.sum())
     applied = judged > 0 and found <= share * judged
     left_out = beyond if applied else np.zeros_like(beyond)
@@ -181,6 +237,11 @@ def screen_cautions(found: OutlierScreen) -> list:
     return []
 
 
+def beam_pixels(vmap) -> float:
+    """The beam FWHM in pixels (0 without a beam: then only the eight neighbours are compared)."""
+    return vmap.beam.fwhm / vmap.pixel_scale if vmap.beam is not None else 0.0
+
+
 def screen_outliers(state) -> Additions:
     """The outlier step (module docstring): the screen at the first guess's geometry over the fit's rings; the
     pixels it leaves out become the state's ``outliers`` (later steps read ``state.pixels``)."""
@@ -189,6 +250,7 @@ def screen_outliers(state) -> Additions:
         note = {"screened": False, "n_left_out": 0, "note": "outlier screen turned off: every valid pixel fitted"}
         return Additions(summaries={"outliers": note})
     found = screen(state.inputs.pixels, state.vmap.sky_jacobian, state.start.geometry, state.layout.edges,
-                   options.outlier_level, options.outlier_share, with_errors=state.vmap.error is not None)
+                   options.outlier_level, options.outlier_share, with_errors=state.vmap.error is not None,
+                   beam_pixels=beam_pixels(state.vmap))
     return Additions(fields={"outliers": found}, summaries={"outliers": found.summary()},
                      cautions=screen_cautions(found))
