@@ -77,8 +77,8 @@ NOTABLE_SHARE = 0.005
 class OutlierScreen:
     """What the screen found. ``left_out``: per valid pixel (the order of :class:`.candidates.Pixels`), True
     where it is left out; ``score``: its robust score d_i (NaN where no ring judged it); ``judged``: how many
-    pixels a ring judged; ``found``: how many scored above ``level``; ``applied``: whether they were left out
-    (False when they exceed the ``share`` cap)."""
+    pixels a ring judged; ``found``: how many were judged wild (above ``level``, and not a smooth departure their
+    neighbours share); ``applied``: whether they were left out (False when they exceed the ``share`` cap)."""
 
     left_out: np.ndarray
     score: np.ndarray
