@@ -208,6 +208,10 @@ def _outliers(section: dict, result) -> list:
     if section.get("applied"):
         text = (f"{plural(n, 'pixel')} ({100 * float(section.get('share_left_out', 0)):.2f} % of {judged}) beyond "
                 f"{level} robust sigma off a median ring model left out" + (" (mapped in left_out.fits)" if n else ""))
+    elif section.get("kept_because") == "small_cost":
+        text = (f"none left out: {plural(int(section.get('n_beyond_level', 0)), 'pixel')} beyond {level} robust "
+                f"sigma hold only {100 * float(section.get('cost_share', 0)):.0f} % of the residual cost (under a "
+                "quarter): they do not steer the fit, and are kept")
     else:
         text = (f"none left out: {plural(int(section.get('n_beyond_level', 0)), 'pixel')} "
                 f"({100 * float(section.get('share_beyond_level', 0)):.1f} %) lie beyond {level} robust sigma, more "
