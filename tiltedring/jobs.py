@@ -282,7 +282,8 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
     """Steps report and write: every output into a temporary folder, renamed onto ``folder`` when all
     are written (:func:`.io.atomic.atomic_folder`). Returns the names of the files written.
 
-    Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``curve.ecsv``,
+    Files: ``rings.ecsv``, ``stage_<name>.ecsv``, ``model.fits``, ``residual.fits``, ``left_out.fits`` (when the
+    outlier screen left pixels out: 1 where it did), ``curve.ecsv``,
     ``curve_covariance.ecsv``, ``gas.ecsv`` (when ``gas``), ``fit.json`` and ``report.pdf`` (with ``report``;
     ``report_*.png`` with ``png``), and ``maps/`` (the velocity maps made from a cube, ``cube_maps``). ``fit.json``
     says under ``gas`` whether ``gas.ecsv`` was written and why not. ``inputs``: paths the folder
@@ -303,6 +304,10 @@ def write_fit_folder(folder, result, curve, gas=None, gas_note: str | None = Non
                 write_table(table, tmp / f"stage_{name}.ecsv")
         write_map(tmp / "model.fits", result.model, result.vmap, extra={"ORIGIN": "tiltedring model field"})
         write_map(tmp / "residual.fits", result.residual, result.vmap, extra={"ORIGIN": "tiltedring data - model"})
+        left_out = getattr(result, "left_out", None)
+        if left_out is not None and left_out.any():
+            write_map(tmp / "left_out.fits", left_out.astype("float32"), result.vmap, bunit="",
+                      extra={"ORIGIN": "tiltedring outlier screen: 1 = pixel left out of the fit"})
         if getattr(result, "model_cube", None) is not None:
             from .io.cube_files import write_cube
 

@@ -169,7 +169,7 @@ def beam_treatment(state) -> Additions:
     intensity assumption's corrected smeared model fits the data worse than the uncorrected model:
     (chi^2_c - chi^2_u) / (chi^2_u / n_pixels x pixels per beam) > :data:`WORSE` (beam-correlated pixels
     counted once per beam area)."""
-    vmap, response, layout, pixels = state.vmap, state.response, state.layout, state.inputs.pixels
+    vmap, response, layout, pixels = state.vmap, state.response, state.layout, state.pixels
     observed = response.observed()
     speeds, names = observed["v_rotation"], response.names
     ok = np.isfinite(speeds)

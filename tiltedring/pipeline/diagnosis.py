@@ -32,7 +32,7 @@ def non_circular_columns(state) -> tuple:
 
     table, vmap, layout = state.table, state.vmap, state.layout
     rings = {p.name: np.asarray(table[p.name].value, float) for p in GEOMETRY}
-    found, flags, summary = diagnose(state.inputs.pixels, vmap.sky_jacobian, rings, layout.inner, layout.outer,
+    found, flags, summary = diagnose(state.pixels, vmap.sky_jacobian, rings, layout.inner, layout.outer,
                                      vmap.pixels_per_beam, bar_range=state.options.bar_range)
     columns = dict(found)  # each column carries its unit already
     if "v_rotation_approaching" in table.colnames:

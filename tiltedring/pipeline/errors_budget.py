@@ -132,7 +132,7 @@ def resampled_errors(state, current=None) -> tuple:
     if not (options.resamples > 0 and state.final_rings.free[Parameter.v_rotation]):
         return {}, {}
     response = state.response
-    draws = resample_draws(state.model, state.residual, _held_geometry(response), options.resamples,
+    draws = resample_draws(state.model, state.fitted_residual, _held_geometry(response), options.resamples,
                            seed=options.seed, quiet=options.quiet)
     held = draws["v_rotation_held"]
     spread = np.nanstd(held, axis=0, ddof=1) * noise_gain(state)

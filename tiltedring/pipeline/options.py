@@ -94,6 +94,20 @@ class FitOptions:
     clip: float | None = option(None, group="fitting", metavar="SIGMA",
                                 bounds=Bounds(minimum=1, why="a lower level clips good pixels"),
                                 help="clip pixels beyond this many robust sigma and refit (default: no clipping)")
+    outlier_screen: bool = option(True, group="fitting",
+                                  help="keep every valid pixel: no screen for wild pixels (by default, pixels beyond "
+                                       "outlier_level robust sigma of a median ring model are left out of the fit "
+                                       "and mapped in left_out.fits)")
+    outlier_level: float = option(5.0, group="fitting", metavar="SIGMA",
+                                  bounds=Bounds(minimum=3, why="a lower level leaves out good pixels of a Gaussian "
+                                                                "residual"),
+                                  help="the outlier screen leaves out pixels whose residual from a median ring model "
+                                       "is beyond this many robust sigma of their ring (its MAD and the error map)")
+    outlier_share: float = option(0.05, group="fitting", metavar="FRACTION",
+                                  bounds=Bounds(above=0, maximum=0.5, why="a screen that may leave out most pixels "
+                                                                          "would hide what the model misses"),
+                                  help="the most the outlier screen may leave out, as a fraction of the pixels; "
+                                       "beyond it none is left out and a caution says so")
     fixed: tuple = option((), group="fitting", form="names", flag="--fix", metavar="NAME[,NAME]",
                           choices=RING_PARAMETER_NAMES,
                           help="hold parameters fixed in every stage (at the starting value or the first guess): "

@@ -79,7 +79,7 @@ def fit_stage(state, starts, free, ring_options=None, pixels=None) -> StageResul
     """
     inputs, layout = state.inputs, state.layout
     ring_options = ring_options or inputs.options.ring_options()
-    solutions = fit_stage_rings(inputs.vmap, inputs.pixels if pixels is None else pixels, layout, starts, free,
+    solutions = fit_stage_rings(inputs.vmap, state.pixels if pixels is None else pixels, layout, starts, free,
                                 ring_options)
     flags = [ring_flags(s, inputs.options, inputs.vmap, inputs.min_pixels, r) for s, r in zip(solutions, layout.radii)]
     return StageResult(solutions, flags, starts, np.asarray(free, bool))

@@ -12,7 +12,7 @@ import time
 from dataclasses import dataclass
 from typing import Callable
 
-from . import beam, cautions, diagnosis, errors_budget, steps
+from . import beam, cautions, diagnosis, errors_budget, outliers, steps
 from .inputs import prepare_inputs
 from .state import FitState
 
@@ -30,6 +30,7 @@ class Step:
 
 STEPS = (
     Step("first guess", steps.first_guess_step),
+    Step("outliers", outliers.screen_outliers),
     Step("free rings", steps.free_rings),
     Step("centre", steps.centre),
     Step("centred rings", steps.centred_rings),
@@ -68,4 +69,5 @@ def fit_once(vmap, options):
               "final": state.table}
     return FitResult(vmap=vmap, options=options, layout=layout, first_guess=state.guess, stages=stages,
                      rings=state.table, model=state.model, residual=state.residual,
-                     cautions=list(state.inputs.notes) + state.cautions, diagnostics=state.summaries, timings=timings)
+                     cautions=list(state.inputs.notes) + state.cautions, diagnostics=state.summaries, timings=timings,
+                     left_out=state.left_out_map() if state.outliers is not None else None)

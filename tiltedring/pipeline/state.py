@@ -133,6 +133,7 @@ class FitState:
     guess: dict | None = None
     layout: object = None
     start: StartValues | None = None
+    outliers: object = None  # the outlier screen (.outliers.OutlierScreen): pixels left out of every later step
     free_rings: StageResult | None = None
     centre: Centre | None = None
     centred_rings: StageResult | None = None
@@ -156,6 +157,33 @@ class FitState:
     @property
     def options(self):
         return self.inputs.options
+
+    @property
+    def pixels(self):
+        """The pixels the ring fits use: the valid pixels less those the outlier screen left out."""
+        screen = self.outliers
+        if screen is None or not screen.left_out.any():
+            return self.inputs.pixels
+        keep = ~screen.left_out
+        return type(self.inputs.pixels)(*(np.asarray(a)[keep] for a in self.inputs.pixels))
+
+    @property
+    def fitted_residual(self):
+        """The residual map with the pixels the outlier screen left out blanked (NaN): the noise the fit saw."""
+        screen = self.outliers
+        if self.residual is None or screen is None or not screen.left_out.any():
+            return self.residual
+        return np.where(self.left_out_map(), np.nan, self.residual)
+
+    def left_out_map(self) -> np.ndarray:
+        """Boolean map of the pixels the outlier screen left out (all False when none)."""
+        out = np.zeros(self.vmap.shape, bool)
+        screen = self.outliers
+        if screen is not None and screen.left_out.any():
+            px = self.inputs.pixels
+            at = screen.left_out
+            out[px.y[at].astype(int), px.x[at].astype(int)] = True
+        return out
 
     def add(self, additions: Additions) -> None:
         """Write a step's additions (the runner's job; a field already set is never replaced)."""

@@ -86,7 +86,7 @@ def centre(state) -> Additions:
     if use.sum() >= 2:
         medians = dict(values)
         widths = np.diff(state.layout.edges)
-        fit = refine_centre(state.vmap, state.inputs.pixels, held, state.layout.edges[-1], values, fixed,
+        fit = refine_centre(state.vmap, state.pixels, held, state.layout.edges[-1], values, fixed,
                             ring_width=float(widths[-1]) if len(widths) else None)
         rings = {p.name: params[use, p] for p in CENTRE_AND_SYSTEMIC}
         values, found, summary = check_against_rings(fit, rings, medians)
@@ -129,7 +129,7 @@ def rings_for_geometry(state):
     vmap, layout = state.vmap, state.layout
     params = _near_first_guess(state, stage.params)
     own = {p.name: params[:, p] for p in GEOMETRY}
-    _, pre_flags, _ = diagnose(state.inputs.pixels, vmap.sky_jacobian, own, layout.inner, layout.outer,
+    _, pre_flags, _ = diagnose(state.pixels, vmap.sky_jacobian, own, layout.inner, layout.outer,
                                vmap.pixels_per_beam)
     non_circular = np.array([bool(f) for f in pre_flags])
     if (use & ~non_circular).sum() < 3:
@@ -184,7 +184,7 @@ def final_rings(state) -> Additions:
     if options.fit_radial:
         starts[:, Parameter.v_radial] = np.where(use, params[:, Parameter.v_radial], 0.0)
     layout = state.layout
-    shared = SortedPixels(state.inputs.pixels, state.vmap.sky_jacobian, starts, layout.inner, layout.outer)
+    shared = SortedPixels(state.pixels, state.vmap.sky_jacobian, starts, layout.inner, layout.outer)
     final = fit_stage(state, starts, free, pixels=shared)
     sides = {}
     if options.half == "whole" and free.any():
@@ -229,7 +229,7 @@ def build_response(vmap, pixels, layout, ring_options, centred, final, used, con
 
 def fit_response(state) -> Additions:
     """What stages ``centred`` and ``final`` would give on another map, to first order (:mod:`.response`)."""
-    response = build_response(state.vmap, state.inputs.pixels, state.layout, state.options.ring_options(),
+    response = build_response(state.vmap, state.pixels, state.layout, state.options.ring_options(),
                               state.centred_rings, state.final_rings, state.geometry.profile.used,
                               constant_geometry(state), state.start.geometry["position_angle"])
     return Additions(fields={"response": response})

@@ -3,7 +3,7 @@
 :func:`decision_lines` turns ``result.diagnostics`` (the sections written to ``fit.json``) into
 (topic, sentence) pairs. The sections this module knows (warp and inner change, rings left out of
 the geometry, non-circular motions, the radial-flow test, beam smearing, centre, resampling,
-asymmetry) get sentences of their own; any other section (a step added later) is described
+asymmetry, the outlier screen) get sentences of their own; any other section (a step added later) is described
 generically from its ``detected`` / ``corrected`` / ``adopted`` / ``converged`` / ``fallback`` /
 ``note`` entries, so a new decision appears without a change here. A ``fallback`` or ``note`` entry
 of a known section is appended to its sentence too.
@@ -200,6 +200,25 @@ def _asymmetry(section: dict, result) -> list:
                       f"{100 * float(section['lopsidedness']):.1f} per cent)" + _extras(section))]
 
 
+def _outliers(section: dict, result) -> list:
+    if not section.get("screened"):
+        return [("outliers", str(section.get("note", "not screened")))]
+    n, judged = int(section.get("n_left_out", 0)), int(section.get("n_judged", 0))
+    level = _number(section.get("level_robust_sigma"), "g")
+    if section.get("applied"):
+        text = (f"{plural(n, 'pixel')} ({100 * float(section.get('share_left_out', 0)):.2f} % of {judged}) beyond "
+                f"{level} robust sigma off a median ring model left out" + (" (mapped in left_out.fits)" if n else ""))
+    elif section.get("kept_because") == "small_cost":
+        text = (f"none left out: {plural(int(section.get('n_beyond_level', 0)), 'pixel')} beyond {level} robust "
+                f"sigma hold only {100 * float(section.get('cost_share', 0)):.0f} % of the residual cost (under a "
+                "quarter): they do not steer the fit, and are kept")
+    else:
+        text = (f"none left out: {plural(int(section.get('n_beyond_level', 0)), 'pixel')} "
+                f"({100 * float(section.get('share_beyond_level', 0)):.1f} %) lie beyond {level} robust sigma, more "
+                f"than the {100 * float(section.get('share_limit', 0)):g} % the screen may leave out")
+    return [("outliers", text)]
+
+
 def _generic(key: str, section) -> list:
     """A section this module does not know: its yes/no entries, fallback and note."""
     topic = key.replace("_", " ")
@@ -221,8 +240,8 @@ def _generic(key: str, section) -> list:
 
 _KNOWN = {"warp": _warp, "non_circular": _non_circular, "radial_test": _radial_test, "beam_smearing": _beam,
           "centre": _centre, "resampling": _resampling, "asymmetry": _asymmetry,
-          "orientation_spread": _orientation_spread, "error_model": _error_model}
-_ORDER = ("centre", "warp", "beam_smearing", "non_circular", "radial_test", "asymmetry", "resampling",
+          "orientation_spread": _orientation_spread, "error_model": _error_model, "outliers": _outliers}
+_ORDER = ("outliers", "centre", "warp", "beam_smearing", "non_circular", "radial_test", "asymmetry", "resampling",
           "orientation_spread", "error_model")
 
 

@@ -90,6 +90,17 @@ def file_checksum(path) -> str:
     return h.hexdigest()
 
 
+def residual_line(stats: dict) -> str:
+    """The summary's residual line: the rms over every modelled pixel, over the pixels fitted when the outlier
+    screen left some out, and the robust rms (1.4826 MAD)."""
+    text = f"residual rms = {stats['residual_rms']:.2f} km/s"
+    if stats.get("n_fitted_pixels") is not None and stats["n_fitted_pixels"] < stats["n_modelled_pixels"]:
+        text += f" ({stats['residual_rms_fitted']:.2f} km/s over the {stats['n_fitted_pixels']} pixels fitted)"
+    if stats.get("residual_robust_rms") is not None:
+        text += f"; robust rms (1.4826 MAD) = {stats['residual_robust_rms']:.2f} km/s"
+    return text
+
+
 @dataclass
 class FitResult:
     """Everything a fit produced. ``rings`` is the final table; ``stages`` holds every stage's."""
@@ -108,16 +119,26 @@ class FitResult:
     timings: dict = field(default_factory=dict)  # wall seconds per step of the fit (not written to files)
     cube: object = None  # the io.cube.LineCube the maps came from, when the curve was refitted on it
     model_cube: np.ndarray | None = None  # the observed model cube of the final rings (fitting.cube_model)
+    left_out: np.ndarray | None = None  # map of the pixels the outlier screen left out (None: no screen ran)
 
     # ------------------------------------------------------------------ summaries
     def statistics(self) -> dict:
-        """Global statistics of the residual field."""
-        res = self.residual[np.isfinite(self.residual)]
+        """Global statistics of the residual field: over every modelled pixel, and over those the fit used (the
+        outlier screen's left-out pixels excluded); ``residual_robust_rms`` is 1.4826 x the median absolute
+        residual about its median over every modelled pixel, a standard deviation that wild pixels do not drive
+        (Rousseeuw & Croux 1993, JASA 88, 1273)."""
+        finite = np.isfinite(self.residual)
+        res = self.residual[finite]
+        used = self.residual[finite & ~self.left_out] if self.left_out is not None else res
+        robust = 1.4826 * float(np.median(np.abs(res - np.median(res)))) if res.size else None
         return {
             "n_valid_pixels": int(np.isfinite(self.vmap.velocity).sum()),
             "n_modelled_pixels": int(res.size),
             "residual_rms": float(np.sqrt(np.mean(res**2))) if res.size else None,
             "residual_median_abs": float(np.median(np.abs(res))) if res.size else None,
+            "residual_robust_rms": robust,
+            "n_fitted_pixels": int(used.size),
+            "residual_rms_fitted": float(np.sqrt(np.mean(used**2))) if used.size else None,
             "pixels_per_beam": self.vmap.pixels_per_beam,
             "pixel_scale_arcsec": self.vmap.pixel_scale,
             "north_angle_deg": self.vmap.north_angle,
@@ -224,7 +245,7 @@ class FitResult:
             f"{len(t)} rings from {t['radius'][0].value:.1f} to {t['radius'][-1].value:.1f} arcsec; "
             f"outermost v_rotation = {v[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} "
             f"+/- {e[np.isfinite(v)][-1] if np.isfinite(v).any() else float('nan'):.1f} km/s",
-            f"residual rms = {self.statistics()['residual_rms']:.2f} km/s",
+            residual_line(self.statistics()),
         ]
         from .decisions import decision_lines
 
