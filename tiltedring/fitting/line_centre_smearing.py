@@ -5,8 +5,8 @@ neighbouring sight lines, and the intensity-weighted mean of the mixture is
 v_sys + G * (I (v - v_sys)) / (G * I), linear in the curve. A line-centre map holds instead the centre
 of the mixed profile: where the velocity changes across the beam the profile is skewed, and its peak
 (or a fitted centre) follows the brightest, least-blended part of the mixture rather than its mean,
-so it is biased less than a moment-1 map, and not linearly in the curve (e.g. Swaters 1999, PhD
-thesis, Groningen, ch. 5; de Blok et al. 2008, AJ 136, 2648; from memory).
+so it is biased less than a moment-1 map, and not linearly in the curve (de Blok et al. 2008, AJ 136,
+2648, compare the kinds of velocity field; from memory).
 
 Model: the cube of the disc is drawn by :func:`.cube_model.sky_cube` (Gaussian lines of one
 dispersion sigma, finely sampled channels of width sigma / 3), each pixel's spectrum scaled by the
@@ -18,24 +18,30 @@ linear model describes. The line-centre map of a disc with curve and orientation
     L(x) = F(x) + d(x),   d(x) = c(x) - m(x)
 
 with F(x) the linear smeared moment-1 field of :class:`.beam_inversion.SmearedBasis` (same intensity),
-d the line-centre offset, evaluated in the region the beam reaches (disc radius up to the rings the
-moment-1 correction moves plus one beam; zero beyond) in a box that extends two beams further, so that
-no emission that reaches the region through the beam is cut off.
+d the line-centre offset, evaluated within :data:`REACH_BEAMS` beams of the centre (disc radius; zero
+beyond, where smearing hardly skews a line) in a box that extends two beams further, so that no
+emission that reaches the region through the beam is cut off.
 
-Correction: the fit of L(x) is T(x) + D(x) with T(x) = A x + b the affine moment-1 response and D(x)
-the fit's response to d(x) (the fit is first order in the map, :meth:`.response.FitResponse.measure`).
-Starting from the moment-1 solution x_0, each step freezes D at the current x_k and solves the same
-regularised problem as the moment-1 correction with the target moved by D(x_k) (a Gauss-Newton step
-with the moment-1 Jacobian A: the chord method, e.g. Ortega & Rheinboldt 1970, Iterative Solution of
-Nonlinear Equations, sect. 7.1). Every iterate's line-centre model map L(x_k) is compared with the
-data, and the one with the smallest chi^2 is kept: a step is accepted only if it lowers the map
-misfit, so the result is never worse than the moment-1 solution by that measure. The cube model sums
-each pixel in a fixed order and the fits are per spectrum, so nothing depends on the thread count.
+Correction: y(x), the ring speeds fitted to L(x) at the adopted orientation (exact: the speeds are
+linear in the map at a fixed orientation, :meth:`.response.FitResponse.speeds_at_adopted_geometry`), is
+matched to the speeds the data gave. The rings the correction may move are those where the beam
+effect y(x_obs) - (speeds of the unsmeared field) exceeds the noise, from the centre out
+(:func:`.beam_inversion.affected_rings`), and at least one beam inside the modelled region; the
+orientation is held. Gauss-Newton (e.g. Nocedal & Wright 2006, Numerical Optimization, sect. 10.3):
+the Jacobian dy/dx of the moved rings by forward differences through the model cube (once, at the
+observed curve; the moment-1 Jacobian is not used, because a line-centre map responds to a ring's speed
+inside the beam more strongly than a moment-1 map does, and steps with it overshoot); each step solves the
+regularised problem of :func:`.beam_inversion.solve_smooth_correction` (a second-difference smoothness
+penalty, its weight by generalised cross-validation) linearised at the current point, and is kept only if
+the line-centre model map L(x) fits the data better (chi^2 over the map; halved at most twice
+otherwise), so the result never fits the map worse than the line-centre model of the observed curve. The cube model
+sums each pixel in a fixed order and the line fits are per spectrum, so nothing depends on the thread
+count.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 

@@ -202,11 +202,14 @@ def beam_treatment(state) -> Additions:
                     "misfit_change_beams": float((misfits[best] - chi_plain) / scale)})
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
+    kind_notes = kind_cautions(state, np.abs(solution.x[:n] - target[:n]) / noise[:n])
     if summary["misfit_change_beams"] > WORSE:
         bias = np.full(len(layout), np.nan)
         bias[ok] = np.abs(solution.x[:n] - target[:n])
-        return _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
-                                  "uncorrected model", bias)
+        fallback = _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
+                                      "uncorrected model", bias)
+        fallback.cautions.extend(kind_notes)
+        return fallback
     corrected, noise_full, spread = (np.full(len(layout), np.nan) for _ in range(3))
     corrected[ok], noise_full[ok] = solution.x[:n], solution.noise
     spread[ok] = 0.5 * np.ptp([s[0].x[:n] for s in solutions.values()], axis=0)
@@ -214,8 +217,7 @@ def beam_treatment(state) -> Additions:
     for k, name in enumerate(names):
         values[name] = float(observed[name] + solution.x[n + k]) % (360.0 if name == "position_angle" else np.inf)
     treatment = BeamTreatment(values, models[best], summary, noise_full, spread)
-    cautions = kind_cautions(state, summary, np.abs(solution.x[:n] - target[:n]) / noise[:n])
-    return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary}, cautions=cautions)
+    return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary}, cautions=kind_notes)
 
 
 def _summary(vmap, layout, ok, solutions, best, notes, names, widths) -> dict:

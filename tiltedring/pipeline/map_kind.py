@@ -70,19 +70,20 @@ def kind_summary(state, model) -> dict:
     if model is not None:
         out["line_centre_model"] = {
             "method": "line centres of a beam-smeared model cube (Gaussian lines, channels of a third of the "
-                      "dispersion) minus its intensity-weighted means, added to the moment-1 model within the "
-                      "beam's reach; chord steps with the moment-1 Jacobian, the step with the smallest map "
-                      "misfit kept",
+                      "dispersion) minus its intensity-weighted means, added to the moment-1 model within four "
+                      "beams of the centre; Gauss-Newton on the rings the beam moves (Jacobian through the model "
+                      "cube, the same smoothness penalty), a step kept only if the map misfit falls; the "
+                      "orientation held",
             "dispersion_kms": model.dispersion, "dispersion_source": model.dispersion_source,
             "by_intensity_assumption": model.history}
     return out
 
 
-def kind_cautions(state, summary: dict, moved) -> list:
-    """A caution when the kind was assumed and the correction moved some ring by more than its error
-    (``moved``: per ring, |change| / error)."""
+def kind_cautions(state, moved) -> list:
+    """A caution when the kind was assumed and the correction moves some ring (or would have moved it, had it
+    not fallen back) by more than its error (``moved``: per ring, |change| / error)."""
     kind, source = map_kind(state)
-    if not source.startswith("assumed") or not summary.get("corrected") or not np.any(np.nan_to_num(moved) > 1.0):
+    if not source.startswith("assumed") or not np.any(np.nan_to_num(moved) > 1.0):
         return []
     return [f"the velocity map states no kind, so the beam-smearing correction took it as a {kind} map (an "
             "intensity-weighted mean velocity); a map of fitted line centres (peak, Gaussian, Gauss-Hermite or "
