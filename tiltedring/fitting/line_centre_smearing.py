@@ -174,7 +174,7 @@ class LineCentreModel:
         box, used = self.region(REACH_BEAMS * float(self.beam.major))
         if self._adopted is not None:  # an alternative intensity: the adopted one's offset, one solve
             return self._alternative(smeared, basis_fields, intensity, x0, target, noise)
-        start = self.map_at(smeared, x0, intensity, box, used)
+        start = smeared.field(x0) if box is None else self.map_at(smeared, x0, intensity, box, used)
         effect = self.speeds_of(start) - self.speeds_of(basis_fields.field(target[:n]))
         free = affected_rings(effect, noise[:n]) & (np.asarray(self.rings["radius"], float)
                                                     <= (REACH_BEAMS - 1.0) * float(self.beam.major))
