@@ -162,3 +162,22 @@ def test_stated_kind_gives_a_closer_inner_curve_than_assuming_moment(steep_disc,
     print(kind, errors)
     assert errors[kind] < errors["moment"]
     assert errors[kind] < 0.04
+
+
+def test_an_assumed_kind_is_recorded_and_cautioned_when_it_matters():
+    """A map that states no kind (an independent particle disc's intensity-weighted velocity field,
+    tests/independent_fields.py, whose beam correction moves the inner rings by more than their errors): fit.json
+    says moment was assumed and a caution asks for the kind; stating moment removes that caution."""
+    import tiltedring as tr
+    from independent_fields import draw_field
+
+    hdul, truth = draw_field(50.0, 60.0, seed=4, shape=(120, 120), beam_pixels=8.0, r_turn=6.0, n_particles=500_000)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        assumed = tr.fit_velocity_map(tr.read_velocity_map(hdul), resamples=0)
+        stated = tr.fit_velocity_map(tr.read_velocity_map(hdul, velocity_map_kind="moment"), resamples=0)
+    section = assumed.diagnostics["beam_smearing"]
+    assert section["velocity_map_kind_source"].startswith("assumed")
+    assert any("--velocity-map-kind" in text for text in assumed.cautions)
+    assert stated.diagnostics["beam_smearing"]["velocity_map_kind_source"] == "given (velocity_map_kind)"
+    assert not any("--velocity-map-kind" in text for text in stated.cautions)
