@@ -10,7 +10,9 @@ compared by BIC = chi^2 / s^2 + k ln(n) (Schwarz 1978) with s^2 the reduced chi-
 best warp model when it exceeds 1 (so optimistic ring errors cannot fake a warp); k counts g_0, a,
 (b) for both angles plus the onset. A warp is reported when the BIC favours it by more than
 ``min_delta_bic`` *and* the model's twist or tilt at the outermost ring exceeds ``min_change``
-degrees. A warp bends the outer disc away from a flat inner one, so at least ``min_inner_rings``
+degrees. Only candidates that are a possible geometry compete: the inclination within the ring fit's
+bounds and the position angle turning by less than 90 deg at every ring the profile is applied to,
+tested or not. A warp bends the outer disc away from a flat inner one, so at least ``min_inner_rings``
 tested rings must lie inside the onset. Rings inside ``2 beams`` are left out of the test (beam
 smearing biases their geometry), and so are rings the caller marks as non-circular.
 
@@ -27,6 +29,7 @@ import numpy as np
 
 from ..fitting.geometry import centre_angle, wrap_angle
 from ..fitting.leastsq import weighted_least_squares
+from ..fitting.ring_solver import INC_BOUNDS
 
 __all__ = ["WarpTest", "GeometryProfile", "geometry_profile", "tilt_and_line_of_nodes", "disc_normal"]
 
@@ -65,9 +68,26 @@ def _design(r, onset, degree, outward=True):
     return np.column_stack([np.ones_like(r)] + [d**p for p in range(1, degree + 1)])
 
 
-def _best_changes(rt, values: dict, errors: dict, min_flat_rings: int) -> dict:
+def _physical(span, onset, degree, outward, fits) -> bool:
+    """A candidate profile is a possible disc geometry over ``span`` (the radii it would be applied to, tested
+    or not): the inclination inside the ring fit's bounds :data:`INC_BOUNDS` and the position angle turning by
+    less than 90 deg (a half-turn would describe the other side of the disc), checked on a fine grid."""
+    grid = _design(np.linspace(span[0], span[1], 64), onset, degree, outward)
+    if "inc" in fits:
+        inc = grid @ fits["inc"][0]
+        if inc.min() < INC_BOUNDS[0] or inc.max() > INC_BOUNDS[1]:
+            return False
+    if "pa" in fits:
+        pa = grid @ fits["pa"][0]
+        if np.ptp(pa) >= 90.0:
+            return False
+    return True
+
+
+def _best_changes(rt, values: dict, errors: dict, min_flat_rings: int, r_max: float) -> dict:
     """Per direction (True: a warp beyond an onset; False: an inner change inside it), the lowest-BIC
-    (chi2, parameter count, onset, degree, fits) over the onsets at the tested rings and degrees 1 and 2."""
+    (chi2, parameter count, onset, degree, fits) over the onsets at the tested rings and degrees 1 and 2, among
+    the candidates that are a possible geometry (:func:`_physical`) out to ``r_max``, the outermost ring."""
     n, m, best = len(rt), min_flat_rings, {}
     for outward, onsets in ((True, rt[m - 1:-3]), (False, rt[3:len(rt) - m + 1])):
         for onset in onsets:
@@ -77,6 +97,8 @@ def _best_changes(rt, values: dict, errors: dict, min_flat_rings: int) -> dict:
                     continue
                 a = _design(rt, onset, degree, outward)
                 fits = {name: _weighted(a, values[name], errors[name]) for name in values}
+                if not _physical((rt.min(), max(r_max, rt.max())), onset, degree, outward, fits):
+                    continue
                 chi2 = sum(f[2] for f in fits.values())
                 old = best.get(outward)
                 if old is None or chi2 + k * np.log(n) < old[0] + old[1] * np.log(n):
@@ -109,7 +131,8 @@ def geometry_profile(radius, pa, pa_err, inc, inc_err, use, beam_fwhm=None, test
     chi2_flat = sum(f[2] for f in flat.values())
     constant = {name: float(np.median(values[name][ok])) for name in ("pa", "inc")}
     best = _best_changes(rt, {name: values[name][tested] for name in free},
-                         {name: errors[name][tested] for name in free}, test.min_inner_rings) if n >= 6 and free else {}
+                         {name: errors[name][tested] for name in free}, test.min_inner_rings,
+                         float(np.nanmax(r))) if n >= 6 and free else {}
     summary = {"detected": False, "onset_radius": None, "twist": 0.0, "tilt": 0.0, "delta_bic": None,
                "rings_tested": n, "test": "flat versus warp beyond an onset radius versus inner change (BIC)",
                "thresholds": {"min_delta_bic": test.min_delta_bic, "min_change_deg": test.min_change,
