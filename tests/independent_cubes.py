@@ -24,16 +24,21 @@ HI_REST = 1420.405751768 * u.MHz
 def draw_cube(*, shape=(64, 64), n_channels=80, channel_width=5.0, v_start=None, pixel_scale=4.0, beam_pixels=3.5,
               position_angle=120.0, inclination=55.0, v_systemic=1200.0, v_flat=160.0, r_turn=8.0, dispersion=10.0,
               noise=0.02, foreground=None, disc_radius=None, n_particles=400_000, seed=1, ra=150.0, dec=30.0,
-              skew_profile=None):
+              skew_profile=None, exponential_surface=False):
     """Return (data (channel, y, x) in K, channel velocities km/s, celestial WCS, truth dict).
 
     Rotation curve v_flat tanh(R / r_turn) (a steep inner rise for small r_turn); surface density
-    exponential with scale length disc_radius / 3. ``foreground``: (velocity, sigma, peak K) of a
+    from radii drawn exponentially with scale length disc_radius / 3 (a surface density exp(-R/h) / R,
+    centrally cusped), or with ``exponential_surface`` an exponential disc exp(-R/h) (radii from the gamma
+    distribution of shape 2, p(R) ~ R exp(-R/h)). ``foreground``: (velocity, sigma, peak K) of a
     line covering the whole field (brighter toward one corner)."""
     rng = np.random.default_rng(seed)
     ny, nx = shape
     disc_radius = disc_radius or 0.42 * min(shape) * pixel_scale
-    radius = rng.exponential(disc_radius / 3.0, 3 * n_particles)
+    if exponential_surface:
+        radius = rng.gamma(2.0, disc_radius / 3.0, 3 * n_particles)
+    else:
+        radius = rng.exponential(disc_radius / 3.0, 3 * n_particles)
     radius = radius[radius < disc_radius][:n_particles]
     azimuth = rng.uniform(0, 2 * np.pi, radius.size)
     v_c = v_flat * np.tanh(radius / r_turn)

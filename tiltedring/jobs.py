@@ -196,11 +196,12 @@ def cube_velocity_maps(job: Job):
             given = [k for k, v in job.cube.__dict__.items() if v != getattr(CubeOptions(), k)]
             raise InputError(f"cube option(s) {', '.join(given)} given, but {source} is not a spectral cube")
         return None, None
-    replaced = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale")
-                if getattr(job.inputs, k) is not None]
+    replaced = [k for k in ("error_map", "intensity_map", "dispersion_map", "velocity_unit", "pixel_scale",
+                            "velocity_map_kind") if getattr(job.inputs, k) is not None]
     if replaced:
         raise InputError(f"{source} is a spectral cube, whose maps are made from it, so {', '.join(replaced)} cannot "
-                         "be given; make maps with 'tiltedring maps' and fit those to use your own")
+                         "be given; make maps with 'tiltedring maps' and fit those to use your own (the kind of "
+                         "velocity map made from a cube is velocity_kind)")
     from .io.velocity_fields import make_velocity_maps
 
     cube = read_job_cube(job)

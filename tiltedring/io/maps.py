@@ -112,6 +112,8 @@ class VelocityMap:
     object_name: str | None = None  # the header's OBJECT card, when there is one
     velocity_convention: str | None = None  # radio, optical, relativistic; None: not stated (:mod:`.conventions`)
     convention_source: str = "not stated"  # where the convention was read or given
+    velocity_map_kind: str = "moment"  # how each velocity was taken from its spectrum (:mod:`.map_kind`)
+    kind_source: str = "assumed"  # where the kind was read or given
 
     @property
     def shape(self) -> tuple:
@@ -516,6 +518,7 @@ def read_velocity_map(
     error_unit=None,
     hdu=None,
     velocity_convention: str | None = None,
+    velocity_map_kind: str | None = None,
 ) -> VelocityMap:
     """Read a velocity map (and optional error and intensity maps) into a :class:`VelocityMap`.
 
@@ -533,6 +536,10 @@ def read_velocity_map(
     velocity_convention
         ``"radio"``, ``"optical"`` or ``"relativistic"``: the Doppler convention of the velocities
         (default: read from the header, :mod:`.conventions`; ``None`` when it states none).
+    velocity_map_kind
+        How each velocity was taken from its spectrum: ``"moment"``, ``"peak"``, ``"gaussian"``,
+        ``"hermite"`` or ``"optical-centroid"`` (default: read from the header, :mod:`.map_kind`;
+        ``"moment"`` assumed when it states none).
 
     Inputs are never modified: arrays are copied.
     """
@@ -554,11 +561,13 @@ def read_velocity_map(
     from .conventions import choose_convention
 
     convention, convention_source, convention_note = choose_convention(velocity_convention, header)
-    if convention_note:
-        notes.append(convention_note)
+    from .map_kind import choose_map_kind
+
+    kind, kind_source, kind_note = choose_map_kind(velocity_map_kind, header)
+    notes.extend(note for note in (convention_note, kind_note) if note)
     vmap = VelocityMap(velocity=data.copy(), sky_jacobian=jac, wcs=wcs, beam=beam, source=name, notes=notes,
                        object_name=str(header.get("OBJECT", "")).strip() or None, velocity_convention=convention,
-                       convention_source=convention_source)
+                       convention_source=convention_source, velocity_map_kind=kind, kind_source=kind_source)
     if wcs is not None and vmap.celestial_frame not in (None, "icrs"):
         notes.append(f"the map's celestial frame is {vmap.celestial_frame}: ra_center/dec_center in the tables are "
                      "ICRS, converted with astropy (and --ra-center/--dec-center are read as ICRS)")

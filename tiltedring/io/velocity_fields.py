@@ -39,7 +39,7 @@ from .cube import LineCube, read_cube
 from .cube_mask import make_signal_mask
 from .maps import Beam, read_velocity_map
 
-__all__ = ["VelocityMaps", "make_velocity_maps", "KINDS", "DEFAULT_KIND", "MAP_FILES"]
+__all__ = ["VelocityMaps", "make_velocity_maps", "line_centres", "KINDS", "DEFAULT_KIND", "MAP_FILES"]
 
 KINDS = ("moment", "peak", "gaussian", "hermite")
 DEFAULT_KIND = "hermite"
@@ -68,12 +68,15 @@ class VelocityMaps:
     record: dict = field(default_factory=dict)
 
     def header_for(self, bunit: str) -> fits.Header:
-        """The maps' 2-D header with BUNIT ``bunit`` and the velocity convention card (:mod:`.conventions`)."""
+        """The maps' 2-D header with BUNIT ``bunit``, the velocity convention card (:mod:`.conventions`) and the
+        card of the kind of velocity map (:mod:`.map_kind`)."""
         from .conventions import CONVENTION_CARD
+        from .map_kind import KIND_CARD
 
         header = self.header.copy()
         header["BUNIT"] = bunit
         header[CONVENTION_CARD] = (self.convention, "Doppler convention of the velocities")
+        header[KIND_CARD] = (self.kind, "how velocities were taken from the spectra")
         return header
 
     def pairs(self) -> dict:
@@ -188,6 +191,34 @@ def make_velocity_maps(cube, *, kind: str = DEFAULT_KIND, exclude_velocities=(),
                         dispersion=np.where(np.isfinite(velocity), dispersion, np.nan), mask=signal.mask, kind=kind,
                         header=cube.header.copy(), beam=cube.beam, intensity_unit=unit.to_string(format="fits"),
                         channel_velocity=cube.velocity.copy(), convention=cube.convention, h3=h3, record=record)
+
+
+def line_centres(data, velocity, kind: str, threads: int | None = None) -> np.ndarray:
+    """The velocity map of a noiseless cube ``data`` (channel, y, x; e.g. a model cube) by the estimator of
+    ``kind`` (module docstring; ``optical-centroid``: the Gaussian centre), each spectrum over all its channels
+    where it holds emission (above 1e-6 of the brightest value). The noise is taken as 1e-9 of the brightest
+    value in every channel, so that only the fitting weights, all equal, follow from it. NaN where no emission."""
+    from types import SimpleNamespace
+
+    data = np.asarray(data, float)
+    velocity = np.asarray(velocity, float)
+    estimator = "gaussian" if kind == "optical-centroid" else kind
+    if estimator not in KINDS:
+        raise InputError(f"velocity kind {kind!r}: give one of {', '.join(KINDS)} or optical-centroid")
+    top = float(np.nanmax(data)) if np.isfinite(data).any() else 0.0
+    if top <= 0.0:
+        return np.full(data.shape[1:], np.nan)
+    grid = SimpleNamespace(velocity=velocity, channel_width=float(np.median(np.abs(np.diff(velocity)))),
+                           noise=np.full(velocity.size, 1e-9 * top))
+    mask = data > 1e-6 * top
+    moments = _moments(data, mask, grid)
+    if estimator == "moment":
+        out = moments["velocity"]
+    elif estimator == "peak":
+        out = _peak_velocity(data, mask, grid)[0]
+    else:
+        out = _fitted_maps(data, mask, grid, moments, estimator, 0, threads)[0]
+    return np.where(moments["valid"], out, np.nan)
 
 
 def _foreground_cautions(mask_record) -> list:

@@ -11,7 +11,8 @@ One step behind a narrow interface, so that another treatment can replace it:
   constant orientation it corrected (:attr:`BeamTreatment.geometry`: none, the orientation is held at
   the fitted values) and gives the smeared model map.
 
-The forward model assumes an intensity-weighted mean-velocity (moment-1) map; the correction is the
+The forward model is that of an intensity-weighted mean-velocity (moment-1) map, unless the map states
+another kind (:mod:`.map_kind`: a line-centre map is then corrected through a model cube); the correction is the
 regularised linear least-squares problem of :mod:`..fitting.beam_inversion`, solved for each of
 several intensity assumptions: an exponential profile fitted to the intensity map through the beam
 (:mod:`..fitting.intensity_profile`; adopted: an estimate of the intrinsic intensity, not the smeared
@@ -135,8 +136,9 @@ def _orientation_errors(state, names) -> np.ndarray:
     return np.array(out)
 
 
-def _solve_all(state, ok, target, noise, widths):
-    """(solutions, smeared models and notes by assumption name; the unsmeared basis fields)."""
+def _solve_all(state, ok, target, noise, widths, line_centre=None):
+    """(solutions, smeared models and notes by assumption name; the unsmeared basis fields). ``line_centre``: the
+    forward model of a line-centre map (:mod:`.map_kind`; None: a moment-1 map)."""
     from ..fitting.beam_inversion import correct_curve, disc_basis, smear_basis
     from ..fitting.smearing import BeamKernel
 
@@ -157,9 +159,15 @@ def _solve_all(state, ok, target, noise, widths):
     solutions, models, notes = {}, {}, {}
     for name, (image, note) in intensity_assumptions(vmap, kernel, geometry, r_outer).items():
         smeared = smear_basis(kernel, basis_fields, image, v_sys)
-        solutions[name] = correct_curve(smeared, basis_fields, target, noise, measure, response.coupling[ok],
-                                        widths)
-        models[name], notes[name] = smeared.field(solutions[name][0].x), note
+        if line_centre is not None:  # a line-centre map: its own forward model (:mod:`.map_kind`)
+            solutions[name], models[name] = line_centre.correct(
+                smeared, basis_fields, image, target, noise, measure, response.coupling[ok], widths,
+                lambda m: model_misfit(state.inputs.pixels, m))
+        else:
+            solutions[name] = correct_curve(smeared, basis_fields, target, noise, measure, response.coupling[ok],
+                                            widths)
+            models[name] = smeared.field(solutions[name][0].x)
+        notes[name] = note
     return solutions, models, notes, basis_fields
 
 
@@ -179,22 +187,29 @@ def beam_treatment(state) -> Additions:
     noise = np.concatenate([np.where(np.isfinite(raw_noise) & (raw_noise > 0), raw_noise,
                                      np.nanmax(np.abs(speeds[ok]))), widths])
     target = np.concatenate([speeds[ok], [observed[name] for name in names]])
-    solutions, models, notes, basis_fields = _solve_all(state, ok, target, noise, widths)
+    from .map_kind import kind_cautions, kind_summary, line_centre_model
+
+    line_centre = line_centre_model(state, ok)
+    solutions, models, notes, basis_fields = _solve_all(state, ok, target, noise, widths, line_centre)
     misfits = {name: model_misfit(pixels, model) for name, model in models.items()}
     best = next(iter(misfits))  # the intrinsic estimate (uniform without an intensity map)
     solution = solutions[best][0]
     chi_plain = model_misfit(pixels, basis_fields.field(target[:n]))
     scale = chi_plain / max(len(pixels.v), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
     summary = _summary(vmap, layout, ok, solutions, best, notes, names, widths)
+    summary.update(kind_summary(state, line_centre))
     summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": misfits,
                     "misfit_change_beams": float((misfits[best] - chi_plain) / scale)})
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
+    kind_notes = kind_cautions(state, np.abs(solution.x[:n] - target[:n]) / noise[:n])
     if summary["misfit_change_beams"] > WORSE:
         bias = np.full(len(layout), np.nan)
         bias[ok] = np.abs(solution.x[:n] - target[:n])
-        return _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
-                                  "uncorrected model", bias)
+        fallback = _fallback(summary, "the smeared model of the corrected disc fits the data worse than the "
+                                      "uncorrected model", bias)
+        fallback.cautions.extend(kind_notes)
+        return fallback
     corrected, noise_full, spread = (np.full(len(layout), np.nan) for _ in range(3))
     corrected[ok], noise_full[ok] = solution.x[:n], solution.noise
     spread[ok] = 0.5 * np.ptp([s[0].x[:n] for s in solutions.values()], axis=0)
@@ -202,7 +217,7 @@ def beam_treatment(state) -> Additions:
     for k, name in enumerate(names):
         values[name] = float(observed[name] + solution.x[n + k]) % (360.0 if name == "position_angle" else np.inf)
     treatment = BeamTreatment(values, models[best], summary, noise_full, spread)
-    return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary})
+    return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary}, cautions=kind_notes)
 
 
 def _summary(vmap, layout, ok, solutions, best, notes, names, widths) -> dict:

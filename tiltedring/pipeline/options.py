@@ -31,6 +31,7 @@ RING_PARAMETER_NAMES = PARAMETERS
 AZIMUTH_WEIGHT_NAMES = ("none", "abs-cos", "cos-squared")
 HALF_NAMES = ("whole", "approaching", "receding")
 VELOCITY_KIND_NAMES = ("moment", "peak", "gaussian", "hermite")  # io.velocity_fields.KINDS
+MAP_KIND_NAMES = VELOCITY_KIND_NAMES + ("optical-centroid",)  # io.map_kind.MAP_KINDS
 EXCLUSION_NAMES = ("interpolate", "veto")  # io.cube_mask.EXCLUSIONS
 CHANNEL_RESPONSE_NAMES = ("boxcar", "hanning")  # fitting.cube_model.CHANNEL_RESPONSES
 CONVENTION_NAMES = ("radio", "optical", "relativistic")  # io.conventions.CONVENTIONS
@@ -237,6 +238,12 @@ class InputOptions:
              "with a caution when it says none); for a cube, the one its maps are made in (default: the cube's own; "
              "radio for a frequency axis, optical for a wavelength axis). Sets the rest-frame correction of "
              "curve.ecsv")
+    velocity_map_kind: str | None = option(
+        None, group="inputs", choices=MAP_KIND_NAMES,
+        help="how the map's velocities were taken from the spectra: moment (intensity-weighted mean, moment 1), "
+             "peak, gaussian or hermite (fitted line centre), optical-centroid (Gaussian centre of an optical "
+             "line); the beam-smearing correction models that kind (default: the VELKIND card of 'tiltedring "
+             "maps', else moment assumed). For a cube, velocity_kind sets it")
     bin: int | None = option(None, group="inputs", metavar="N", bounds=Bounds(minimum=1, maximum=1000),
                              help="average N x N pixel blocks before fitting (for maps too large for memory, or far "
                                   "finer than the beam)")
@@ -259,7 +266,7 @@ class InputOptions:
         """Keyword arguments of :func:`..io.maps.read_velocity_map` (maps by their reader's names)."""
         return {"error": self.error_map, "intensity": self.intensity_map, "dispersion": self.dispersion_map,
                 "beam": self.beam, "pixel_scale": self.pixel_scale, "velocity_unit": self.velocity_unit,
-                "velocity_convention": self.velocity_convention}
+                "velocity_convention": self.velocity_convention, "velocity_map_kind": self.velocity_map_kind}
 
 
 @dataclass
