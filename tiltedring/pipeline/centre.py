@@ -100,15 +100,11 @@ class CentreFit:
 
 def _curve(rings):
     """Ring radii, speeds and radial speeds (None when not given) sorted, with 0 at R = 0 in front (so V / R
-    stays finite at the centre). A ring whose speed's error (``v_rotation_err``, when given) exceeds the speed
-    is left out: a ring seen nearly face-on by its own fit (say 1000 +/- 60000 km/s), held, would set the
-    model wherever it reaches."""
+    stays finite at the centre)."""
     order = np.argsort(rings["radius"])
     radii = np.asarray(rings["radius"], float)[order]
     speeds = np.asarray(rings["v_rotation"], float)[order]
     ok = np.isfinite(radii) & np.isfinite(speeds) & (radii > 0)
-    if rings.get("v_rotation_err") is not None:
-        ok &= ~(np.asarray(rings["v_rotation_err"], float)[order] > np.abs(speeds))
     radial = None
     if rings.get("v_radial") is not None:
         radial = np.nan_to_num(np.asarray(rings["v_radial"], float)[order][ok])

@@ -77,8 +77,7 @@ def centre(state) -> Additions:
     for p in CENTRE_AND_SYSTEMIC:
         if p.name not in fixed and use.any():
             values[p.name] = weighted_median(params[use, p], errors[use, p])
-    held = {"radius": state.layout.radii[use], "v_rotation": params[use, Parameter.v_rotation],
-            "v_rotation_err": errors[use, Parameter.v_rotation]}
+    held = {"radius": state.layout.radii[use], "v_rotation": params[use, Parameter.v_rotation]}
     if stage.free[Parameter.v_radial]:
         held["v_radial"] = params[use, Parameter.v_radial]
     for p in ORIENTATION:
