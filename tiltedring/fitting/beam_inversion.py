@@ -17,13 +17,16 @@ no iteration, so nothing can diverge and rounding cannot steer the result).
 The correction x - x_obs = M u (a column per free ring speed; one per orientation angle, which also
 moves the held rings' speeds as the fit would at the shifted angle) solves
 
-    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2 + sum_j (dg_j / sigma_j)^2
+    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2
 
 with y_obs what the data gave (speeds and orientation), S their errors, delta the speeds' change and
 D2 second differences across rings starting from delta = 0 at R = 0 (both curves vanish there): the
 correction is a smooth function of radius (Tikhonov regularisation: Tikhonov 1963, Soviet Math.
 Dokl. 4, 1035; Phillips 1962, J. ACM 9, 84), not each ring amplified on its own. The orientation has
-a Gaussian prior of its own error sigma_j and is clipped to +/- sigma_j. Rings beyond the beam's
+no prior of its own (its target rows already hold the observed angles with their errors sigma_j) and
+is clipped to +/- (sigma_j + 2 |beam effect_j|) (:func:`shift_limit`). The step is linear about the
+point where the basis fields were drawn; the caller may take further (Gauss-Newton) steps from the
+solution with the basis redrawn there. Rings beyond the beam's
 reach (from the centre out to where the fits of the smeared and the unsmeared model of the observed
 curve first differ by less than the noise in two consecutive rings) are held: what the beam does
 not change does not move. lambda is chosen by generalised cross-validation (Golub, Heath & Wahba
@@ -43,7 +46,7 @@ from .kinematics import model_field
 from .smearing import disc_with_centre
 
 __all__ = ["DiscBasis", "disc_basis", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedBasis",
-           "smear_basis", "correct_curve", "correction_design"]
+           "smear_basis", "correct_curve", "correction_design", "shift_limit"]
 
 
 @dataclass(frozen=True)
@@ -224,32 +227,47 @@ def smear_basis(kernel, basis_fields: DiscBasis, intensity, v_systemic: float) -
     return SmearedBasis(fixed, basis)
 
 
-def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling,
-                  prior_width=()) -> tuple:
-    """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
+def shift_limit(beam_effect, error, reach: float = 2.0) -> np.ndarray:
+    """How far the correction may move each constant orientation angle (deg): its error plus ``reach`` times
+    what the beam does to it, |fit of the smeared - fit of the unsmeared model| of the observed curve. The
+    beam's own bias is the physical scale of the change (Begeman 1989 notes that smearing flattens the
+    isovelocity contours, which the ring fit reads as a lower inclination); the factor 2 leaves room for the
+    model's smeared intensity differing from the sky's without letting the shift run away."""
+    return np.asarray(error, float) + reach * np.abs(np.nan_to_num(np.asarray(beam_effect, float)))
+
+
+def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling, speeds=None,
+                  free=None, limits=None) -> tuple:
+    """(:class:`BeamSolution`, beam effect, free rings, shift limits) for one intensity assumption, one linear
+    (Gauss-Newton) step taken at the point where ``basis_fields`` were drawn.
 
     ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
     ``measure(map)`` the same quantities fitted the same way to another map; ``coupling``: (rings, angles)
-    d v / d angle of the ring fit. T(x) = A x + b is built from the smeared basis fields; the beam effect is T
-    at the observed curve minus the fit of its unsmeared model. The orientation shifts have a Gaussian prior
-    of width ``prior_width`` (their errors); a shift beyond it is clipped to it and the speeds solved again
-    with it held."""
+    d v / d angle of the ring fit; ``speeds``: the intrinsic speeds of the point (default: the observed ones)
+    and the orientation shifts are counted from it. T(x) = A x + b is built from the smeared basis fields; the
+    beam effect (speeds, then angles) is T minus the fit of the unsmeared model at the point. ``free`` (default:
+    :func:`affected_rings`) and ``limits`` ((lower, upper) of the shifts; default +/- :func:`shift_limit`) are
+    fixed at the first step and passed on to later ones. The shifts have no prior of their own: the angles'
+    target rows already hold the observed orientation with its error (a prior would count it twice); a shift
+    beyond its limits is clipped to them and the speeds solved again with it held."""
     target = np.asarray(target, float)
     n_speeds, size = coupling.shape[0], smeared.basis.shape[0]
-    start = np.concatenate([target[:n_speeds], np.zeros(size - n_speeds)])
+    speeds = target[:n_speeds] if speeds is None else np.asarray(speeds, float)
+    start = np.concatenate([speeds, np.zeros(size - n_speeds)])
     offset = np.asarray(measure(smeared.fixed), float)
     matrix = np.empty((len(target), size))
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
     effect = matrix @ start + offset - np.asarray(measure(basis_fields.field(start)), float)
-    free = affected_rings(effect[:n_speeds], noise[:n_speeds])
-    widths = np.asarray(prior_width, float)
+    free = affected_rings(effect[:n_speeds], noise[:n_speeds]) if free is None else free
+    if limits is None:
+        bound = shift_limit(effect[n_speeds:], noise[n_speeds:])
+        limits = (-bound, bound)
     design = correction_design(free, coupling)
-    prior = np.concatenate([np.zeros(int(free.sum())), 1.0 / widths**2])
-    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, prior)
+    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds)
     shifts = solution.x[n_speeds:]
-    if np.any(np.abs(shifts) > widths):
-        start = start + design[:, free.sum():] @ np.clip(shifts, -widths, widths)
+    if np.any((shifts < limits[0]) | (shifts > limits[1])):
+        start = start + design[:, free.sum():] @ np.clip(shifts, limits[0], limits[1])
         solution = solve_smooth_correction(matrix, offset, start, target, noise,
                                            correction_design(free, coupling, with_shifts=False), n_speeds)
-    return solution, effect[:n_speeds], free
+    return solution, effect, free, limits
