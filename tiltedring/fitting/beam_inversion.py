@@ -20,7 +20,9 @@ moves the held rings' speeds as the fit would at the shifted angle) solves
     min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2
 
 with y_obs what the data gave (speeds and orientation), S their errors, delta the speeds' change and
-D2 second differences across rings starting from delta = 0 at R = 0 (both curves vanish there): the
+D2 second differences across rings, either starting from delta = 0 at R = 0 (both curves vanish
+there) or between rings only (whichever GCV prefers: a steep rise needs its largest change at the
+innermost ring, which the anchored penalty resists): the
 correction is a smooth function of radius (Tikhonov regularisation: Tikhonov 1963, Soviet Math.
 Dokl. 4, 1035; Phillips 1962, J. ACM 9, 84), not each ring amplified on its own. The orientation has
 no prior of its own (its target rows already hold the observed angles with their errors sigma_j) and
@@ -141,7 +143,7 @@ def _second_differences(n: int) -> np.ndarray:
 
 
 def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
-    """(solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
+    """(GCV score, solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
     d^T R d + d^T P d, lambda the minimum of GCV over ``grid`` (s = tr(x^T x) / tr(R) makes the grid
     problem-independent)."""
     n = len(residual0)
@@ -156,7 +158,7 @@ def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
         gcv = n * float(left @ left) / max(n - float(np.trace(influence)), 1e-9) ** 2
         if best is None or gcv < best[0]:
             best = (gcv, solver, float(factor), float(left @ left))
-    return best[1:]
+    return best
 
 
 def solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds: int, prior=None,
@@ -167,7 +169,11 @@ def solve_smooth_correction(matrix, offset, start, target, noise, design, n_spee
     is x - start = ``design`` @ u: a column per free ring speed and per orientation shift (whose column also
     moves the held rings' speeds as the fit would at the shifted orientation). ``prior``: per unknown u, the
     inverse square width of a Gaussian prior about 0 (0: none); the smoothness penalty acts on the speeds'
-    change. Returns the solution, its lambda, the noise propagated from the data's speeds and the misfit.
+    change, either anchored (second differences from delta = 0 at R = 0) or free at the centre (second
+    differences between rings only: a steep inner rise needs its largest change in the innermost ring); of
+    the two, the one with the lower GCV score at its best lambda is used (GCV as an estimate of predictive
+    error compares the two penalties as it compares lambdas; Golub, Heath & Wahba 1979). Returns the
+    solution, its lambda, the noise propagated from the data's speeds and the misfit.
     """
     start = np.asarray(start, float)
     weight = 1.0 / np.asarray(noise, float)
@@ -175,9 +181,14 @@ def solve_smooth_correction(matrix, offset, start, target, noise, design, n_spee
     if design.shape[1] == 0:
         return BeamSolution(start.copy(), np.inf, np.asarray(noise, float)[:n_speeds], float(residual0 @ residual0))
     x = (matrix @ design) * weight[:, None]
-    penalty = _second_differences(n_speeds + 1)[:, 1:] @ design[:n_speeds]  # with delta = 0 at R = 0
-    prior = np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float)
-    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior), grid)
+    prior = np.diag(np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float))
+    best = None
+    for rows in (_second_differences(n_speeds + 1)[:, 1:], _second_differences(n_speeds)):  # anchored, free
+        penalty = rows @ design[:n_speeds]
+        candidate = _gcv_solve(x, residual0, penalty.T @ penalty, prior, grid)
+        if best is None or candidate[0] < best[0]:
+            best = candidate
+    _, solver, factor, chi_square = best
     solution = start - design @ (solver @ residual0)
     # d x / d v_obs = E - M K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
     unit = np.eye(len(start))[:, :n_speeds]

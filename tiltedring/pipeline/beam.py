@@ -342,8 +342,9 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "method": "forward model: the curve as a natural cubic spline through v = 0 at the centre and the ring "
                   "speeds, each ring's field smeared as v_sys + G*(I (v - v_sys)) / G*I and fitted the way the "
                   "data were (first order about the data's fit), the constant orientation moved to first order; "
-                  "a least-squares problem with a second-difference smoothness penalty on the correction, its "
-                  "weight chosen by generalised cross-validation, solved by Gauss-Newton steps re-linearised at "
+                  "a least-squares problem with a second-difference smoothness penalty on the correction (anchored "
+                  "at the centre or free there, and its weight, chosen by generalised cross-validation), solved by "
+                  "Gauss-Newton steps re-linearised at "
                   "the moved orientation, each kept only when the smeared model fits the map better; rings "
                   "beyond the beam's reach held",
         "velocity_map_kind": VELOCITY_MAP_KIND,
