@@ -21,8 +21,9 @@ def _truth(demo_fields, name):
 
 def test_calloway_demo_fit_by_the_command_line_is_within_its_truth(tmp_path, demo_fields):
     """`tiltedring fit` on the Calloway demo field with its intensity map, report on. Truth table: position
-    angle 125 deg, inclination 40 deg, the curve at the ring radii. Tolerances (the issue's): 2 deg, 3 deg,
-    and 5 km/s beyond two beams. The beam step ran and says what kind of map it assumed."""
+    angle 125 deg, inclination 40 deg, the curve at the ring radii. Tolerances (the issue's "done when"): 2 deg,
+    3 deg, and beyond two beams 5 km/s or 2 sigma (v_rotation_err). The beam step ran and says what kind of map
+    it assumed."""
     import json
 
     from tiltedring.cli import main
@@ -40,7 +41,8 @@ def test_calloway_demo_fit_by_the_command_line_is_within_its_truth(tmp_path, dem
     beam = record["beam_smearing"]["beam_arcsec"][0]
     far = np.asarray(rings["radius"]) > 2 * beam
     v_true = np.interp(np.asarray(rings["radius"])[far], truth["radius"], truth["v_rotation"])
-    assert np.all(np.abs(np.asarray(rings["v_rotation"])[far] - v_true) < 5.0)
+    tolerance = np.fmax(5.0, 2 * np.asarray(rings["v_rotation_err"])[far])
+    assert np.all(np.abs(np.asarray(rings["v_rotation"])[far] - v_true) < tolerance)
     assert "moment-1" in record["beam_smearing"]["velocity_map_kind"]
     assert (out / "report.pdf").stat().st_size > 0
 

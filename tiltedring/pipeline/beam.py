@@ -216,24 +216,26 @@ class _Problem:
         shift = np.asarray(x[self.n:], float)
         smeared = smear_basis(self.kernel, basis_fields, image, self.v_sys)
         local = None if limits is None else (limits[0] - shift, limits[1] - shift)
-        solution, effect, free, local = correct_curve(smeared, basis_fields, self.target, self.noise, self.measure,
-                                                      self.coupling, x[: self.n], free, local)
+        solution, effect, free, local, target = correct_curve(smeared, basis_fields, self.target, self.noise,
+                                                              self.measure, self.coupling, x[: self.n], free, local)
+        self.target = target  # the held rings' targets as the first step set them
         total = np.concatenate([solution.x[: self.n], shift + solution.x[self.n:]])
         return replace(solution, x=total), smeared.field(solution.x), effect, free, (local[0] + shift,
                                                                                         local[1] + shift)
 
 
-def _iterate(problem, image):
+def _iterate(problem, image, limits=None):
     """The adopted assumption's correction: a linear step from the observed curve, then up to
     :data:`GAUSS_NEWTON_STEPS` steps re-linearised at the last accepted point (the orientation derivatives drawn
     at the moved angles), each kept only when the smeared model drawn exactly at its point fits the map better
     (lower chi^2) than the previous point's. Deterministic and bounded. Returns (accepted point, beam effect,
-    free rings, shift limits, steps taken, the uncorrected model)."""
+    free rings, shift limits, steps taken, the uncorrected model). ``limits``: (lower, upper) of the shifts
+    (default: :func:`..fitting.beam_inversion.shift_limit`; zeros hold the orientation)."""
     pixels = problem.state.inputs.pixels
     start = np.concatenate([problem.target[: problem.n], np.zeros(len(problem.names))])
     basis_fields = problem.basis(start)
     plain = basis_fields.field(start[: problem.n])  # the uncorrected model (unsmeared, observed orientation)
-    solution, _, effect, free, limits = problem.step(basis_fields, image, start)
+    solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits)
     point, steps = None, 1
     for _ in range(GAUSS_NEWTON_STEPS + 1):
         basis_fields = problem.basis(solution.x)
@@ -258,13 +260,15 @@ def _smeared_at(problem, basis_fields, image, x):
     return smear_basis(problem.kernel, basis_fields, image, problem.v_sys).field(x[: problem.n])
 
 
-def _solve_all(state, ok, target, noise):
+def _solve_all(state, ok, target, noise, hold=False):
     """(the adopted point, the solutions and notes by assumption name, beam effect, free rings, limits, the
     uncorrected model, linear steps taken):
-    the adopted intensity iterated (:func:`_iterate`), the alternatives one linear step from its point."""
+    the adopted intensity iterated (:func:`_iterate`), the alternatives one linear step from its point;
+    ``hold``: the orientation held at the observed values."""
     problem = _Problem(state, ok, target, noise)
     names = list(problem.images)
-    point, effect, free, limits, steps, plain = _iterate(problem, problem.images[names[0]][0])
+    held = (np.zeros(len(problem.names)),) * 2 if hold else None
+    point, effect, free, limits, steps, plain = _iterate(problem, problem.images[names[0]][0], held)
     solutions, notes = {names[0]: point.solution}, {name: note for name, (_, note) in problem.images.items()}
     for name in names[1:]:
         solutions[name] = problem.step(point.basis_fields, problem.images[name][0], point.solution.x, free,
@@ -289,14 +293,21 @@ def beam_treatment(state) -> Additions:
     noise = np.concatenate([np.where(np.isfinite(raw_noise) & (raw_noise > 0), raw_noise,
                                      np.nanmax(np.abs(speeds[ok]))), widths])
     target = np.concatenate([speeds[ok], [observed[name] for name in names]])
-    point, solutions, notes, effect, free, limits, plain_model, steps = _solve_all(state, ok, target, noise)
+    for hold in (False, True) if names else (False,):
+        point, solutions, notes, effect, free, limits, plain_model, steps = _solve_all(state, ok, target, noise, hold)
+        shared = common_pixels(pixels, plain_model, point.model)
+        chi_plain, chi_corrected = model_misfit(pixels, plain_model, shared), model_misfit(pixels, point.model, shared)
+        scale = chi_plain / max(int(shared.sum()), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
+        if (chi_corrected - chi_plain) / scale <= WORSE:
+            break
     solution = point.solution
-    shared = common_pixels(pixels, plain_model, point.model)
-    chi_plain, chi_corrected = model_misfit(pixels, plain_model, shared), model_misfit(pixels, point.model, shared)
-    scale = chi_plain / max(int(shared.sum()), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
     summary = _summary(vmap, layout, ok, solutions, notes, names, widths, (effect, free, limits, steps))
     summary.update({"chi_square_uncorrected": chi_plain, "chi_square_corrected": chi_corrected,
-                    "misfit_change_beams": float((chi_corrected - chi_plain) / scale)})
+                    "misfit_change_beams": float((chi_corrected - chi_plain) / scale),
+                    "orientation_held": bool(hold and names)})
+    if hold and names:
+        summary["orientation_held_reason"] = ("moving the orientation made the smeared model fit the map worse than "
+                                              "the uncorrected model; the speeds were corrected with it held")
     if not np.all(np.isfinite(solution.x)):
         return _fallback(summary, "it gave undefined speeds")
     if summary["misfit_change_beams"] > WORSE:
@@ -320,6 +331,10 @@ def _geometry_cautions(summary: dict) -> list:
     """A caution per orientation angle the correction moved beyond its error: the uncorrected fit of that
     angle is biased by the beam, and the corrected value rests on the forward model."""
     out = []
+    if summary.get("orientation_held"):
+        out.append("beam-smearing correction held the position angle and inclination at the fitted values: moving "
+                   "them made the smeared model fit the map worse; the beam's bias on them (geometry_beam_effect in "
+                   "fit.json) is not corrected")
     for name in summary["geometry_change_beyond_error"]:
         change, error = summary["geometry_change"][name], summary["geometry_change_error"][name]
         out.append(f"beam-smearing correction moved the {name.replace('_', ' ')} by {change:+.1f} deg, beyond its "
