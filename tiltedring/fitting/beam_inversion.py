@@ -249,7 +249,7 @@ def shift_limit(beam_effect, error, reach: float = 2.0) -> np.ndarray:
 
 def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling, speeds=None,
                   free=None, limits=None) -> tuple:
-    """(:class:`BeamSolution`, beam effect, free rings, shift limits, target) for one intensity assumption, one linear
+    """(:class:`BeamSolution`, beam effect, free rings, shift limits) for one intensity assumption, one linear
     (Gauss-Newton) step taken at the point where ``basis_fields`` were drawn.
 
     ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
@@ -258,9 +258,7 @@ def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise,
     and the orientation shifts are counted from it. T(x) = A x + b is built from the smeared basis fields; the
     beam effect (speeds, then angles) is T minus the fit of the unsmeared model at the point. ``free`` (default:
     :func:`affected_rings`) and ``limits`` ((lower, upper) of the shifts; default +/- :func:`shift_limit`) are
-    fixed at the first step and passed on to later ones, as is the target returned last: at the first step the
-    held rings' targets are moved by the beam's effect on them (they are held because it is below their noise;
-    uncorrected, it would otherwise pull the orientation, which moves every held ring's speed). The shifts have no prior of their own: the angles'
+    fixed at the first step and passed on to later ones. The shifts have no prior of their own: the angles'
     target rows already hold the observed orientation with its error (a prior would count it twice); a shift
     beyond its limits is clipped to them and the speeds solved again with it held."""
     target = np.asarray(target, float)
@@ -272,11 +270,7 @@ def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise,
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
     effect = matrix @ start + offset - np.asarray(measure(basis_fields.field(start)), float)
-    if free is None:
-        free = affected_rings(effect[:n_speeds], noise[:n_speeds])
-        # a held ring's row compares with what the smeared model of the observed curve gives there, so the
-        # beam's effect on it (below its noise, left uncorrected) does not pull the orientation
-        target = target + np.concatenate([np.where(free, 0.0, effect[:n_speeds]), np.zeros(len(target) - n_speeds)])
+    free = affected_rings(effect[:n_speeds], noise[:n_speeds]) if free is None else free
     if limits is None:
         bound = shift_limit(effect[n_speeds:], noise[n_speeds:])
         limits = (-bound, bound)
@@ -287,4 +281,4 @@ def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise,
         start = start + design[:, free.sum():] @ np.clip(shifts, limits[0], limits[1])
         solution = solve_smooth_correction(matrix, offset, start, target, noise,
                                            correction_design(free, coupling, with_shifts=False), n_speeds)
-    return solution, effect, free, limits, target
+    return solution, effect, free, limits

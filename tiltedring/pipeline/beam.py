@@ -216,9 +216,8 @@ class _Problem:
         shift = np.asarray(x[self.n:], float)
         smeared = smear_basis(self.kernel, basis_fields, image, self.v_sys)
         local = None if limits is None else (limits[0] - shift, limits[1] - shift)
-        solution, effect, free, local, target = correct_curve(smeared, basis_fields, self.target, self.noise,
-                                                              self.measure, self.coupling, x[: self.n], free, local)
-        self.target = target  # the held rings' targets as the first step set them
+        solution, effect, free, local = correct_curve(smeared, basis_fields, self.target, self.noise, self.measure,
+                                                      self.coupling, x[: self.n], free, local)
         total = np.concatenate([solution.x[: self.n], shift + solution.x[self.n:]])
         return replace(solution, x=total), smeared.field(solution.x), effect, free, (local[0] + shift,
                                                                                         local[1] + shift)
