@@ -296,7 +296,9 @@ def beam_treatment(state) -> Additions:
         point, solutions, notes, effect, free, limits, plain_model, steps = _solve_all(state, ok, target, noise, hold)
         shared = common_pixels(pixels, plain_model, point.model)
         chi_plain, chi_corrected = model_misfit(pixels, plain_model, shared), model_misfit(pixels, point.model, shared)
-        scale = chi_plain / max(int(shared.sum()), 1) * vmap.pixels_per_beam  # chi^2 of one independent datum
+        # chi^2 of one independent datum, as main measured it: over all the fit's pixels, those outside the model's
+        # disc counted with their deviation from the median (a loose scale; the threshold is unchanged from main)
+        scale = model_misfit(pixels, plain_model) / max(len(pixels.v), 1) * vmap.pixels_per_beam
         if (chi_corrected - chi_plain) / scale <= WORSE:
             break
     solution = point.solution
