@@ -21,8 +21,9 @@ def _truth(demo_fields, name):
 
 def test_calloway_demo_fit_by_the_command_line_is_within_its_truth(tmp_path, demo_fields):
     """`tiltedring fit` on the Calloway demo field with its intensity map, report on. Truth table: position
-    angle 125 deg, inclination 40 deg, the curve at the ring radii. Tolerances (the issue's): 2 deg, 3 deg,
-    and 5 km/s beyond two beams. The beam step ran and says what kind of map it assumed."""
+    angle 125 deg, inclination 40 deg, the curve at the ring radii. Tolerances (the issue's "done when"): 2 deg,
+    3 deg, and beyond two beams 5 km/s or 2 sigma (v_rotation_err). The beam step ran and says what kind of map
+    it assumed."""
     import json
 
     from tiltedring.cli import main
@@ -40,7 +41,8 @@ def test_calloway_demo_fit_by_the_command_line_is_within_its_truth(tmp_path, dem
     beam = record["beam_smearing"]["beam_arcsec"][0]
     far = np.asarray(rings["radius"]) > 2 * beam
     v_true = np.interp(np.asarray(rings["radius"])[far], truth["radius"], truth["v_rotation"])
-    assert np.all(np.abs(np.asarray(rings["v_rotation"])[far] - v_true) < 5.0)
+    tolerance = np.fmax(5.0, 2 * np.asarray(rings["v_rotation_err"])[far])
+    assert np.all(np.abs(np.asarray(rings["v_rotation"])[far] - v_true) < tolerance)
     assert "moment-1" in record["beam_smearing"]["velocity_map_kind"]
     assert (out / "report.pdf").stat().st_size > 0
 
@@ -136,3 +138,26 @@ def test_a_correction_that_fits_worse_falls_back_with_a_caution(monkeypatch, qui
     assert np.all(bias[inner] > 0)
     total = res.rings["v_rotation_err"].value
     assert np.all(total[inner] >= bias[inner])
+
+
+def test_inclination_biased_by_the_beam_is_moved_back_and_said_so(quiet):
+    """Independent particle disc at 72.5 deg (v = 167 tanh(R / 4), exponential surface density, scale length 23
+    arcsec, 8-arcsec beam, one-beam rings): the beam flattens the isovelocity contours and the ring fit reads a
+    lower inclination (measured 69.8 deg, more than its error below the truth). The correction may move the
+    inclination beyond its error: the corrected inclination is closer to the injected 72.5 deg than the
+    uncorrected one and within 1.5 deg of it (bound set before measuring), the correction is applied (no
+    fallback), fit.json lists the inclination under geometry_change_beyond_error and a caution says so, and the
+    inclination error includes the correction's spread."""
+    hdul, truth = draw_field(12.8, 72.5, seed=15, beam_pixels=8.0, r_turn=4.0, v_flat=166.6, scale_length=22.7,
+                             n_particles=2_000_000, centre_offset=(2.2, -1.4))
+    res = tr.fit_velocity_map(tr.read_velocity_map(hdul, intensity=truth["intensity_hdu"]), ring_width="1beam",
+                              resamples=0)
+    section = res.diagnostics["beam_smearing"]
+    assert section["corrected"] is True
+    corrected = float(np.median(res.rings["inclination"].value))
+    uncorrected = corrected - section["geometry_change"]["inclination"]
+    assert abs(corrected - 72.5) < abs(uncorrected - 72.5)
+    assert abs(corrected - 72.5) < 1.5
+    assert "inclination" in section["geometry_change_beyond_error"]
+    assert any("moved the inclination" in c for c in res.cautions)
+    assert np.all(res.rings["inclination_err"].value >= section["geometry_change_error"]["inclination"] - 1e-12)

@@ -17,13 +17,18 @@ no iteration, so nothing can diverge and rounding cannot steer the result).
 The correction x - x_obs = M u (a column per free ring speed; one per orientation angle, which also
 moves the held rings' speeds as the fit would at the shifted angle) solves
 
-    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2 + sum_j (dg_j / sigma_j)^2
+    min_u  || S^-1 (T(x_obs + M u) - y_obs) ||^2 + lambda || D2 delta ||^2
 
 with y_obs what the data gave (speeds and orientation), S their errors, delta the speeds' change and
-D2 second differences across rings starting from delta = 0 at R = 0 (both curves vanish there): the
+D2 second differences across rings, either starting from delta = 0 at R = 0 (both curves vanish
+there) or between rings only (whichever GCV prefers: a steep rise needs its largest change at the
+innermost ring, which the anchored penalty resists): the
 correction is a smooth function of radius (Tikhonov regularisation: Tikhonov 1963, Soviet Math.
 Dokl. 4, 1035; Phillips 1962, J. ACM 9, 84), not each ring amplified on its own. The orientation has
-a Gaussian prior of its own error sigma_j and is clipped to +/- sigma_j. Rings beyond the beam's
+no prior of its own (its target rows already hold the observed angles with their errors sigma_j) and
+is clipped to +/- (sigma_j + 2 |beam effect_j|) (:func:`shift_limit`). The step is linear about the
+point where the basis fields were drawn; the caller may take further (Gauss-Newton) steps from the
+solution with the basis redrawn there. Rings beyond the beam's
 reach (from the centre out to where the fits of the smeared and the unsmeared model of the observed
 curve first differ by less than the noise in two consecutive rings) are held: what the beam does
 not change does not move. lambda is chosen by generalised cross-validation (Golub, Heath & Wahba
@@ -43,7 +48,7 @@ from .kinematics import model_field
 from .smearing import disc_with_centre
 
 __all__ = ["DiscBasis", "disc_basis", "BeamSolution", "affected_rings", "solve_smooth_correction", "SmearedBasis",
-           "smear_basis", "correct_curve", "correction_design"]
+           "smear_basis", "correct_curve", "correction_design", "shift_limit"]
 
 
 @dataclass(frozen=True)
@@ -138,7 +143,7 @@ def _second_differences(n: int) -> np.ndarray:
 
 
 def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
-    """(solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
+    """(GCV score, solver K with delta = -K residual0, lambda, chi^2): Tikhonov solution of min ||x d + r0||^2 + lambda s
     d^T R d + d^T P d, lambda the minimum of GCV over ``grid`` (s = tr(x^T x) / tr(R) makes the grid
     problem-independent)."""
     n = len(residual0)
@@ -153,7 +158,7 @@ def _gcv_solve(x, residual0, roughness, prior, grid) -> tuple:
         gcv = n * float(left @ left) / max(n - float(np.trace(influence)), 1e-9) ** 2
         if best is None or gcv < best[0]:
             best = (gcv, solver, float(factor), float(left @ left))
-    return best[1:]
+    return best
 
 
 def solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds: int, prior=None,
@@ -164,7 +169,11 @@ def solve_smooth_correction(matrix, offset, start, target, noise, design, n_spee
     is x - start = ``design`` @ u: a column per free ring speed and per orientation shift (whose column also
     moves the held rings' speeds as the fit would at the shifted orientation). ``prior``: per unknown u, the
     inverse square width of a Gaussian prior about 0 (0: none); the smoothness penalty acts on the speeds'
-    change. Returns the solution, its lambda, the noise propagated from the data's speeds and the misfit.
+    change, either anchored (second differences from delta = 0 at R = 0) or free at the centre (second
+    differences between rings only: a steep inner rise needs its largest change in the innermost ring); of
+    the two, the one with the lower GCV score at its best lambda is used (GCV as an estimate of predictive
+    error compares the two penalties as it compares lambdas; Golub, Heath & Wahba 1979). Returns the
+    solution, its lambda, the noise propagated from the data's speeds and the misfit.
     """
     start = np.asarray(start, float)
     weight = 1.0 / np.asarray(noise, float)
@@ -172,9 +181,14 @@ def solve_smooth_correction(matrix, offset, start, target, noise, design, n_spee
     if design.shape[1] == 0:
         return BeamSolution(start.copy(), np.inf, np.asarray(noise, float)[:n_speeds], float(residual0 @ residual0))
     x = (matrix @ design) * weight[:, None]
-    penalty = _second_differences(n_speeds + 1)[:, 1:] @ design[:n_speeds]  # with delta = 0 at R = 0
-    prior = np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float)
-    solver, factor, chi_square = _gcv_solve(x, residual0, penalty.T @ penalty, np.diag(prior), grid)
+    prior = np.diag(np.zeros(design.shape[1]) if prior is None else np.asarray(prior, float))
+    best = None
+    for rows in (_second_differences(n_speeds + 1)[:, 1:], _second_differences(n_speeds)):  # anchored, free
+        penalty = rows @ design[:n_speeds]
+        candidate = _gcv_solve(x, residual0, penalty.T @ penalty, prior, grid)
+        if best is None or candidate[0] < best[0]:
+            best = candidate
+    _, solver, factor, chi_square = best
     solution = start - design @ (solver @ residual0)
     # d x / d v_obs = E - M K S^-1 (A_s - E), E the speed rows of the identity (v_obs enters start and target)
     unit = np.eye(len(start))[:, :n_speeds]
@@ -224,32 +238,47 @@ def smear_basis(kernel, basis_fields: DiscBasis, intensity, v_systemic: float) -
     return SmearedBasis(fixed, basis)
 
 
-def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling,
-                  prior_width=()) -> tuple:
-    """(:class:`BeamSolution`, beam effect per ring, free rings) for one intensity assumption.
+def shift_limit(beam_effect, error, reach: float = 2.0) -> np.ndarray:
+    """How far the correction may move each constant orientation angle (deg): its error plus ``reach`` times
+    what the beam does to it, |fit of the smeared - fit of the unsmeared model| of the observed curve. The
+    beam's own bias is the physical scale of the change (Begeman 1989 notes that smearing flattens the
+    isovelocity contours, which the ring fit reads as a lower inclination); the factor 2 leaves room for the
+    model's smeared intensity differing from the sky's without letting the shift run away."""
+    return np.asarray(error, float) + reach * np.abs(np.nan_to_num(np.asarray(beam_effect, float)))
+
+
+def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise, measure, coupling, speeds=None,
+                  free=None, limits=None) -> tuple:
+    """(:class:`BeamSolution`, beam effect, free rings, shift limits) for one intensity assumption, one linear
+    (Gauss-Newton) step taken at the point where ``basis_fields`` were drawn.
 
     ``target``: what the data gave (speeds of the used rings, then the constant orientation angles);
     ``measure(map)`` the same quantities fitted the same way to another map; ``coupling``: (rings, angles)
-    d v / d angle of the ring fit. T(x) = A x + b is built from the smeared basis fields; the beam effect is T
-    at the observed curve minus the fit of its unsmeared model. The orientation shifts have a Gaussian prior
-    of width ``prior_width`` (their errors); a shift beyond it is clipped to it and the speeds solved again
-    with it held."""
+    d v / d angle of the ring fit; ``speeds``: the intrinsic speeds of the point (default: the observed ones)
+    and the orientation shifts are counted from it. T(x) = A x + b is built from the smeared basis fields; the
+    beam effect (speeds, then angles) is T minus the fit of the unsmeared model at the point. ``free`` (default:
+    :func:`affected_rings`) and ``limits`` ((lower, upper) of the shifts; default +/- :func:`shift_limit`) are
+    fixed at the first step and passed on to later ones. The shifts have no prior of their own: the angles'
+    target rows already hold the observed orientation with its error (a prior would count it twice); a shift
+    beyond its limits is clipped to them and the speeds solved again with it held."""
     target = np.asarray(target, float)
     n_speeds, size = coupling.shape[0], smeared.basis.shape[0]
-    start = np.concatenate([target[:n_speeds], np.zeros(size - n_speeds)])
+    speeds = target[:n_speeds] if speeds is None else np.asarray(speeds, float)
+    start = np.concatenate([speeds, np.zeros(size - n_speeds)])
     offset = np.asarray(measure(smeared.fixed), float)
     matrix = np.empty((len(target), size))
     for k in range(size):
         matrix[:, k] = np.asarray(measure(smeared.fixed + smeared.basis[k]), float) - offset
     effect = matrix @ start + offset - np.asarray(measure(basis_fields.field(start)), float)
-    free = affected_rings(effect[:n_speeds], noise[:n_speeds])
-    widths = np.asarray(prior_width, float)
+    free = affected_rings(effect[:n_speeds], noise[:n_speeds]) if free is None else free
+    if limits is None:
+        bound = shift_limit(effect[n_speeds:], noise[n_speeds:])
+        limits = (-bound, bound)
     design = correction_design(free, coupling)
-    prior = np.concatenate([np.zeros(int(free.sum())), 1.0 / widths**2])
-    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, prior)
+    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds)
     shifts = solution.x[n_speeds:]
-    if np.any(np.abs(shifts) > widths):
-        start = start + design[:, free.sum():] @ np.clip(shifts, -widths, widths)
+    if np.any((shifts < limits[0]) | (shifts > limits[1])):
+        start = start + design[:, free.sum():] @ np.clip(shifts, limits[0], limits[1])
         solution = solve_smooth_correction(matrix, offset, start, target, noise,
                                            correction_design(free, coupling, with_shifts=False), n_speeds)
-    return solution, effect[:n_speeds], free
+    return solution, effect, free, limits

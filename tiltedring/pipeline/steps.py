@@ -246,6 +246,7 @@ def ring_table(state) -> Additions:
     corrected = beam.geometry if beam is not None else {}
     for name, (values, errors) in state.geometry.adopted.items():
         values = np.full(len(table), corrected[name]) if name in corrected else values
+        errors = beam.geometry_error(name, errors) if name in corrected else errors
         table[name] = (wrap_angle(values) if name == "position_angle" else values) * u.deg
         table[f"{name}_err"] = errors * u.deg
     if beam is not None:
