@@ -169,12 +169,14 @@ GAUSS_NEWTON_STEPS = 2
 @dataclass
 class _Point:
     """One accepted point of the iteration: the solution (speeds and total orientation shifts), the smeared model
-    drawn exactly at it, its map chi^2, and the unsmeared basis fields drawn there."""
+    drawn exactly at it, its map chi^2, the unsmeared basis fields drawn there, and the speeds of the first
+    linear step (None when there was no iteration)."""
 
     solution: object
     model: np.ndarray
     chi_square: float
     basis_fields: object
+    first_speeds: np.ndarray | None = None
 
 
 class _Problem:
@@ -237,6 +239,7 @@ def _iterate(problem, image, limits=None):
     basis_fields = problem.basis(start)
     plain = basis_fields.field(start[: problem.n])  # the uncorrected model (unsmeared, observed orientation)
     solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits)
+    first = solution.x[: problem.n].copy()
     point, steps = None, 1
     for _ in range(GAUSS_NEWTON_STEPS + 1):
         basis_fields = problem.basis(solution.x)
@@ -247,7 +250,7 @@ def _iterate(problem, image, limits=None):
                 break
         chi = model_misfit(pixels, exact)
         steps += point is not None
-        point = _Point(solution, exact, chi, basis_fields)
+        point = _Point(solution, exact, chi, basis_fields, first)
         if steps > GAUSS_NEWTON_STEPS:
             break
         solution = problem.step(basis_fields, image, solution.x, free, limits)[0]
@@ -362,7 +365,7 @@ def beam_treatment(state) -> Additions:
         return fallback
     corrected, noise_full, spread = (np.full(len(layout), np.nan) for _ in range(3))
     corrected[ok], noise_full[ok] = solution.x[:n], solution.noise
-    spread[ok] = 0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)
+    spread[ok] = _beam_uncertainty(point, solutions, n)
     values = {"v_rotation": corrected}
     for k, name in enumerate(names):
         values[name] = float(observed[name] + solution.x[n + k]) % (360.0 if name == "position_angle" else np.inf)
@@ -370,6 +373,17 @@ def beam_treatment(state) -> Additions:
     treatment = BeamTreatment(values, point.model, summary, noise_full, spread, geometry_spread)
     return Additions(fields={"beam": treatment}, summaries={"beam_smearing": summary},
                      cautions=_geometry_cautions(summary, line_centre is None) + kind_notes)
+
+
+def _beam_uncertainty(point, solutions, n) -> np.ndarray:
+    """The correction's own uncertainty per corrected ring: half the range of the speeds over the intensity
+    assumptions and half their change over the iteration (first linear step to the accepted point), in
+    quadrature; the two are separate sources (what the intrinsic intensity is, and how far the first-order
+    solution was from the re-linearised one)."""
+    assumptions = 0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)
+    if point.first_speeds is None:
+        return assumptions
+    return np.hypot(assumptions, 0.5 * np.abs(point.solution.x[:n] - point.first_speeds[:n]))
 
 
 def _geometry_cautions(summary: dict, orientation_free: bool = True) -> list:
@@ -412,7 +426,8 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
         "intensity": notes[best],
         "intensity_alternatives": {name: note for name, note in notes.items() if name != best},
-        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions",
+        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions "
+                       "and half their change over the iteration, in quadrature",
         "smoothing_lambda": solution.smoothing,
         "rings_corrected_arcsec": [float(r) for r in radii[free]],
         "largest_beam_effect_kms": float(np.max(np.abs(effect[:n]))) if n else 0.0,
