@@ -14,7 +14,6 @@ white noise, a narrow foreground line excluded with the default interpolation). 
 """
 
 import argparse
-import subprocess
 import sys
 import tempfile
 import time
