@@ -269,6 +269,10 @@ class InputOptions:
                 "velocity_convention": self.velocity_convention, "velocity_map_kind": self.velocity_map_kind}
 
 
+#: astropy's own realisation (astropy.cosmology.realizations), so the default needs no check
+DEFAULT_COSMOLOGY = "Planck18"
+
+
 @dataclass
 class CurveOptions:
     """How the rotation-curve product (``curve.ecsv``) is put in physical units."""
@@ -278,7 +282,7 @@ class CurveOptions:
                               help="distance: a number in Mpc or a length such as 12Mpc (adds radius_kpc)")
     redshift: float | None = option(None, group="curve", bounds=Bounds(above=0, maximum=20),
                                     help="redshift, for the angular-diameter distance when no distance is given")
-    cosmology: str = option("Planck18", group="curve", help="astropy cosmology used with the redshift")
+    cosmology: str = option(DEFAULT_COSMOLOGY, group="curve", help="astropy cosmology used with the redshift")
 
     def __post_init__(self):
         validate(self)
@@ -288,7 +292,8 @@ class CurveOptions:
             from ..products.curve import parse_distance
 
             parse_distance(self.distance)
-        check_cosmology(self.cosmology)
+        if self.redshift is not None or self.cosmology != DEFAULT_COSMOLOGY:
+            check_cosmology(self.cosmology)  # importing astropy.cosmology costs about a second: only when it matters
 
     def to_dict(self) -> dict:
         return asdict(self)
