@@ -81,7 +81,7 @@ def fit_settings(options: RingFitOptions, free=None, min_pixels: int = 0, pixels
     """The compiled fit's :class:`.ring_solver.FitSettings` for ``options`` and the ``free`` parameter mask."""
     from .ring_solver import FitSettings
 
-    free = np.zeros(COUNT, bool) if free is None else np.ascontiguousarray(free, bool)
+    free = np.zeros(COUNT, bool) if free is None else np.array(free, bool)
     return FitSettings(free, AZIMUTH_WEIGHTS[options.azimuth_weight], float(np.sin(np.radians(options.minor_axis_gap))),
                        HALVES.index(options.half), float(options.clip or 0.0), int(options.max_iterations),
                        int(options.geometry_updates), int(min_pixels), float(pixels_per_beam))
@@ -104,12 +104,12 @@ def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, 
     x, y, v, sigma = (np.ascontiguousarray(a, float) for a in (x, y, v, sigma))
     bounds = np.asarray(bounds, np.int64).reshape(-1, 2)
     m = len(bounds)
-    order_radius = np.zeros(len(x)) if order_radius is None else np.ascontiguousarray(order_radius, float)
-    pixels = PixelSet(x, y, v, sigma, order_radius, float(margin), np.ascontiguousarray(sky_jacobian, float))
-    column = lambda a: np.ascontiguousarray(np.broadcast_to(a, m), float)  # noqa: E731
-    tasks = RingTasks(np.ascontiguousarray(bounds[:, 0]), np.ascontiguousarray(bounds[:, 1]),
-                      np.ascontiguousarray(np.broadcast_to(np.asarray(starts, float), (m, COUNT))), column(inner),
-                      column(outer))
+    order_radius = np.zeros(len(x)) if order_radius is None else np.array(order_radius, float)
+    pixels = PixelSet(np.stack([x, y, v, sigma]), order_radius, float(margin), np.array(sky_jacobian, float))
+    # fresh writable C arrays throughout, so that every call has the one signature the kernels were compiled for
+    column = lambda a: np.array(np.broadcast_to(a, m), float)  # noqa: E731
+    tasks = RingTasks(np.array(bounds[:, 0]), np.array(bounds[:, 1]),
+                      np.array(np.broadcast_to(np.asarray(starts, float), (m, COUNT))), column(inner), column(outer))
     settings = fit_settings(options, free, min_pixels, pixels_per_beam)
     out = RingOutputs(np.empty((m, COUNT)), np.empty((m, COUNT)), np.zeros(m, np.int64), np.zeros(m), np.zeros(m),
                       np.zeros(m), np.zeros(m, bool), np.zeros(m, bool))

@@ -9,6 +9,8 @@ the damped system is solved by Cholesky decomposition.
 The entry point :func:`fit_ring_list` takes its inputs grouped: the pixels shared by every ring
 (:class:`PixelSet`), each ring's slice, start and edges (:class:`RingTasks`), how rings are
 fitted (:class:`FitSettings`), and the arrays the results are written to (:class:`RingOutputs`).
+The kernels it calls take plain arrays: a NamedTuple of arrays passed from kernel to kernel makes
+numba's compilation several times slower (every field is unpacked and reference-counted at each call).
 """
 
 from __future__ import annotations
@@ -20,24 +22,28 @@ from numba import njit
 
 from .geometry import project, ring_trig
 from .kinematics import pixel_velocity, ring_constants
-from .parameters import COUNT, GEOMETRY, LINEAR
+from .parameters import COUNT, GEOMETRY, LINEAR, mask
 from .parameters import Parameter as P
 
 AZIMUTH_BINS = 36
 INC_BOUNDS = (1.0, 89.0)
 
 
+#: rows of :attr:`PixelSet.table`
+X, Y, V, SIGMA = 0, 1, 2, 3
+#: rows of a ring's selection buffer (sqrt-weight, cos theta, sin theta of each selected pixel)
+WEIGHT, COS, SIN = 0, 1, 2
+
+
 class PixelSet(NamedTuple):
     """Pixels shared by every ring, sorted by ``order_radius`` (the disc radius of :mod:`.candidates`).
 
-    ``margin``: a ring's pixels this close (in ``order_radius``) to an end of its slice may continue beyond
-    it; ``jac``: the sky Jacobian (arcsec per pixel).
+    ``table``: (4, n) rows :data:`X`, :data:`Y` (pixel coordinates), :data:`V` (velocity) and :data:`SIGMA`
+    (its error); ``margin``: a ring's pixels this close (in ``order_radius``) to an end of its slice may continue
+    beyond it; ``jac``: the sky Jacobian (arcsec per pixel).
     """
 
-    x: np.ndarray
-    y: np.ndarray
-    v: np.ndarray
-    sigma: np.ndarray
+    table: np.ndarray
     order_radius: np.ndarray
     margin: float
     jac: np.ndarray
@@ -87,13 +93,18 @@ class RingOutputs(NamedTuple):
     truncated: np.ndarray
 
 
-class Selection(NamedTuple):
-    """Buffers of one ring's selected pixels: positions in the pixel set, sqrt-weights and cos/sin theta."""
+#: masks over the parameters (read-only constants inside the kernels)
+IS_GEOMETRY = mask(GEOMETRY)
+IS_LINEAR = mask(LINEAR)
 
-    at: np.ndarray
-    w_sqrt: np.ndarray
-    cos_t: np.ndarray
-    sin_t: np.ndarray
+
+@njit(cache=True, nogil=True)
+def _nan_vector(n):
+    """A vector of ``n`` NaNs."""
+    out = np.empty(n)
+    for j in range(n):
+        out[j] = np.nan
+    return out
 
 
 @njit(cache=True, nogil=True)
@@ -108,7 +119,7 @@ def cholesky_solve(a, b):
                 s -= low[i, k] * low[j, k]
             if i == j:
                 if not s > 0.0 or not np.isfinite(s):
-                    return np.full(n, np.nan), False
+                    return _nan_vector(n), False
                 low[i, i] = np.sqrt(s)
             else:
                 low[i, j] = s / low[j, j]
@@ -132,7 +143,7 @@ def _clamp(p):
     p[P.inclination] = min(max(p[P.inclination], INC_BOUNDS[0]), INC_BOUNDS[1])
 
 
-@njit(cache=True, nogil=True, inline="always")
+@njit(cache=True, nogil=True)
 def angular_weight(c, sigma, power, sin_gap, half):
     """sqrt of a pixel's weight, |cos theta|^(power/2) / sigma, or -1 where the gap about the
     minor axis or the chosen half (0 whole, 1 approaching: cos < 0, 2 receding: cos > 0) leaves it out."""
@@ -151,18 +162,19 @@ def angular_weights(cos_t, sigma, power, sin_gap, half):
 
 
 @njit(cache=True, nogil=True)
-def _select(pixels, lo, hi, p, inner, outer, settings, buf):
-    """Pixels of slice [lo, hi) inside the ring at geometry ``p``; fills the :class:`Selection` ``buf``.
+def _select(table, jac, lo, hi, p, inner, outer, power, sin_gap, half, at, sel):
+    """Pixels of slice [lo, hi) inside the ring at geometry ``p``: their positions in the table go to ``at``,
+    their sqrt-weights (:func:`angular_weight`) and cos/sin theta to rows :data:`WEIGHT`, :data:`COS`,
+    :data:`SIN` of ``sel``.
 
     Returns (count, first, last): ``first``/``last`` are the lowest and highest slice positions
     whose disc radius falls in the ring (gap and half aside; -1 if none).
     """
-    x, y, sigma, jac = pixels.x, pixels.y, pixels.sigma, pixels.jac
     sp, cp, ci = ring_trig(p[P.position_angle], p[P.inclination])
     n = 0
     first, last = -1, -1
     for k in range(lo, hi):
-        xd, yd = project(x[k], y[k], p[P.x_center], p[P.y_center], jac, sp, cp, ci)
+        xd, yd = project(table[X, k], table[Y, k], p[P.x_center], p[P.y_center], jac, sp, cp, ci)
         r = np.sqrt(xd * xd + yd * yd)
         if r < inner or r >= outer:
             continue
@@ -170,13 +182,13 @@ def _select(pixels, lo, hi, p, inner, outer, settings, buf):
             first = k
         last = k
         c, s = (xd / r, yd / r) if r > 0.0 else (1.0, 0.0)
-        weight = angular_weight(c, sigma[k], settings.power, settings.sin_gap, settings.half)
+        weight = angular_weight(c, table[SIGMA, k], power, sin_gap, half)
         if weight < 0.0:
             continue
-        buf.at[n] = k
-        buf.w_sqrt[n] = weight
-        buf.cos_t[n] = c
-        buf.sin_t[n] = s
+        at[n] = k
+        sel[WEIGHT, n] = weight
+        sel[COS, n] = c
+        sel[SIN, n] = s
         n += 1
     return n, first, last
 
@@ -193,9 +205,8 @@ def _reaches_edge(order_radius, lo, hi, first, last, margin):
 
 
 @njit(cache=True, nogil=True)
-def normal_equations(pixels, buf, n, p, fidx):
+def normal_equations(table, jac, at, sel, n, p, fidx):
     """(chi^2, J^T W J, J^T W r) over the free parameters ``fidx`` for the ``n`` selected pixels."""
-    x, y, v, jac, at, w_sqrt = pixels.x, pixels.y, pixels.v, pixels.jac, buf.at, buf.w_sqrt
     nf = fidx.shape[0]
     h = np.zeros((nf, nf))
     g = np.zeros(nf)
@@ -204,8 +215,8 @@ def normal_equations(pixels, buf, n, p, fidx):
     cost = 0.0
     for j in range(n):
         k = at[j]
-        w = w_sqrt[j]
-        r = (v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)) * w
+        w = sel[WEIGHT, j]
+        r = (table[V, k] - pixel_velocity(table[X, k], table[Y, k], p, jac, const, d)) * w
         cost += r * r
         for a in range(nf):
             da = d[fidx[a]] * w
@@ -219,10 +230,10 @@ def normal_equations(pixels, buf, n, p, fidx):
 
 
 @njit(cache=True, nogil=True)
-def _levenberg_marquardt(pixels, buf, n, p, fidx, max_iterations):
+def _levenberg_marquardt(table, jac, at, sel, n, p, fidx, max_iterations):
     """Minimise chi^2 over p[fidx] from ``p``; returns (p, chi^2, J^T W J, converged)."""
     lam = 1e-3
-    cost, h, g = normal_equations(pixels, buf, n, p, fidx)
+    cost, h, g = normal_equations(table, jac, at, sel, n, p, fidx)
     nf = fidx.shape[0]
     converged = max_iterations == 0
     for _ in range(max_iterations):
@@ -240,7 +251,7 @@ def _levenberg_marquardt(pixels, buf, n, p, fidx, max_iterations):
             for a in range(nf):
                 trial[fidx[a]] += step[a]
             _clamp(trial)
-            c_new, h_new, g_new = normal_equations(pixels, buf, n, trial, fidx)
+            c_new, h_new, g_new = normal_equations(table, jac, at, sel, n, trial, fidx)
             if np.isfinite(c_new) and c_new <= cost:
                 improved = True
                 # converged once chi^2 falls by less than a thousandth of the reduced chi^2
@@ -256,31 +267,72 @@ def _levenberg_marquardt(pixels, buf, n, p, fidx, max_iterations):
 
 
 @njit(cache=True, nogil=True)
-def _residuals(pixels, buf, n, p):
+def _residuals(table, jac, at, n, p):
     """v - v_los(p) at the ``n`` selected pixels (unweighted)."""
-    x, y, v, jac, at = pixels.x, pixels.y, pixels.v, pixels.jac, buf.at
     d = np.empty(COUNT)
     const = ring_constants(p, jac)
     out = np.empty(n)
     for j in range(n):
         k = at[j]
-        out[j] = v[k] - pixel_velocity(x[k], y[k], p, jac, const, d)
+        out[j] = table[V, k] - pixel_velocity(table[X, k], table[Y, k], p, jac, const, d)
     return out
 
 
 @njit(cache=True, nogil=True)
-def _fit_selected(pixels, buf, n, p, fidx, max_iterations, clip):
+def _kth_smallest(a, k):
+    """The ``k``-th smallest (from 0) of ``a``, which is reordered in place (Wirth 1976, "Algorithms + Data
+    Structures = Programs", sect. 2.3.4); NaN ranks above every number, as in numpy's sort."""
+    lo, hi = 0, a.shape[0] - 1
+    while lo < hi:
+        pivot = a[k]
+        i, j = lo, hi
+        while i <= j:
+            # a[i] < pivot, with NaN the largest value
+            while a[i] < pivot or (pivot != pivot and a[i] == a[i]):
+                i += 1
+            while pivot < a[j] or (a[j] != a[j] and pivot == pivot):
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if j < k:
+            lo = i
+        if k < i:
+            hi = j
+    return a[k]
+
+
+@njit(cache=True, nogil=True)
+def _median(a):
+    """Median of ``a`` (reordered in place): the middle value, or the mean of the two middle values."""
+    n = a.shape[0]
+    if n == 0:
+        return np.nan
+    half = n // 2
+    if n % 2:
+        return _kth_smallest(a, half)
+    low = _kth_smallest(a, half - 1)
+    return (low + _kth_smallest(a, half)) / 2
+
+
+@njit(cache=True, nogil=True)
+def _fit_selected(table, jac, at, sel, n, p, fidx, max_iterations, clip):
     """LM on the selection, with iterative clipping at ``clip`` robust sigmas (0: off).
 
     Clipped pixels are removed from the buffers in place. Returns (p, chi^2, J^T W J, converged, n).
     """
     rounds = 4 if clip > 0 else 1
     for _ in range(rounds):
-        p_new, cost, h, converged = _levenberg_marquardt(pixels, buf, n, p.copy(), fidx, max_iterations)
+        p_new, cost, h, converged = _levenberg_marquardt(table, jac, at, sel, n, p.copy(), fidx, max_iterations)
         if clip <= 0:
             break
-        raw = _residuals(pixels, buf, n, p_new)
-        mad = 1.4826 * np.median(np.abs(raw - np.median(raw)))
+        raw = _residuals(table, jac, at, n, p_new)
+        centre = _median(raw.copy())
+        spread = np.empty(n)
+        for j in range(n):
+            spread[j] = abs(raw[j] - centre)
+        mad = 1.4826 * _median(spread)
         limit = clip * max(mad, 1e-9)
         kept = 0
         for j in range(n):
@@ -290,9 +342,9 @@ def _fit_selected(pixels, buf, n, p, fidx, max_iterations, clip):
         m = 0
         for j in range(n):
             if abs(raw[j]) <= limit:
-                for column in (buf.w_sqrt, buf.cos_t, buf.sin_t):
-                    column[m] = column[j]
-                buf.at[m] = buf.at[j]
+                for row in (WEIGHT, COS, SIN):
+                    sel[row, m] = sel[row, j]
+                at[m] = at[j]
                 m += 1
         n = m
     return p_new, cost, h, converged, n
@@ -309,89 +361,99 @@ def _scaled_errors(h, cost, n, pixels_per_beam):
         unit[a] = 1.0
         column, ok = cholesky_solve(h, unit)
         if not ok:
-            return np.full(nf, np.nan)
+            return _nan_vector(nf)
         out[a] = np.sqrt(max(column[a], 0.0) * factor)
     return out
 
 
 @njit(cache=True, nogil=True)
-def _coverage(buf, n, settings):
+def _coverage(sel, n, sin_gap, half):
     """Fraction of the usable azimuth (outside the gap, on the chosen half) holding pixels."""
     hit = np.zeros(AZIMUTH_BINS, np.bool_)
     for j in range(n):
-        theta = np.arctan2(buf.sin_t[j], buf.cos_t[j]) % (2 * np.pi)
+        theta = np.arctan2(sel[SIN, j], sel[COS, j]) % (2 * np.pi)
         hit[min(int(theta / (2 * np.pi) * AZIMUTH_BINS), AZIMUTH_BINS - 1)] = True
     usable = 0
     covered = 0
     for b in range(AZIMUTH_BINS):
-        if angular_weight(np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS), 1.0, 0, settings.sin_gap, settings.half) >= 0.0:
+        if angular_weight(np.cos((b + 0.5) * 2 * np.pi / AZIMUTH_BINS), 1.0, 0, sin_gap, half) >= 0.0:
             usable += 1
             covered += hit[b]
     return covered / max(usable, 1)
 
 
-@njit(cache=True, nogil=True, inline="always")
-def _mask_of(members):
-    """Boolean vector over the parameters, True at ``members``."""
-    out = np.zeros(COUNT, np.bool_)
-    for j in members:
-        out[j] = True
+@njit(cache=True, nogil=True)
+def _positions(mask):
+    """Positions where ``mask`` is True, ascending."""
+    count = 0
+    for j in range(mask.shape[0]):
+        count += mask[j]
+    out = np.empty(count, np.int64)
+    count = 0
+    for j in range(mask.shape[0]):
+        if mask[j]:
+            out[count] = j
+            count += 1
     return out
 
 
 @njit(cache=True, nogil=True)
-def fit_one_ring(pixels, tasks, k, settings, out):
-    """Fit ring ``k`` of ``tasks`` from the pixels in its slice (see :mod:`.engine`); writes row ``k`` of ``out``.
+def fit_one_ring(table, order_radius, margin, jac, lo, hi, start, inner, outer, settings, params, errors):
+    """Fit the ring of slice ``lo:hi`` of the pixel ``table`` (see :mod:`.engine`), from ``start``, between disc
+    radii ``inner`` and ``outer``; writes the ring's parameters and errors to ``params`` and ``errors``.
 
-    ``out.truncated[k]`` is set when the ring's pixels came within ``pixels.margin`` of an end of its slice
-    (in ``pixels.order_radius``, the radius the pixels are sorted by), i.e. the ring may extend beyond its
-    candidates and should be refitted from a wider slice. Since a ring is a connected band on the sky, a ring
-    that continued beyond the slice would have pixels all the way to its end, so a gap wider than the pixel
-    spacing between the ring's pixels and the slice's end means nothing was cut off.
+    Returns (n_pixels, coverage, chi2_reduced, rms, converged, truncated) (see :class:`RingOutputs`).
+    ``truncated`` is set when the ring's pixels came within ``margin`` of an end of its slice (in ``order_radius``,
+    the radius the pixels are sorted by), i.e. the ring may extend beyond its candidates and should be refitted
+    from a wider slice. Since a ring is a connected band on the sky, a ring that continued beyond the slice would
+    have pixels all the way to its end, so a gap wider than the pixel spacing between the ring's pixels and the
+    slice's end means nothing was cut off.
     """
-    lo, hi, inner, outer = tasks.lo[k], tasks.hi[k], tasks.inner[k], tasks.outer[k]
     free = settings.free
+    power, sin_gap, half, clip = settings.power, settings.sin_gap, settings.half, settings.clip
     size = max(hi - lo, 1)
-    buf = Selection(np.empty(size, np.int64), np.empty(size), np.empty(size), np.empty(size))
-    fidx = np.flatnonzero(free)
+    at, sel = np.empty(size, np.int64), np.empty((3, size))
+    fidx = _positions(free)
     nf = fidx.shape[0]
-    is_geometry = _mask_of(GEOMETRY)
-    geometry_free = np.any(free & is_geometry)
-    vel = np.flatnonzero(free & _mask_of(LINEAR))
+    geometry_free = False
+    free_linear = np.empty(COUNT, np.bool_)
+    for j in range(COUNT):
+        geometry_free = geometry_free or (free[j] and IS_GEOMETRY[j])
+        free_linear[j] = free[j] and IS_LINEAR[j]
+    vel = _positions(free_linear)
     need = max(settings.min_pixels, 2 * nf, 3)
-    p = tasks.starts[k].copy()
+    p = start.copy()
     _clamp(p)
-    out.errors[k, :] = np.nan
-    out.n_pixels[k], out.coverage[k], out.chi2_reduced[k], out.rms[k] = 0, 0.0, np.nan, np.nan
-    out.converged[k], out.truncated[k] = False, False
+    for j in range(COUNT):
+        errors[j] = np.nan
+    truncated = False
     last_step = np.zeros(COUNT)
     damping = 0.0
     n = 0
     cost, h, converged = 0.0, np.zeros((nf, nf)), False
     updates = settings.geometry_updates if geometry_free else 1
     for update in range(updates + 1):
-        n, first, last = _select(pixels, lo, hi, p, inner, outer, settings, buf)
-        if _reaches_edge(pixels.order_radius, lo, hi, first, last, pixels.margin):
-            out.truncated[k] = True
+        n, first, last = _select(table, jac, lo, hi, p, inner, outer, power, sin_gap, half, at, sel)
+        if _reaches_edge(order_radius, lo, hi, first, last, margin):
+            truncated = True
         if n < need:
-            out.params[k, :] = p
-            out.n_pixels[k], out.coverage[k] = n, _coverage(buf, n, settings)
-            return
+            for j in range(COUNT):
+                params[j] = p[j]
+            return n, _coverage(sel, n, sin_gap, half), np.nan, np.nan, False, truncated
         if update == updates:
             # not settled: hold the damped geometry and refit the velocities on its own pixel selection
             if vel.shape[0] > 0:
-                p, cost, h, converged, n = _fit_selected(pixels, buf, n, p, vel, settings.max_iterations,
-                                                         settings.clip)
-            cost, h, _ = normal_equations(pixels, buf, n, p, fidx)  # all free parameters, for errors
+                p, cost, h, converged, n = _fit_selected(table, jac, at, sel, n, p, vel, settings.max_iterations, clip)
+            cost, h, _ = normal_equations(table, jac, at, sel, n, p, fidx)  # all free parameters, for errors
             converged = True
             break
-        p_new, cost, h, converged, n = _fit_selected(pixels, buf, n, p, fidx, settings.max_iterations, settings.clip)
+        p_new, cost, h, converged, n = _fit_selected(table, jac, at, sel, n, p, fidx, settings.max_iterations, clip)
         # settled when no geometry parameter moved by more than 0.02 (deg or pixel) or a tenth of its error
         scaled = _scaled_errors(h, cost, n, settings.pixels_per_beam)
         moved = False
         for a in range(nf):
             j = fidx[a]
-            if is_geometry[j] and abs(p_new[j] - p[j]) > max(0.02, 0.1 * scaled[a]):
+            if IS_GEOMETRY[j] and abs(p_new[j] - p[j]) > max(0.02, 0.1 * scaled[a]):
                 moved = True
         if not geometry_free or not moved:
             p = p_new
@@ -409,13 +471,16 @@ def fit_one_ring(pixels, tasks, k, settings, out):
         p = p_new
     chi2_red = cost / max(n - nf, 1)
     scaled = _scaled_errors(h, cost, n, settings.pixels_per_beam)
-    if np.isfinite(scaled).all():
+    finite = True
+    for a in range(nf):
+        finite = finite and np.isfinite(scaled[a])
+    if finite:
         for a in range(nf):
-            out.errors[k, fidx[a]] = scaled[a]
+            errors[fidx[a]] = scaled[a]
     else:
         converged = False
     squares = 0.0
-    for r in _residuals(pixels, buf, n, p):
+    for r in _residuals(table, jac, at, n, p):
         squares += r * r
     if p[P.v_rotation] < 0 and free[P.position_angle]:  # a free position angle turns half a circle instead (same
         p[P.position_angle] += 180.0                      # v_los field); with the position angle held, the sign
@@ -424,14 +489,16 @@ def fit_one_ring(pixels, tasks, k, settings, out):
     p[P.position_angle] = p[P.position_angle] % 360.0
     if p[P.position_angle] >= 360.0:
         p[P.position_angle] = 0.0
-    out.params[k, :] = p
-    out.n_pixels[k], out.coverage[k], out.chi2_reduced[k] = n, _coverage(buf, n, settings), chi2_red
-    out.rms[k] = np.sqrt(squares / max(n, 1))
-    out.converged[k] = converged
+    for j in range(COUNT):
+        params[j] = p[j]
+    return n, _coverage(sel, n, sin_gap, half), chi2_red, np.sqrt(squares / max(n, 1)), converged, truncated
 
 
 @njit(cache=True, nogil=True)
 def fit_ring_list(rings, pixels, tasks, settings, out):
     """:func:`fit_one_ring` for each ring index in ``rings`` (rows of ``tasks`` and ``out``)."""
+    table, order_radius, margin, jac = pixels
     for k in rings:
-        fit_one_ring(pixels, tasks, k, settings, out)
+        (out.n_pixels[k], out.coverage[k], out.chi2_reduced[k], out.rms[k], out.converged[k],
+         out.truncated[k]) = fit_one_ring(table, order_radius, margin, jac, tasks.lo[k], tasks.hi[k], tasks.starts[k],
+                                          tasks.inner[k], tasks.outer[k], settings, out.params[k], out.errors[k])
