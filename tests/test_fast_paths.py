@@ -152,3 +152,31 @@ def test_first_order_response_agrees_with_refitting(quiet):
     assert ok.sum() >= len(layout) - 1
     assert np.all(np.abs(predicted["v_rotation"] - refit_c)[ok] <= 0.05 + 0.1 * change[ok])
     assert np.nanmax(change) > 1.0  # the ripple did move the speeds
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 8, 301, 400])
+def test_compiled_median_is_the_middle_of_numpy_sort(n):
+    """ring_solver._median (a selection, written out to keep the compile short) against the middle of
+    np.sort (NaN last), the definition np.median follows; exact, ties and NaN included."""
+    from tiltedring.fitting.ring_solver import _median
+
+    rng = np.random.default_rng(n)
+    for values in (rng.normal(size=n), rng.integers(0, 4, n).astype(float),
+                   np.where(rng.random(n) < 0.2, np.nan, rng.normal(size=n))):
+        ordered = np.sort(values)
+        middle = ordered[n // 2] if n % 2 else (ordered[n // 2 - 1] + ordered[n // 2]) / 2
+        got = _median(values.copy())
+        assert got == middle or (np.isnan(got) and np.isnan(middle))
+        if not np.isnan(values).any():
+            assert got == np.median(values)
+
+
+def test_compiled_search_sorted_matches_numpy():
+    """geometry._search_sorted against np.searchsorted (side 'left'), NaN keys and repeated radii included."""
+    from tiltedring.fitting.geometry import _search_sorted
+
+    radii = np.array([0.0, 1.5, 1.5, 2.0, 7.25, 30.0])
+    keys = np.concatenate([radii, radii + 1e-9, radii - 1e-9, [-5.0, 100.0, np.nan, np.inf, -np.inf]])
+    for key in keys:
+        assert _search_sorted(radii, key) == np.searchsorted(radii, key)
+    assert _search_sorted(radii[:0], 1.0) == 0

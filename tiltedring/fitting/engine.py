@@ -98,29 +98,33 @@ def fit_rings(x, y, v, sigma, bounds, starts, free, sky_jacobian, inner, outer, 
     ring edges (arcsec). Rings are shared among ``threads`` threads (default: the machine's cores,
     at most 4); the compiled fit releases the interpreter lock. Returns a list of :class:`RingSolution`.
     """
-    from .ring_solver import PixelSet, RingOutputs, RingTasks, fit_ring_list
+    from .ring_solver import fit_one_ring
     from .threads import run_parts, thread_count
 
-    x, y, v, sigma = (np.ascontiguousarray(a, float) for a in (x, y, v, sigma))
-    bounds = np.asarray(bounds, np.int64).reshape(-1, 2)
+    # fresh writable C arrays throughout, so that every call has the one signature the kernel was compiled for
+    table = np.array([np.ravel(a) for a in (x, y, v, sigma)], float)
+    bounds = np.array(bounds, np.int64).reshape(-1, 2)
     m = len(bounds)
-    order_radius = np.zeros(len(x)) if order_radius is None else np.array(order_radius, float)
-    pixels = PixelSet(np.stack([x, y, v, sigma]), order_radius, float(margin), np.array(sky_jacobian, float))
-    # fresh writable C arrays throughout, so that every call has the one signature the kernels were compiled for
-    column = lambda a: np.array(np.broadcast_to(a, m), float)  # noqa: E731
-    tasks = RingTasks(np.array(bounds[:, 0]), np.array(bounds[:, 1]),
-                      np.array(np.broadcast_to(np.asarray(starts, float), (m, COUNT))), column(inner), column(outer))
+    order_radius = np.zeros(table.shape[1]) if order_radius is None else np.array(order_radius, float)
+    jac = np.array(sky_jacobian, float)
+    starts = np.array(np.broadcast_to(np.asarray(starts, float), (m, COUNT)))
+    inner, outer = (np.array(np.broadcast_to(a, m), float) for a in (inner, outer))
     settings = fit_settings(options, free, min_pixels, pixels_per_beam)
-    out = RingOutputs(np.empty((m, COUNT)), np.empty((m, COUNT)), np.zeros(m, np.int64), np.zeros(m), np.zeros(m),
-                      np.zeros(m), np.zeros(m, bool), np.zeros(m, bool))
+    params, errors = np.empty((m, COUNT)), np.empty((m, COUNT))
+    stats = [None] * m
+
+    def fit_part(rings):
+        for k in rings:
+            stats[k] = fit_one_ring(table, order_radius, float(margin), jac, bounds[k, 0], bounds[k, 1], starts[k],
+                                    inner[k], outer[k], settings, params[k], errors[k])
+
     # the largest rings first, dealt out in turn, so the threads finish together
     order = np.argsort(bounds[:, 0] - bounds[:, 1], kind="stable")
     threads = min(threads or thread_count(), max(m, 1))
-    parts = [np.ascontiguousarray(order[t::threads]) for t in range(threads)]
-    run_parts(lambda part: fit_ring_list(part, pixels, tasks, settings, out), parts, threads)
-    return [RingSolution(out.params[k], out.errors[k], int(out.n_pixels[k]), float(out.coverage[k]),
-                         float(out.chi2_reduced[k]), float(out.rms[k]), bool(out.converged[k]), settings.free.copy(),
-                         bool(out.truncated[k])) for k in range(m)]
+    run_parts(fit_part, [order[t::threads] for t in range(threads)], threads)
+    return [RingSolution(params[k], errors[k], int(n), float(coverage), float(chi2), float(rms), bool(converged),
+                         settings.free.copy(), bool(truncated))
+            for k, (n, coverage, chi2, rms, converged, truncated) in enumerate(stats)]
 
 
 def fit_ring(x, y, v, sigma, start, free, sky_jacobian, inner, outer, options=RingFitOptions(),

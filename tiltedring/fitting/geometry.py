@@ -111,7 +111,10 @@ def ring_trig(pa, inc):
 @njit(cache=True)
 def ring_planes(radius, x_center, y_center, position_angle, inclination):
     """:class:`RingPlanes` of rings given by radius, centre and angles (deg)."""
-    sp, cp, ci = ring_trig(position_angle, inclination)
+    n = radius.shape[0]
+    sp, cp, ci = np.empty(n), np.empty(n), np.empty(n)
+    for j in range(n):  # a loop of the scalar kernel the ring fit compiles anyway (array sines compile slowly)
+        sp[j], cp[j], ci[j] = ring_trig(position_angle[j], inclination[j])
     return RingPlanes(radius, x_center, y_center, sp, cp, ci)
 
 
@@ -124,13 +127,27 @@ def _offset(x, y, jac, planes, j, radius):
 
 
 @njit(cache=True)
+def _search_sorted(a, value):
+    """First position in the ascending ``a`` whose element is not below ``value`` (NaN ranks last), by
+    bisection: ``np.searchsorted(a, value)``, written out because numba's version is slow to compile."""
+    lo, hi = 0, a.shape[0]
+    while lo < hi:
+        mid = lo + ((hi - lo) >> 1)
+        if a[mid] < value or (value != value and a[mid] == a[mid]):
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo
+
+
+@njit(cache=True)
 def place_pixel(x, y, jac, planes, r_outer):
     """(fractional ring index, disc radius) of one pixel; (-1, NaN) beyond ``r_outer`` (see :func:`assign_to_rings`)."""
     radii = planes.radius
     m = radii.shape[0]
     # start from the ring the middle ring's geometry suggests, then walk to the sign change of f
     start = _offset(x, y, jac, planes, m // 2, 0.0)
-    j = min(max(np.searchsorted(radii, start), 0), m - 1)
+    j = min(max(_search_sorted(radii, start), 0), m - 1)
     fj = _offset(x, y, jac, planes, j, radii[j])
     if fj >= 0.0:
         while j + 1 < m:

@@ -142,7 +142,9 @@ def _model_pixels(grid, planes, rings, out, lo, hi):
     vrot, vrad = rings.v_rotation, rings.v_radial
     sp, cp, ci = planes.sin_pa, planes.cos_pa, planes.cos_inc
     last = planes.radius.shape[0] - 1
-    si = np.sin(inc * DEG)
+    si = np.empty(last + 1)
+    for j in range(last + 1):  # element by element: array sines compile slowly
+        si[j] = np.sin(inc[j] * DEG)
     for k in range(lo, hi):
         at = flat[k] if flat.shape[0] else k  # no index list: every pixel of the map in order
         x, y = float(at % nx), float(at // nx)

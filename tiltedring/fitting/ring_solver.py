@@ -1,4 +1,4 @@
-"""Compiled ring fits: pixel selection, Levenberg-Marquardt and errors for many rings in one call.
+"""Compiled ring fits: pixel selection, Levenberg-Marquardt and errors of one ring.
 
 The whole per-ring fit of :mod:`.engine` runs here without the interpreter (numba, ``nogil`` so
 that threads can share the rings of a stage). Each ring reads a contiguous slice of pixel arrays
@@ -6,11 +6,11 @@ sorted by disc radius, so no pixel array is copied per ring. Normal equations ar
 the fly (J^T W J and J^T W r over the free parameters) instead of storing the (n, 7) Jacobian, and
 the damped system is solved by Cholesky decomposition.
 
-The entry point :func:`fit_ring_list` takes its inputs grouped: the pixels shared by every ring
-(:class:`PixelSet`), each ring's slice, start and edges (:class:`RingTasks`), how rings are
-fitted (:class:`FitSettings`), and the arrays the results are written to (:class:`RingOutputs`).
-The kernels it calls take plain arrays: a NamedTuple of arrays passed from kernel to kernel makes
-numba's compilation several times slower (every field is unpacked and reference-counted at each call).
+The entry point :func:`fit_one_ring` fits one ring; :func:`.engine.fit_rings` calls it for each ring,
+sharing the rings among threads. The pixels shared by every ring are one (4, n) table with rows
+:data:`X`, :data:`Y`, :data:`V`, :data:`SIGMA`, and how rings are fitted is a :class:`FitSettings`.
+The kernels take plain arrays: a NamedTuple of arrays handed from kernel to kernel makes numba's
+compilation several times slower (every field is unpacked and reference-counted at each call).
 """
 
 from __future__ import annotations
@@ -29,34 +29,10 @@ AZIMUTH_BINS = 36
 INC_BOUNDS = (1.0, 89.0)
 
 
-#: rows of :attr:`PixelSet.table`
+#: rows of the pixel table: pixel coordinates, velocity and its error
 X, Y, V, SIGMA = 0, 1, 2, 3
 #: rows of a ring's selection buffer (sqrt-weight, cos theta, sin theta of each selected pixel)
 WEIGHT, COS, SIN = 0, 1, 2
-
-
-class PixelSet(NamedTuple):
-    """Pixels shared by every ring, sorted by ``order_radius`` (the disc radius of :mod:`.candidates`).
-
-    ``table``: (4, n) rows :data:`X`, :data:`Y` (pixel coordinates), :data:`V` (velocity) and :data:`SIGMA`
-    (its error); ``margin``: a ring's pixels this close (in ``order_radius``) to an end of its slice may continue
-    beyond it; ``jac``: the sky Jacobian (arcsec per pixel).
-    """
-
-    table: np.ndarray
-    order_radius: np.ndarray
-    margin: float
-    jac: np.ndarray
-
-
-class RingTasks(NamedTuple):
-    """Per ring (one row each): its slice ``lo:hi`` of the pixels, starting parameters and edges (arcsec)."""
-
-    lo: np.ndarray
-    hi: np.ndarray
-    starts: np.ndarray
-    inner: np.ndarray
-    outer: np.ndarray
 
 
 class FitSettings(NamedTuple):
@@ -75,22 +51,6 @@ class FitSettings(NamedTuple):
     geometry_updates: int
     min_pixels: int
     pixels_per_beam: float
-
-
-class RingOutputs(NamedTuple):
-    """Per ring results, written in place: parameters and errors (n_rings, 7) and the fit statistics.
-
-    ``truncated`` is True when the ring's pixels came within the margin of an end of its slice.
-    """
-
-    params: np.ndarray
-    errors: np.ndarray
-    n_pixels: np.ndarray
-    coverage: np.ndarray
-    chi2_reduced: np.ndarray
-    rms: np.ndarray
-    converged: np.ndarray
-    truncated: np.ndarray
 
 
 #: masks over the parameters (read-only constants inside the kernels)
@@ -402,7 +362,7 @@ def fit_one_ring(table, order_radius, margin, jac, lo, hi, start, inner, outer, 
     """Fit the ring of slice ``lo:hi`` of the pixel ``table`` (see :mod:`.engine`), from ``start``, between disc
     radii ``inner`` and ``outer``; writes the ring's parameters and errors to ``params`` and ``errors``.
 
-    Returns (n_pixels, coverage, chi2_reduced, rms, converged, truncated) (see :class:`RingOutputs`).
+    Returns (n_pixels, coverage, chi2_reduced, rms, converged, truncated) (see :class:`.engine.RingSolution`).
     ``truncated`` is set when the ring's pixels came within ``margin`` of an end of its slice (in ``order_radius``,
     the radius the pixels are sorted by), i.e. the ring may extend beyond its candidates and should be refitted
     from a wider slice. Since a ring is a connected band on the sky, a ring that continued beyond the slice would
@@ -493,12 +453,3 @@ def fit_one_ring(table, order_radius, margin, jac, lo, hi, start, inner, outer, 
         params[j] = p[j]
     return n, _coverage(sel, n, sin_gap, half), chi2_red, np.sqrt(squares / max(n, 1)), converged, truncated
 
-
-@njit(cache=True, nogil=True)
-def fit_ring_list(rings, pixels, tasks, settings, out):
-    """:func:`fit_one_ring` for each ring index in ``rings`` (rows of ``tasks`` and ``out``)."""
-    table, order_radius, margin, jac = pixels
-    for k in rings:
-        (out.n_pixels[k], out.coverage[k], out.chi2_reduced[k], out.rms[k], out.converged[k],
-         out.truncated[k]) = fit_one_ring(table, order_radius, margin, jac, tasks.lo[k], tasks.hi[k], tasks.starts[k],
-                                          tasks.inner[k], tasks.outer[k], settings, out.params[k], out.errors[k])
