@@ -212,7 +212,7 @@ class _Problem:
         vmap = self.state.vmap
         return disc_basis(vmap.shape, vmap.sky_jacobian, rings, self.r_outer, shifts=self.names)
 
-    def step(self, basis_fields, image, x, free=None, limits=None):
+    def step(self, basis_fields, image, x, free=None, limits=None, from_effect=False):
         """One linear step from x (:func:`..fitting.beam_inversion.correct_curve`) with the shifts counted from
         the observed orientation: (solution with total shifts, smeared model, beam effect, free, limits)."""
         from ..fitting.beam_inversion import correct_curve, smear_basis
@@ -221,7 +221,7 @@ class _Problem:
         smeared = smear_basis(self.kernel, basis_fields, image, self.v_sys)
         local = None if limits is None else (limits[0] - shift, limits[1] - shift)
         solution, effect, free, local = correct_curve(smeared, basis_fields, self.target, self.noise, self.measure,
-                                                      self.coupling, x[: self.n], free, local)
+                                                      self.coupling, x[: self.n], free, local, from_effect)
         total = np.concatenate([solution.x[: self.n], shift + solution.x[self.n:]])
         return replace(solution, x=total), smeared.field(solution.x), effect, free, (local[0] + shift,
                                                                                         local[1] + shift)
@@ -238,7 +238,7 @@ def _iterate(problem, image, limits=None):
     start = np.concatenate([problem.target[: problem.n], np.zeros(len(problem.names))])
     basis_fields = problem.basis(start)
     plain = basis_fields.field(start[: problem.n])  # the uncorrected model (unsmeared, observed orientation)
-    solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits)
+    solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits, from_effect=True)
     first = solution.x[: problem.n].copy()
     point, steps = None, 1
     for _ in range(GAUSS_NEWTON_STEPS + 1):
@@ -417,8 +417,9 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "method": "forward model: the curve as a natural cubic spline through v = 0 at the centre and the ring "
                   "speeds, each ring's field smeared as v_sys + G*(I (v - v_sys)) / G*I and fitted the way the "
                   "data were (first order about the data's fit), the constant orientation moved to first order; "
-                  "a least-squares problem with a second-difference smoothness penalty on the correction (anchored "
-                  "at the centre or free there, and its weight, chosen by generalised cross-validation), solved by "
+                  "a least-squares problem with a second-difference smoothness penalty on the correction beyond a "
+                  "free multiple of the beam's own effect (anchored at the centre or free there, and its weight, "
+                  "chosen by generalised cross-validation), solved by "
                   "Gauss-Newton steps re-linearised at "
                   "the moved orientation, each kept only when the smeared model fits the map better; rings "
                   "beyond the beam's reach held",
