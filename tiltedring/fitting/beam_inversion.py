@@ -44,7 +44,7 @@ linear map v_obs -> x.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.interpolate import CubicSpline
@@ -135,12 +135,15 @@ def affected_rings(beam_effect, noise, floor: float = 0.5) -> np.ndarray:
 @dataclass(frozen=True)
 class BeamSolution:
     """The solution x (corrected speeds, then orientation shifts in deg), the chosen lambda, the propagated
-    noise error of each corrected speed, and the remaining misfit chi^2 = || S^-1 (T(x) - y) ||^2."""
+    noise error of each corrected speed, the remaining misfit chi^2 = || S^-1 (T(x) - y) ||^2 and, where the
+    beam's effect was a free column (:func:`correct_curve`), the speeds the penalty alone gives (``alternative``):
+    two reasonable regularisations whose difference is part of the correction's own uncertainty."""
 
     x: np.ndarray
     smoothing: float
     noise: np.ndarray
     chi_square: float
+    alternative: np.ndarray | None = None
 
 
 def _second_differences(n: int) -> np.ndarray:
@@ -277,7 +280,7 @@ def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise,
     target rows already hold the observed orientation with its error (a prior would count it twice); a shift
     beyond its limits is clipped to them and the speeds solved again with it held. ``from_effect`` (the first
     step): minus the beam effect on the free rings is one more, unpenalised column of the change (module
-    docstring)."""
+    docstring); the solution then also holds the speeds without that column (``alternative``)."""
     target = np.asarray(target, float)
     n_speeds, size = coupling.shape[0], smeared.basis.shape[0]
     speeds = target[:n_speeds] if speeds is None else np.asarray(speeds, float)
@@ -292,12 +295,18 @@ def correct_curve(smeared: SmearedBasis, basis_fields: DiscBasis, target, noise,
         bound = shift_limit(effect[n_speeds:], noise[n_speeds:])
         limits = (-bound, bound)
     design = correction_design(free, coupling)
-    shape = np.where(free, -effect[:n_speeds], 0.0) if from_effect else None
-    solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, shape=shape)
-    shifts = solution.x[n_speeds:]
-    if np.any((shifts < limits[0]) | (shifts > limits[1])):
-        start = start + design[:, free.sum():] @ np.clip(shifts, limits[0], limits[1])
-        solution = solve_smooth_correction(matrix, offset, start, target, noise,
-                                           correction_design(free, coupling, with_shifts=False), n_speeds,
-                                           shape=shape)
-    return solution, effect, free, limits
+
+    def solve(shape):
+        solution = solve_smooth_correction(matrix, offset, start, target, noise, design, n_speeds, shape=shape)
+        shifts = solution.x[n_speeds:]
+        if np.any((shifts < limits[0]) | (shifts > limits[1])):
+            held = start + design[:, free.sum():] @ np.clip(shifts, limits[0], limits[1])
+            solution = solve_smooth_correction(matrix, offset, held, target, noise,
+                                               correction_design(free, coupling, with_shifts=False), n_speeds,
+                                               shape=shape)
+        return solution
+
+    if not from_effect:
+        return solve(None), effect, free, limits
+    solution = solve(np.where(free, -effect[:n_speeds], 0.0))
+    return replace(solution, alternative=solve(None).x[:n_speeds]), effect, free, limits

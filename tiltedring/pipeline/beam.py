@@ -169,14 +169,14 @@ GAUSS_NEWTON_STEPS = 2
 @dataclass
 class _Point:
     """One accepted point of the iteration: the solution (speeds and total orientation shifts), the smeared model
-    drawn exactly at it, its map chi^2, the unsmeared basis fields drawn there, and the speeds of the first
+    drawn exactly at it, its map chi^2, the unsmeared basis fields drawn there, and the solution of the first
     linear step (None when there was no iteration)."""
 
     solution: object
     model: np.ndarray
     chi_square: float
     basis_fields: object
-    first_speeds: np.ndarray | None = None
+    first: object = None
 
 
 class _Problem:
@@ -239,7 +239,7 @@ def _iterate(problem, image, limits=None):
     basis_fields = problem.basis(start)
     plain = basis_fields.field(start[: problem.n])  # the uncorrected model (unsmeared, observed orientation)
     solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits, from_effect=True)
-    first = solution.x[: problem.n].copy()
+    first = solution
     point, steps = None, 1
     for _ in range(GAUSS_NEWTON_STEPS + 1):
         basis_fields = problem.basis(solution.x)
@@ -376,14 +376,18 @@ def beam_treatment(state) -> Additions:
 
 
 def _beam_uncertainty(point, solutions, n) -> np.ndarray:
-    """The correction's own uncertainty per corrected ring: half the range of the speeds over the intensity
-    assumptions and half their change over the iteration (first linear step to the accepted point), in
-    quadrature; the two are separate sources (what the intrinsic intensity is, and how far the first-order
-    solution was from the re-linearised one)."""
-    assumptions = 0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)
-    if point.first_speeds is None:
-        return assumptions
-    return np.hypot(assumptions, 0.5 * np.abs(point.solution.x[:n] - point.first_speeds[:n]))
+    """The correction's own uncertainty per corrected ring, in quadrature: half the range of the speeds over the
+    intensity assumptions, half their change over the iteration (first linear step to the accepted point) and
+    half the difference between the two regularisations of the first step (the beam's effect as a free column or
+    not, :class:`..fitting.beam_inversion.BeamSolution`); separate sources: what the intrinsic intensity is, how
+    far the first-order solution was from the re-linearised one, and what the smoothness prior assumes where the
+    data hardly constrain the speeds (inside about a beam, where the truth was measured between the two)."""
+    parts = [0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)]
+    if point.first is not None:
+        parts.append(0.5 * np.abs(point.solution.x[:n] - point.first.x[:n]))
+        if point.first.alternative is not None:
+            parts.append(0.5 * np.abs(point.first.alternative - point.first.x[:n]))
+    return np.sqrt(np.sum(np.square(parts), axis=0))
 
 
 def _geometry_cautions(summary: dict, orientation_free: bool = True) -> list:
@@ -427,8 +431,10 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
         "intensity": notes[best],
         "intensity_alternatives": {name: note for name, note in notes.items() if name != best},
-        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions "
-                       "and half their change over the iteration, in quadrature",
+        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions, "
+                       "half their change over the iteration and half the difference between the two "
+                       "regularisations (the beam's effect as a free column of the correction or not), in "
+                       "quadrature",
         "smoothing_lambda": solution.smoothing,
         "rings_corrected_arcsec": [float(r) for r in radii[free]],
         "largest_beam_effect_kms": float(np.max(np.abs(effect[:n]))) if n else 0.0,
