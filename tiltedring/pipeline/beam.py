@@ -169,14 +169,14 @@ GAUSS_NEWTON_STEPS = 2
 @dataclass
 class _Point:
     """One accepted point of the iteration: the solution (speeds and total orientation shifts), the smeared model
-    drawn exactly at it, its map chi^2, the unsmeared basis fields drawn there, and the speeds of the first
+    drawn exactly at it, its map chi^2, the unsmeared basis fields drawn there, and the solution of the first
     linear step (None when there was no iteration)."""
 
     solution: object
     model: np.ndarray
     chi_square: float
     basis_fields: object
-    first_speeds: np.ndarray | None = None
+    first: object = None
 
 
 class _Problem:
@@ -212,7 +212,7 @@ class _Problem:
         vmap = self.state.vmap
         return disc_basis(vmap.shape, vmap.sky_jacobian, rings, self.r_outer, shifts=self.names)
 
-    def step(self, basis_fields, image, x, free=None, limits=None):
+    def step(self, basis_fields, image, x, free=None, limits=None, from_effect=False):
         """One linear step from x (:func:`..fitting.beam_inversion.correct_curve`) with the shifts counted from
         the observed orientation: (solution with total shifts, smeared model, beam effect, free, limits)."""
         from ..fitting.beam_inversion import correct_curve, smear_basis
@@ -221,7 +221,7 @@ class _Problem:
         smeared = smear_basis(self.kernel, basis_fields, image, self.v_sys)
         local = None if limits is None else (limits[0] - shift, limits[1] - shift)
         solution, effect, free, local = correct_curve(smeared, basis_fields, self.target, self.noise, self.measure,
-                                                      self.coupling, x[: self.n], free, local)
+                                                      self.coupling, x[: self.n], free, local, from_effect)
         total = np.concatenate([solution.x[: self.n], shift + solution.x[self.n:]])
         return replace(solution, x=total), smeared.field(solution.x), effect, free, (local[0] + shift,
                                                                                         local[1] + shift)
@@ -238,8 +238,8 @@ def _iterate(problem, image, limits=None):
     start = np.concatenate([problem.target[: problem.n], np.zeros(len(problem.names))])
     basis_fields = problem.basis(start)
     plain = basis_fields.field(start[: problem.n])  # the uncorrected model (unsmeared, observed orientation)
-    solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits)
-    first = solution.x[: problem.n].copy()
+    solution, _, effect, free, limits = problem.step(basis_fields, image, start, None, limits, from_effect=True)
+    first = solution
     point, steps = None, 1
     for _ in range(GAUSS_NEWTON_STEPS + 1):
         basis_fields = problem.basis(solution.x)
@@ -376,14 +376,18 @@ def beam_treatment(state) -> Additions:
 
 
 def _beam_uncertainty(point, solutions, n) -> np.ndarray:
-    """The correction's own uncertainty per corrected ring: half the range of the speeds over the intensity
-    assumptions and half their change over the iteration (first linear step to the accepted point), in
-    quadrature; the two are separate sources (what the intrinsic intensity is, and how far the first-order
-    solution was from the re-linearised one)."""
-    assumptions = 0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)
-    if point.first_speeds is None:
-        return assumptions
-    return np.hypot(assumptions, 0.5 * np.abs(point.solution.x[:n] - point.first_speeds[:n]))
+    """The correction's own uncertainty per corrected ring, in quadrature: half the range of the speeds over the
+    intensity assumptions, half their change over the iteration (first linear step to the accepted point) and
+    half the difference between the two regularisations of the first step (the beam's effect as a free column or
+    not, :class:`..fitting.beam_inversion.BeamSolution`); separate sources: what the intrinsic intensity is, how
+    far the first-order solution was from the re-linearised one, and what the smoothness prior assumes where the
+    data hardly constrain the speeds (inside about a beam, where the truth was measured between the two)."""
+    parts = [0.5 * np.ptp([s.x[:n] for s in solutions.values()], axis=0)]
+    if point.first is not None:
+        parts.append(0.5 * np.abs(point.solution.x[:n] - point.first.x[:n]))
+        if point.first.alternative is not None:
+            parts.append(0.5 * np.abs(point.first.alternative - point.first.x[:n]))
+    return np.sqrt(np.sum(np.square(parts), axis=0))
 
 
 def _geometry_cautions(summary: dict, orientation_free: bool = True) -> list:
@@ -417,8 +421,9 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "method": "forward model: the curve as a natural cubic spline through v = 0 at the centre and the ring "
                   "speeds, each ring's field smeared as v_sys + G*(I (v - v_sys)) / G*I and fitted the way the "
                   "data were (first order about the data's fit), the constant orientation moved to first order; "
-                  "a least-squares problem with a second-difference smoothness penalty on the correction (anchored "
-                  "at the centre or free there, and its weight, chosen by generalised cross-validation), solved by "
+                  "a least-squares problem with a second-difference smoothness penalty on the correction beyond a "
+                  "free multiple of the beam's own effect (anchored at the centre or free there, and its weight, "
+                  "chosen by generalised cross-validation), solved by "
                   "Gauss-Newton steps re-linearised at "
                   "the moved orientation, each kept only when the smeared model fits the map better; rings "
                   "beyond the beam's reach held",
@@ -426,8 +431,10 @@ def _summary(vmap, layout, ok, solutions, notes, names, widths, iteration) -> di
         "beam_arcsec": [vmap.beam.major, vmap.beam.minor, vmap.beam.position_angle],
         "intensity": notes[best],
         "intensity_alternatives": {name: note for name, note in notes.items() if name != best},
-        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions "
-                       "and half their change over the iteration, in quadrature",
+        "uncertainty": "v_rotation_err_beam: half the range of the corrected speeds over the intensity assumptions, "
+                       "half their change over the iteration and half the difference between the two "
+                       "regularisations (the beam's effect as a free column of the correction or not), in "
+                       "quadrature",
         "smoothing_lambda": solution.smoothing,
         "rings_corrected_arcsec": [float(r) for r in radii[free]],
         "largest_beam_effect_kms": float(np.max(np.abs(effect[:n]))) if n else 0.0,
