@@ -39,7 +39,7 @@ def centre_angle(values, reference):
     return reference + np.mod(np.asarray(values, float) - reference + 180.0, 360.0) - 180.0
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def project(x, y, xc, yc, jac, sp, cp, ci):
     """Disc-plane (x_d, y_d) of one pixel, given sin/cos of the position angle and cos(i)."""
     dx = x - xc
@@ -118,7 +118,7 @@ def ring_planes(radius, x_center, y_center, position_angle, inclination):
     return RingPlanes(radius, x_center, y_center, sp, cp, ci)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _offset(x, y, jac, planes, j, radius):
     """Disc radius of a pixel under ring ``j``'s geometry, minus ``radius``."""
     xd, yd = project(x, y, planes.x_center[j], planes.y_center[j], jac, planes.sin_pa[j], planes.cos_pa[j],
@@ -140,7 +140,7 @@ def _search_sorted(a, value):
     return lo
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def place_pixel(x, y, jac, planes, r_outer):
     """(fractional ring index, disc radius) of one pixel; (-1, NaN) beyond ``r_outer`` (see :func:`assign_to_rings`)."""
     radii = planes.radius

@@ -28,7 +28,7 @@ from .threads import run_parts, thread_count
 __all__ = ["PARAMETERS", "UNITS", "ring_model", "line_of_sight", "model_field"]
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def ring_constants(p, jac):
     """Per-ring constants of :func:`pixel_velocity`: sines and cosines, and d(x_m, y_m)/d(centre)."""
     sp, cp = np.sin(p[P.position_angle] * DEG), np.cos(p[P.position_angle] * DEG)
@@ -38,7 +38,7 @@ def ring_constants(p, jac):
             -(jac[0, 1] * sp + jac[1, 1] * cp), -(jac[0, 1] * cp - jac[1, 1] * sp))
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def pixel_velocity(x, y, p, jac, const, deriv):
     """v_los at one pixel for ring parameters ``p``; writes d v_los / d p (angles per degree) to ``deriv``."""
     sp, cp, si, ci, dxm_dxc, dym_dxc, dxm_dyc, dym_dyc = const

@@ -103,7 +103,7 @@ def _clamp(p):
     p[P.inclination] = min(max(p[P.inclination], INC_BOUNDS[0]), INC_BOUNDS[1])
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def angular_weight(c, sigma, power, sin_gap, half):
     """sqrt of a pixel's weight, |cos theta|^(power/2) / sigma, or -1 where the gap about the
     minor axis or the chosen half (0 whole, 1 approaching: cos < 0, 2 receding: cos > 0) leaves it out."""
