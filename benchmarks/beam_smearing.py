@@ -6,7 +6,7 @@
 
 Discs (tests/independent_fields.py: scipy Rotation test particles, binned into intensity-weighted
 mean velocities and smoothed by a Gaussian beam, i.e. a moment-1 map; beam-correlated noise NOISE km/s,
-default 4; with NOISE 0.5 the noise floor falls well below the accuracy targets, so what remains is the method's):
+default 4; at NOISE 0.5 the noise hardly matters, so what remains is mostly the method's own error):
 200x200 pixels of 1 arcsec, beam 8 arcsec, exponential surface density (scale length 15-30 arcsec,
 the smeared particle counts given as the intensity map), v_flat tanh(R / r_turn) with steep
 (r_turn = 0.5 beam) and shallow (r_turn = 2 beams) inner rises, inclinations 30-80 deg, position
@@ -15,7 +15,7 @@ API with the defaults (resampling off to save time).
 
 Per disc: mean |v - v_true| / v_true (per cent) of the uncorrected (``v_rotation_smeared``) and the
 corrected curve over rings between 0.5 and 2 beams, the corrected curve's worst ring there, and
-beyond 2 beams the mean |error| (km/s) of both curves; also, between 0.5 and 2 beams, the noise floor (the
+beyond 2 beams the mean |error| (km/s) of both curves; also, between 0.5 and 2 beams, the error floor (the
 mean |error| an unbiased curve with the stated errors would have, sqrt(2/pi) sigma / v_true) and the mean of
 (corrected - truth) / sigma (a bias in units of the error). The closing lines give the averages, the
 worst ring over all discs, and in how many discs the corrected curve is worse than the uncorrected
@@ -107,7 +107,7 @@ def main(n_discs: int = 30, seed: int = 7, noise: float = 4.0) -> None:
     print(f"mean over {len(rows)} discs, 0.5-2 beams: uncorrected {np.mean([r['inner_plain'] for r in rows]):.2f} %, "
           f"corrected {np.mean([r['inner_corrected'] for r in rows]):.2f} % (target 3 %); worst ring "
           f"{max(r['worst'] for r in rows):.1f} % (target 10 %)")
-    print(f"0.5-2 beams, the noise floor: an unbiased curve with the stated errors would be off by "
+    print(f"0.5-2 beams, the error floor: an unbiased curve with the stated errors would be off by "
           f"{np.mean([r['inner_floor'] for r in rows]):.2f} % on average (sqrt(2/pi) sigma / v); corrected - truth in "
           f"units of the stated error: mean {np.mean([r['inner_z'] for r in rows]):+.2f} (bias), mean |z| "
           f"{np.mean([r['inner_abs_z'] for r in rows]):.2f} (0.80 for calibrated errors)")
