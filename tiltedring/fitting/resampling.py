@@ -1,13 +1,13 @@
 """Resampling errors that respect beam-correlated noise.
 
 Noise in a moment-1 map is correlated over a beam, and the residual of a fit also carries what the
-model misses. Both are captured by drawing fake residual fields with the *same power spectrum* as
-the measured residual (random phases; the spectrum of a masked field is normalised by the filled
-fraction), adding each to the model, fitting it again, and taking the scatter of the fitted values
-— a Monte Carlo in the spirit of a block bootstrap over beam-sized blocks, without the block edges.
-The fit of each draw is whatever ``measure`` does; the pipeline passes the fit's first-order
-response (:mod:`.response`), so a draw costs one inverse FFT and one pass of dot products.
-Every draw comes from a seeded generator, so the same inputs give the same errors.
+model misses. Fake residual fields are drawn with the rms of the measured residual and the spatial
+correlation of its core (:func:`residual_like_noise`), each is added to the model and fitted again,
+and the scatter of the fitted values is the error — a Monte Carlo in the spirit of a block bootstrap
+over beam-sized blocks, without the block edges. The fit of each draw is whatever ``measure`` does;
+the pipeline passes the fit's first-order response (:mod:`.response`), so a draw costs one inverse FFT
+and one pass of dot products. Every draw comes from a seeded generator, so the same inputs give the
+same errors.
 """
 
 from __future__ import annotations
@@ -18,25 +18,69 @@ import time
 import numpy as np
 from scipy import fft
 
-__all__ = ["residual_like_noise", "resample_draws", "Progress"]
+__all__ = ["residual_like_noise", "correlation_core", "resample_draws", "Progress"]
 
 
 def residual_like_noise(residual, n: int, seed: int = 0):
-    """Yield ``n`` fields with the power spectrum and rms of ``residual`` (NaN = blank)."""
+    """Yield ``n`` fields with the rms of ``residual`` (NaN = blank) and the spatial correlation of its core.
+
+    The autocorrelation is estimated with each lag normalised by its own number of pixel pairs,
+    C(s) = sum_x r(x) r(x + s) / N(s), N(s) the overlap of the blank mask with itself shifted by s
+    (zero-padded FFTs, no wrap-around), over the lags where N(s) > N(0) / 4. The fields' correlation is
+    the Gaussian a exp(-s^T M s / 2) fitted to its core (:func:`correlation_core`), their power
+    spectrum its transform (Wiener-Khinchin; Priestley 1981, Spectral Analysis and Time Series, ch. 6).
+    The residual's own spectrum, used as it is, lacks what the fitted model took out of the noise: each
+    ring's speed absorbs the noise's cos(theta) pattern on that ring, i.e. power at the large scales that
+    set a ring's error, so errors drawn from it were about 20 per cent below the scatter of fits to fresh
+    noise, on a test of independent noise (tests/test_noise_model.py) as on the calibration mocks
+    (benchmarks/error_calibration.py); taking the larger of the two spectra at each frequency overshot
+    (the larger of a noisy estimate and a smooth one is biased up). Structure the model misses enters
+    through the rms. A residual without spatial correlation (no core) gives white noise."""
     ok = np.isfinite(residual)
     if ok.sum() < 10:
         raise ValueError("too few finite residual pixels to estimate the noise spectrum")
     filled = np.where(ok, residual - np.nanmean(residual), 0.0)
-    amplitude = (np.abs(fft.rfft2(filled)) / np.sqrt(ok.mean())).astype(np.float32)  # noise: single precision will do
+    padded = tuple(fft.next_fast_len(2 * size, real=True) for size in residual.shape)
+    pairs = fft.irfft2(np.abs(fft.rfft2(ok.astype(float), s=padded)) ** 2, s=padded)
+    products = fft.irfft2(np.abs(fft.rfft2(filled, s=padded)) ** 2, s=padded)
+    correlation = np.where(pairs > 0.25 * pairs[0, 0], products / np.maximum(pairs, 0.5), 0.0)
+    core = correlation_core(correlation)
+    if core is None:
+        amplitude = np.ones((padded[0], padded[1] // 2 + 1), np.float32)
+    else:
+        amplitude = np.sqrt(np.clip(fft.rfft2(core).real, 0.0, None)).astype(np.float32)  # single precision will do
     rms = float(np.sqrt(np.mean(filled[ok] ** 2)))
     rng = np.random.default_rng(seed)
+    ny, nx = residual.shape
     for _ in range(n):
         # the transform of white noise, drawn directly: independent complex normals (irfft2 keeps the
-        # Hermitian part, and the rms is set below)
-        phases = rng.standard_normal(amplitude.shape, np.float32) + 1j * rng.standard_normal(amplitude.shape, np.float32)
-        field = fft.irfft2(phases * amplitude, s=residual.shape, workers=-1)
+        # Hermitian part, and the rms is set below); the padded field is cropped, so it does not wrap
+        shape = amplitude.shape
+        phases = rng.standard_normal(shape, np.float32) + 1j * rng.standard_normal(shape, np.float32)
+        field = fft.irfft2(phases * amplitude, s=padded, workers=-1)[:ny, :nx]
         field *= rms / max(float(np.std(field[ok])), 1e-30)
-        yield field
+        yield np.ascontiguousarray(field)
+
+
+def correlation_core(correlation, level: float = 0.5, reach: int = 16):
+    """The Gaussian a exp(-s^T M s / 2) fitted by linear least squares to ln C(s) over the lags 0 < |s_x|,
+    |s_y| <= ``reach`` pixels where C > ``level`` C(0), drawn on the lag grid of ``correlation`` (wrapped:
+    negative lags at the end); None when fewer than six lags qualify or M is not positive definite (noise
+    without spatial correlation: nothing to restore). The zero lag is left out, as it also holds the
+    pixels' own uncorrelated noise."""
+    ny, nx = correlation.shape
+    sy = np.fft.fftfreq(ny, 1.0 / ny)[:, None] * np.ones((1, nx))
+    sx = np.ones((ny, 1)) * np.fft.fftfreq(nx, 1.0 / nx)[None, :]
+    use = (np.abs(sx) <= reach) & (np.abs(sy) <= reach) & (correlation > level * correlation[0, 0])
+    use[0, 0] = False
+    if use.sum() < 6:
+        return None
+    x, y = sx[use], sy[use]
+    design = np.column_stack([np.ones_like(x), -0.5 * x * x, -x * y, -0.5 * y * y])
+    (log_a, a_xx, a_xy, a_yy), *_ = np.linalg.lstsq(design, np.log(correlation[use]), rcond=None)
+    if a_xx <= 0 or a_yy <= 0 or a_xx * a_yy <= a_xy**2:
+        return None
+    return np.exp(log_a - 0.5 * (a_xx * sx * sx + 2 * a_xy * sx * sy + a_yy * sy * sy))
 
 
 class Progress:
