@@ -22,20 +22,20 @@ __all__ = ["residual_like_noise", "correlation_core", "resample_draws", "Progres
 
 
 def residual_like_noise(residual, n: int, seed: int = 0):
-    """Yield ``n`` fields with the rms of ``residual`` (NaN = blank) and the spatial correlation of its core.
+    """Yield ``n`` fields with the rms of ``residual`` (NaN = blank) and a model of its spatial correlation.
 
     The autocorrelation is estimated with each lag normalised by its own number of pixel pairs,
     C(s) = sum_x r(x) r(x + s) / N(s), N(s) the overlap of the blank mask with itself shifted by s
-    (zero-padded FFTs, no wrap-around), over the lags where N(s) > N(0) / 4. The fields' correlation is
-    the Gaussian a exp(-s^T M s / 2) fitted to its core (:func:`correlation_core`), their power
-    spectrum its transform (Wiener-Khinchin; Priestley 1981, Spectral Analysis and Time Series, ch. 6).
-    The residual's own spectrum, used as it is, lacks what the fitted model took out of the noise: each
-    ring's speed absorbs the noise's cos(theta) pattern on that ring, i.e. power at the large scales that
-    set a ring's error, so errors drawn from it were about 20 per cent below the scatter of fits to fresh
-    noise, on a test of independent noise (tests/test_noise_model.py) as on the calibration mocks
-    (benchmarks/error_calibration.py); taking the larger of the two spectra at each frequency overshot
-    (the larger of a noisy estimate and a smooth one is biased up). Structure the model misses enters
-    through the rms. A residual without spatial correlation (no core) gives white noise."""
+    (zero-padded FFTs, no wrap-around), over the lags where N(s) > N(0) / 4. Its model is a Gaussian core
+    a exp(-s^T M s / 2) fitted to C away from the zero lag (:func:`correlation_core`) plus uncorrelated
+    noise of variance C(0) - a (pixel noise, wild pixels); the fields' power spectrum is the model's
+    transform (Wiener-Khinchin; Priestley 1981, Spectral Analysis and Time Series, ch. 6). The residual's
+    own spectrum, used as it is, lacks what the fitted model took out of the noise: each ring's speed
+    absorbs the noise's cos(theta) pattern on that ring, i.e. power at the large scales that set a ring's
+    error, so errors drawn from it were about 20 per cent below the scatter of fits to fresh noise
+    (tests/test_noise_model.py, benchmarks/error_calibration.py); taking the larger of the two spectra at
+    each frequency overshot (the larger of a noisy estimate and a smooth one is biased up). Structure the
+    model misses enters through the rms. A residual without spatial correlation gives white noise."""
     ok = np.isfinite(residual)
     if ok.sum() < 10:
         raise ValueError("too few finite residual pixels to estimate the noise spectrum")
@@ -44,11 +44,12 @@ def residual_like_noise(residual, n: int, seed: int = 0):
     pairs = fft.irfft2(np.abs(fft.rfft2(ok.astype(float), s=padded)) ** 2, s=padded)
     products = fft.irfft2(np.abs(fft.rfft2(filled, s=padded)) ** 2, s=padded)
     correlation = np.where(pairs > 0.25 * pairs[0, 0], products / np.maximum(pairs, 0.5), 0.0)
+    model = np.zeros(padded)
     core = correlation_core(correlation)
-    if core is None:
-        amplitude = np.ones((padded[0], padded[1] // 2 + 1), np.float32)
-    else:
-        amplitude = np.sqrt(np.clip(fft.rfft2(core).real, 0.0, None)).astype(np.float32)  # single precision will do
+    if core is not None:
+        model += core * min(1.0, correlation[0, 0] / core[0, 0])
+    model[0, 0] = max(correlation[0, 0], model[0, 0])  # the uncorrelated part: C(0) - a
+    amplitude = np.sqrt(np.clip(fft.rfft2(model).real, 0.0, None)).astype(np.float32)  # single precision will do
     rms = float(np.sqrt(np.mean(filled[ok] ** 2)))
     rng = np.random.default_rng(seed)
     ny, nx = residual.shape
@@ -63,16 +64,29 @@ def residual_like_noise(residual, n: int, seed: int = 0):
 
 
 def correlation_core(correlation, level: float = 0.5, reach: int = 16):
-    """The Gaussian a exp(-s^T M s / 2) fitted by linear least squares to ln C(s) over the lags 0 < |s_x|,
-    |s_y| <= ``reach`` pixels where C > ``level`` C(0), drawn on the lag grid of ``correlation`` (wrapped:
-    negative lags at the end); None when fewer than six lags qualify or M is not positive definite (noise
-    without spatial correlation: nothing to restore). The zero lag is left out, as it also holds the
-    pixels' own uncorrelated noise."""
+    """The Gaussian a exp(-s^T M s / 2) fitted by linear least squares to ln C(s) over the lags of the core
+    (0 < |s| out to the first radius, in whole pixels up to ``reach``, where the mean of C falls below
+    ``level`` times its largest value one pixel from the zero lag) where C itself exceeds that, drawn on the
+    lag grid of ``correlation`` (wrapped: negative lags at the end). The zero lag is left out:
+    it also holds the pixels' uncorrelated noise and wild pixels, which the core is not to follow (a residual
+    whose neighbours share only a fifth of its variance still has a core). The core is the narrowest
+    component, the noise's correlation, rather than broad structure the model misses. None when fewer than
+    six lags qualify or M is not positive definite (no spatial correlation to model)."""
     ny, nx = correlation.shape
     sy = np.fft.fftfreq(ny, 1.0 / ny)[:, None] * np.ones((1, nx))
     sx = np.ones((ny, 1)) * np.fft.fftfreq(nx, 1.0 / nx)[None, :]
-    use = (np.abs(sx) <= reach) & (np.abs(sy) <= reach) & (correlation > level * correlation[0, 0])
-    use[0, 0] = False
+    radius = np.hypot(sx, sy)
+    ring = np.rint(radius).astype(int)
+    near = (ring >= 1) & (ring <= reach)
+    peak = float(np.max(correlation[near & (ring == 1)]))
+    if peak <= 0:
+        return None
+    # the core: out to the first radius whose mean correlation falls below the level (far lags of a small map
+    # can pass the level by chance and must not steer the fit)
+    means = np.array([correlation[ring == k].mean() for k in range(1, reach + 1)])
+    below = np.flatnonzero(means <= level * peak)
+    edge = below[0] + 1 if below.size else reach + 1
+    use = near & (ring <= edge) & (correlation > level * peak)
     if use.sum() < 6:
         return None
     x, y = sx[use], sy[use]

@@ -4,7 +4,7 @@ The error model splits what could move the curve into parts that share no source
 total (their sum in quadrature) counts nothing twice:
 
 - **random** (``v_rotation_err_random``): the noise of the map at the *adopted* geometry, from the
-  resampled scatter (noise fields with the residual's rms and the correlation of its core, geometry held) or, without
+  resampled scatter (noise fields with the residual's rms and modelled correlation, geometry held) or, without
   resampling, the formal error (scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)).
   Rings closer than a beam share pixels' noise: the correlation between neighbours is measured on
   the same draws (:func:`band_correlation`).

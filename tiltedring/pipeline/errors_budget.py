@@ -4,7 +4,7 @@ v_rotation's uncertainty is split into parts that share no source (:mod:`.error_
 own column, and their sum in quadrature, ``v_rotation_err``:
 
 - ``v_rotation_err_random``: the noise at the adopted geometry — the resampled scatter
-  (:mod:`..fitting.resampling`: noise fields with the residual's rms and core correlation through the fit's
+  (:mod:`..fitting.resampling`: noise fields with the residual's rms and modelled correlation through the fit's
   first-order response, the orientation held), enlarged as the beam treatment enlarged the formal
   error (:func:`noise_gain`; the treatment propagates the noise through its correction); without
   resampling, ``v_rotation_err_formal`` (least squares, scaled by sqrt(reduced chi-square) and
@@ -50,11 +50,12 @@ ERROR_MODEL = {
     "total": "v_rotation_err = sqrt(random^2 + geometry^2 + beam^2 + asymmetry^2); below the low-inclination "
              "limit widened to at least v_rotation / 2",
     "random": "v_rotation_err_random: scatter of v_rotation over refits (first order) of model + noise fields "
-              "with the residual map's rms and the spatial correlation of its core, orientation held at the "
-              "adopted values, carried through the beam correction (as it enlarged the formal error, or through "
-              "its linearisation when it states no noise of its own); the formal error (scaled by sqrt(reduced "
-              "chi-square) and sqrt(pixels per beam)) when no resampling ran. Correlation with the k-th next ring "
-              "out: random_correlation_<k> (rings within a beam; 0 beyond)",
+              "with the residual map's rms and a model of its spatial correlation (a Gaussian core plus "
+              "uncorrelated noise), orientation held at the adopted values, carried through the beam correction "
+              "(as it enlarged the formal error, or through its linearisation when it states no noise of its "
+              "own); the formal error (scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)) when no "
+              "resampling ran. Correlation with the k-th next ring out: random_correlation_<k> (rings within a "
+              "beam; 0 beyond)",
     "geometry": "v_rotation_err_geometry = hypot(v_rotation_shift_inclination, v_rotation_shift_position_angle): "
                 "signed change of v_rotation at the orientation's +1 sigma, -v cot(i) sigma_i and "
                 "-v (1 - cos sigma_PA); fully correlated from ring to ring",
@@ -157,10 +158,10 @@ def resampled_errors(state, current=None) -> tuple:
         columns[f"random_correlation_{k}"] = band
     summary = {
         "realisations": options.resamples, "seed": options.seed, "correlated_neighbours": reach,
-        "method": "noise fields with the rms of the residual map and the spatial correlation of its core (a "
-                  "Gaussian fitted to its autocorrelation), added to the model and "
-                  "refitted to first order about the data's fit; v_rotation's scatter with the orientation held "
-                  "(the random part), the constant orientation's scatter for its error"}
+        "method": "noise fields with the rms of the residual map and a model of its spatial correlation (a "
+                  "Gaussian core fitted to its autocorrelation next to the zero lag, plus uncorrelated noise), "
+                  "added to the model and refitted to first order about the data's fit; v_rotation's scatter with "
+                  "the orientation held (the random part), the constant orientation's scatter for its error"}
     return columns, {"resampling": summary}
 
 
