@@ -172,8 +172,9 @@ def _centre(section: dict, result) -> list:
 
 def _resampling(section: dict, result) -> list:
     n = int(section.get("realisations") or 0)
-    return [("errors", f"random part from the formal error and {plural(n, 'resampled noise field')} "
-                       f"(seed {section.get('seed')}, orientation held), whichever is larger" + _extras(section))]
+    return [("errors", f"random part: the scatter of v_rotation over {plural(n, 'resampled noise field')} (seed "
+                       f"{section.get('seed')}, orientation held); the constant orientation's error: the larger of "
+                       "the geometry profile's and the fields' scatter" + _extras(section))]
 
 
 def _orientation_spread(section: dict, result) -> list:
