@@ -1,13 +1,13 @@
 """Resampling errors that respect beam-correlated noise.
 
 Noise in a moment-1 map is correlated over a beam, and the residual of a fit also carries what the
-model misses. Fake residual fields are drawn with the rms of the measured residual and the spatial
-correlation of its core (:func:`residual_like_noise`), each is added to the model and fitted again,
-and the scatter of the fitted values is the error — a Monte Carlo in the spirit of a block bootstrap
-over beam-sized blocks, without the block edges. The fit of each draw is whatever ``measure`` does;
-the pipeline passes the fit's first-order response (:mod:`.response`), so a draw costs one inverse FFT
-and one pass of dot products. Every draw comes from a seeded generator, so the same inputs give the
-same errors.
+model misses. Fake residual fields are drawn with the rms of the measured residual and a model of its
+spatial correlation, a Gaussian core plus uncorrelated noise (:func:`residual_like_noise`); each is
+added to the model and fitted again, and the scatter of the fitted values is the error — a Monte Carlo
+in the spirit of a block bootstrap over beam-sized blocks, without the block edges. The fit of each
+draw is whatever ``measure`` does; the pipeline passes the fit's first-order response
+(:mod:`.response`), so a draw costs one inverse FFT and one pass of dot products. Every draw comes from
+a seeded generator, so the same inputs give the same errors.
 """
 
 from __future__ import annotations
