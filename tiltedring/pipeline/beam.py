@@ -28,8 +28,9 @@ several intensity assumptions: an exponential profile fitted to the intensity ma
 (:mod:`..fitting.intensity_profile`; adopted: an estimate of the intrinsic intensity, not the smeared
 moment-0 map), a uniform disc, and the map as given. Without an intensity map the uniform disc is
 adopted (with a caution) and an exponential disc whose edge lies at four scale lengths is the
-alternative. Half the range of the corrected speeds over the assumptions is the correction's own
-uncertainty, ``v_rotation_err_beam``.
+alternative. The correction's own uncertainty, ``v_rotation_err_beam``, is half the range of the corrected
+speeds over the assumptions, half their change over the iteration and half the difference between the two
+regularisations of the first step, in quadrature (:func:`_beam_uncertainty`).
 """
 
 from __future__ import annotations

@@ -38,9 +38,11 @@ ERROR_COLUMNS = {
                              "error without resampling); correlation with the k-th next ring: random_correlation_<k>",
     "v_rotation_err_geometry": "response to the orientation's 1 sigma, hypot of v_rotation_shift_inclination and "
                                "v_rotation_shift_position_angle (signed, fully correlated across rings)",
-    "v_rotation_err_beam": "the beam treatment's own uncertainty: half the spread of the beam-smearing-corrected "
-                           "v_rotation over the intensity assumptions of its forward model (exponential profile, "
-                           "uniform, the intensity map as given); 0 without the treatment",
+    "v_rotation_err_beam": "the beam treatment's own uncertainty, in quadrature: half the spread of the "
+                           "beam-smearing-corrected v_rotation over the intensity assumptions of its forward model "
+                           "(exponential profile, uniform, the intensity map as given), half its change over the "
+                           "iteration and half the difference between the two regularisations; where the "
+                           "correction fell back, the change it would have made; 0 without the treatment",
     "v_rotation_err_asymmetry": "sqrt(d^2 - s_d^2)/2 where approaching and receding halves differ (d) beyond their "
                                 "noise (s_d), else 0",
     "v_rotation_err_formal": "least-squares error scaled by sqrt(reduced chi-square) and sqrt(pixels per beam)",
